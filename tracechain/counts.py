@@ -1,0 +1,254 @@
+"""Transition counts: the seam between reading logs and modelling them.
+
+A :class:`TransitionCounts` holds the state index, the sparse n×n matrix of observed
+transitions between states, how many sessions started in, ended after, or are still
+open in each state, and per-edge sums of the time gaps. It is immutable and
+mergeable: ``a + b`` re-indexes both onto the union of their states, so counts from
+files, chunks or worker processes combine into the same object. Its size depends on
+the number of states and edges, never on the number of events.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Union
+
+import numpy as np
+import scipy.sparse as sp
+
+__all__ = ["State", "Location", "TransitionCounts", "state_label", "START", "END"]
+
+#: A state is a name, or for higher-order chains a tuple of the last k names.
+State = Union[str, tuple]
+
+#: Edge keys in ``first_seen`` use these codes for the pseudo-states.
+START = -1
+END = -2
+
+
+def state_label(state: State, sep: str = " › ") -> str:
+    """A readable label for a state (windows joined oldest first)."""
+    if isinstance(state, tuple):
+        return sep.join(str(s) for s in state)
+    return str(state)
+
+
+@dataclass(frozen=True)
+class Location:
+    """Where an edge was first seen: source file, line and session key."""
+
+    source: str
+    line: int
+    session: str
+
+
+def _csr(n: int, rows=(), cols=(), vals=(), dtype=np.int64) -> sp.csr_array:
+    return sp.csr_array(
+        (np.asarray(vals, dtype=dtype), (np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64))),
+        shape=(n, n),
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class TransitionCounts:
+    """Observed transitions between states.
+
+    Attributes
+    ----------
+    states : tuple
+        State labels; position is the state's index.
+    counts : scipy.sparse.csr_array
+        ``counts[i, j]`` transitions from state i to state j (int64).
+    starts, ends, open : numpy.ndarray
+        Per state: sessions that started in it, ended after it, and are still open in it.
+    gap_sum, gap_n : scipy.sparse.csr_array
+        Per edge: the sum of time gaps in seconds, and how many transitions had a known gap.
+    sessions, events : int
+        Sessions and (shaped) events counted.
+    first_seen : dict
+        ``(i, j) -> Location`` for the first occurrence of each edge; ``START`` and ``END``
+        stand for the pseudo-states.
+    meta : dict
+        How the counts were made (order, goals used for truncation, ...).
+    """
+
+    states: tuple
+    counts: sp.csr_array
+    starts: np.ndarray
+    ends: np.ndarray
+    open: np.ndarray
+    gap_sum: sp.csr_array
+    gap_n: sp.csr_array
+    sessions: int = 0
+    events: int = 0
+    first_seen: dict = field(default_factory=dict)
+    meta: dict = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        n = len(self.states)
+        for name in ("counts", "gap_sum", "gap_n"):
+            if getattr(self, name).shape != (n, n):
+                raise ValueError(f"{name} has shape {getattr(self, name).shape}, expected {(n, n)}")
+        for name in ("starts", "ends", "open"):
+            if getattr(self, name).shape != (n,):
+                raise ValueError(f"{name} has shape {getattr(self, name).shape}, expected {(n,)}")
+        if len(set(self.states)) != n:
+            raise ValueError("duplicate state labels")
+
+    # construction -----------------------------------------------------------------
+    @classmethod
+    def empty(cls) -> "TransitionCounts":
+        z = np.zeros(0, dtype=np.int64)
+        return cls((), _csr(0), z, z.copy(), z.copy(), _csr(0, dtype=np.float64), _csr(0))
+
+    @classmethod
+    def from_edges(
+        cls,
+        edges: dict[tuple[Any, Any], int],
+        start: Any = START,
+        end: Any = END,
+        gaps: dict[tuple[Any, Any], float] | None = None,
+        sessions: int | None = None,
+    ) -> "TransitionCounts":
+        """Counts from ``{(from, to): count}``; ``start``/``end`` mark the pseudo-states.
+
+        ``gaps`` optionally gives the sum of time gaps per edge (in seconds).
+        """
+        labels: dict[Any, int] = {}
+        for a, b in edges:
+            for x in (a, b):
+                if x != start and x != end and x not in labels:
+                    labels[x] = len(labels)
+        n = len(labels)
+        rows, cols, vals, gs, gn = [], [], [], [], []
+        starts = np.zeros(n, dtype=np.int64)
+        ends = np.zeros(n, dtype=np.int64)
+        for (a, b), c in edges.items():
+            c = int(c)
+            if a == start and b == end:
+                continue
+            if a == start:
+                starts[labels[b]] += c
+            elif b == end:
+                ends[labels[a]] += c
+            else:
+                rows.append(labels[a])
+                cols.append(labels[b])
+                vals.append(c)
+                g = (gaps or {}).get((a, b))
+                gs.append(0.0 if g is None else float(g))
+                gn.append(0 if g is None else c)
+        return cls(
+            tuple(labels),
+            _csr(n, rows, cols, vals),
+            starts,
+            ends,
+            np.zeros(n, dtype=np.int64),
+            _csr(n, rows, cols, gs, dtype=np.float64),
+            _csr(n, rows, cols, gn),
+            sessions=int(starts.sum()) if sessions is None else sessions,
+            events=int(np.sum(vals) + starts.sum()),
+        )
+
+    # queries ----------------------------------------------------------------------
+    @property
+    def n_states(self) -> int:
+        return len(self.states)
+
+    @property
+    def n_transitions(self) -> int:
+        return int(self.counts.sum())
+
+    def index(self, state: State) -> int:
+        try:
+            return self.states.index(state)
+        except ValueError:
+            raise KeyError(state) from None
+
+    def visits(self) -> np.ndarray:
+        """Times each state was left or held at the end: out-transitions + ends + open."""
+        return np.asarray(self.counts.sum(axis=1)).ravel() + self.ends + self.open
+
+    def edge_count(self, a: State, b: State) -> int:
+        return int(self.counts[self.index(a), self.index(b)])
+
+    def to_edges(self, start: Any = "[start]", end: Any = "[end]") -> dict[tuple[Any, Any], int]:
+        """``{(from, to): count}`` including pseudo-state edges."""
+        out: dict[tuple[Any, Any], int] = {}
+        coo = self.counts.tocoo()
+        for i, j, c in zip(coo.row, coo.col, coo.data):
+            if c:
+                out[(self.states[i], self.states[j])] = int(c)
+        for i in np.flatnonzero(self.starts):
+            out[(start, self.states[i])] = int(self.starts[i])
+        for i in np.flatnonzero(self.ends):
+            out[(self.states[i], end)] = int(self.ends[i])
+        return out
+
+    # merging ----------------------------------------------------------------------
+    def reindex(self, states: tuple) -> "TransitionCounts":
+        """The same counts on a larger state index (a superset, any order)."""
+        pos = {s: i for i, s in enumerate(states)}
+        try:
+            m = np.array([pos[s] for s in self.states], dtype=np.int64)
+        except KeyError as err:
+            raise ValueError(f"state {err.args[0]!r} missing from the new index") from None
+        n = len(states)
+
+        def mat(a: sp.csr_array, dtype) -> sp.csr_array:
+            coo = a.tocoo()
+            return _csr(n, m[coo.row], m[coo.col], coo.data, dtype=dtype)
+
+        def vec(v: np.ndarray) -> np.ndarray:
+            out = np.zeros(n, dtype=v.dtype)
+            out[m] = v
+            return out
+
+        inv = {i: int(m[i]) for i in range(len(m))}
+        inv[START] = START
+        inv[END] = END
+        seen = {(inv[a], inv[b]): loc for (a, b), loc in self.first_seen.items()}
+        return TransitionCounts(
+            tuple(states), mat(self.counts, np.int64), vec(self.starts), vec(self.ends), vec(self.open),
+            mat(self.gap_sum, np.float64), mat(self.gap_n, np.int64), self.sessions, self.events, seen, dict(self.meta),
+        )
+
+    def __add__(self, other: "TransitionCounts") -> "TransitionCounts":
+        if not isinstance(other, TransitionCounts):
+            return NotImplemented
+        union = tuple(self.states) + tuple(s for s in other.states if s not in set(self.states))
+        a = self.reindex(union)
+        b = other.reindex(union)
+        seen = dict(b.first_seen)
+        seen.update(a.first_seen)
+        meta = dict(b.meta)
+        meta.update(a.meta)
+        return TransitionCounts(
+            union, (a.counts + b.counts).tocsr(), a.starts + b.starts, a.ends + b.ends, a.open + b.open,
+            (a.gap_sum + b.gap_sum).tocsr(), (a.gap_n + b.gap_n).tocsr(),
+            a.sessions + b.sessions, a.events + b.events, seen, meta,
+        )
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, TransitionCounts):
+            return NotImplemented
+        if set(self.states) != set(other.states):
+            return False
+        o = other.reindex(self.states)
+        return (
+            (self.counts != o.counts).nnz == 0
+            and np.array_equal(self.starts, o.starts)
+            and np.array_equal(self.ends, o.ends)
+            and np.array_equal(self.open, o.open)
+            and (self.gap_n != o.gap_n).nnz == 0
+            and np.allclose(self.gap_sum.toarray(), o.gap_sum.toarray())
+            and self.sessions == o.sessions
+        )
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return (
+            f"TransitionCounts({self.n_states} states, {self.counts.nnz} edges, "
+            f"{self.n_transitions} transitions, {self.sessions} sessions)"
+        )

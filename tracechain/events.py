@@ -1,0 +1,133 @@
+"""Events as parsers hand them on: columnar chunks plus a parse report.
+
+A parser never builds one Python object per event. It yields :class:`EventChunk`
+objects, each holding equally long columns: the session key, the time in seconds
+since the Unix epoch (NaN where unknown), the raw event name and the line number
+in the source file. The :class:`ParseReport` says what was read and what was
+skipped, by reason, with the first few problems located by file and line.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+__all__ = ["EventChunk", "ParseReport", "Problem", "MAX_PROBLEMS"]
+
+#: How many individual problems a report keeps (the counts keep everything).
+MAX_PROBLEMS = 10
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One skipped line: where it is and why it was skipped."""
+
+    source: str
+    line: int
+    reason: str
+    detail: str = ""
+
+    def __str__(self) -> str:
+        text = f"{self.source}:{self.line}: {self.reason}"
+        return f"{text} ({self.detail})" if self.detail else text
+
+
+@dataclass
+class ParseReport:
+    """What the ingest stage read and skipped.
+
+    ``lines_read`` counts physical lines (or records) looked at; ``events`` counts
+    events handed on; ``skipped`` counts lines left out, by reason.
+    """
+
+    lines_read: int = 0
+    events: int = 0
+    skipped: Counter = field(default_factory=Counter)
+    problems: list[Problem] = field(default_factory=list)
+    sources: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    fields: dict[str, str] = field(default_factory=dict)
+
+    def skip(self, source: str, line: int, reason: str, detail: str = "") -> None:
+        self.skipped[reason] += 1
+        if len(self.problems) < MAX_PROBLEMS:
+            self.problems.append(Problem(source, int(line), reason, detail[:200]))
+
+    @property
+    def lines_skipped(self) -> int:
+        return int(sum(self.skipped.values()))
+
+    def merge(self, other: "ParseReport") -> "ParseReport":
+        out = ParseReport(
+            lines_read=self.lines_read + other.lines_read,
+            events=self.events + other.events,
+            skipped=self.skipped + other.skipped,
+            problems=(self.problems + other.problems)[:MAX_PROBLEMS],
+            sources=self.sources + [s for s in other.sources if s not in self.sources],
+            notes=self.notes + [n for n in other.notes if n not in self.notes],
+            fields={**other.fields, **self.fields},
+        )
+        return out
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "sources": list(self.sources),
+            "lines_read": int(self.lines_read),
+            "events": int(self.events),
+            "lines_skipped": self.lines_skipped,
+            "skipped_by_reason": {k: int(v) for k, v in sorted(self.skipped.items())},
+            "problems": [
+                {"source": p.source, "line": p.line, "reason": p.reason, "detail": p.detail}
+                for p in self.problems
+            ],
+            "fields": dict(self.fields),
+            "notes": list(self.notes),
+        }
+
+
+@dataclass(frozen=True)
+class EventChunk:
+    """Equally long columns of events from one source.
+
+    ``session`` and ``event`` are Arrow string arrays (no nulls); ``time`` is float64
+    seconds since the epoch, NaN where the log has no time; ``line`` is the 1-based
+    line number (or record number) in ``source``.
+    """
+
+    source: str
+    session: pa.Array
+    event: pa.Array
+    time: np.ndarray
+    line: np.ndarray
+
+    def __post_init__(self) -> None:
+        n = len(self.session)
+        if not (len(self.event) == n == len(self.time) == len(self.line)):
+            raise ValueError("EventChunk columns differ in length")
+
+    def __len__(self) -> int:
+        return len(self.session)
+
+    @classmethod
+    def from_lists(
+        cls,
+        source: str,
+        session: list[str],
+        event: list[str],
+        time: list[float] | None = None,
+        line: list[int] | None = None,
+    ) -> "EventChunk":
+        n = len(session)
+        t = np.full(n, np.nan) if time is None else np.asarray(time, dtype=np.float64)
+        ln = np.arange(1, n + 1, dtype=np.int64) if line is None else np.asarray(line, dtype=np.int64)
+        return cls(
+            source,
+            pa.array([str(s) for s in session], type=pa.string()),
+            pa.array([str(e) for e in event], type=pa.string()),
+            t,
+            ln,
+        )

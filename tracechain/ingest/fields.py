@@ -1,0 +1,180 @@
+"""Field names and times shared by the tabular parsers (JSON Lines, CSV).
+
+Field detection looks for common names (case-insensitive) when the user names none.
+Times become float seconds since the Unix epoch: Arrow timestamps, ISO 8601 strings
+(a string without an offset is taken as UTC) and epoch numbers, whose unit (s, ms,
+µs, ns) is read off their magnitude unless the user states it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime, timezone
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..errors import FieldError
+
+__all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
+
+SESSION_NAMES = (
+    "session_id", "sessionid", "session", "sid", "case_id", "caseid", "case", "visit_id",
+    "visitor_id", "user_id", "userid", "user", "trace_id", "traceid", "job_id", "ticket_id", "order_id",
+)
+TIME_NAMES = ("timestamp", "time", "ts", "event_time", "datetime", "date", "created_at", "at")
+EVENT_NAMES = (
+    "event", "event_name", "eventname", "event_type", "action", "activity", "state", "status",
+    "page", "path", "url", "name", "type",
+)
+
+_UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}
+
+
+@dataclass(frozen=True)
+class FieldSpec:
+    """Which fields hold the session key, the time and the event name.
+
+    ``None`` means: detect from common names. ``time=""`` means the data has no time.
+    """
+
+    session: str | None = None
+    time: str | None = None
+    event: str | None = None
+    time_unit: str | None = None
+    time_format: str | None = None
+
+
+def _pick(candidates: tuple[str, ...], columns: list[str]) -> str | None:
+    lower = {c.lower(): c for c in columns}
+    for name in candidates:
+        if name in lower:
+            return lower[name]
+    return None
+
+
+def resolve_fields(spec: FieldSpec, columns: list[str], source: str) -> tuple[str, str | None, str]:
+    """Return the actual (session, time, event) column names, or raise FieldError."""
+    shown = ", ".join(repr(c) for c in columns) or "none"
+
+    def need(value: str | None, candidates: tuple[str, ...], role: str, option: str) -> str:
+        if value is not None:
+            if value not in columns:
+                raise FieldError(
+                    f"the {role} field {value!r} (from {option}) is not in the data; fields found: {shown}",
+                    source,
+                )
+            return value
+        found = _pick(candidates, columns)
+        if found is None:
+            raise FieldError(
+                f"no {role} field found (looked for {', '.join(candidates[:6])}, ...); "
+                f"name it with {option}; fields found: {shown}",
+                source,
+            )
+        return found
+
+    session = need(spec.session, SESSION_NAMES, "session", "--session-field")
+    event = need(spec.event, tuple(n for n in EVENT_NAMES if n != session), "event", "--event-field")
+    if spec.time == "":
+        time = None
+    elif spec.time is not None:
+        time = need(spec.time, TIME_NAMES, "time", "--time-field")
+    else:
+        time = _pick(tuple(n for n in TIME_NAMES if n not in (session, event)), columns)
+    if session == event:
+        raise FieldError(f"the session and event fields are both {session!r}", source)
+    return session, time, event
+
+
+def _epoch_scale(values: np.ndarray, unit: str | None) -> float:
+    if unit is not None:
+        return _UNITS[unit]
+    finite = np.abs(values[np.isfinite(values)])
+    if finite.size == 0:
+        return 1.0
+    m = float(np.median(finite))
+    if m > 1e17:
+        return 1e-9
+    if m > 1e14:
+        return 1e-6
+    if m > 1e11:
+        return 1e-3
+    return 1.0
+
+
+def _parse_iso(text: str) -> float:
+    s = text.strip()
+    if s.endswith(("Z", "z")):
+        s = s[:-1] + "+00:00"
+    dt = datetime.fromisoformat(s)
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=timezone.utc)
+    return dt.timestamp()
+
+
+def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[np.ndarray, np.ndarray]:
+    """Convert a time column to float seconds; return (seconds, bad) where ``bad``
+    marks non-null values that could not be read. Nulls become NaN and are not bad."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    n = len(arr)
+    typ = arr.type
+    if pa.types.is_null(typ):
+        return np.full(n, np.nan), np.zeros(n, dtype=bool)
+    if pa.types.is_timestamp(typ):
+        ints = pc.cast(arr, pa.int64()).to_numpy(zero_copy_only=False)
+        secs = ints.astype(np.float64) * {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}[typ.unit]
+        nulls = arr.is_null().to_numpy(zero_copy_only=False)
+        secs[nulls] = np.nan
+        return secs, np.zeros(n, dtype=bool)
+    if pa.types.is_integer(typ) or pa.types.is_floating(typ):
+        vals = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(np.float64, copy=True)
+        return vals * _epoch_scale(vals, spec.time_unit), np.zeros(n, dtype=bool)
+    if pa.types.is_boolean(typ):
+        return np.full(n, np.nan), ~arr.is_null().to_numpy(zero_copy_only=False)
+    # strings (or anything else, as text)
+    arr = pc.cast(arr, pa.string())
+    nulls = arr.is_null().to_numpy(zero_copy_only=False)
+    if spec.time_format:
+        try:
+            ts = pc.strptime(arr, format=spec.time_format, unit="us", error_is_null=True)
+            out, _ = times_to_seconds(ts, spec)
+            bad = np.isnan(out) & ~nulls
+            return out, bad
+        except pa.ArrowInvalid:
+            pass
+    else:
+        try:
+            num = pc.cast(arr, pa.float64())
+            vals = num.to_numpy(zero_copy_only=False).astype(np.float64, copy=True)
+            return vals * _epoch_scale(vals, spec.time_unit), np.zeros(n, dtype=bool)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            pass
+        try:
+            ts = pc.cast(arr, pa.timestamp("us", tz="UTC"))
+            return times_to_seconds(ts, spec)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            pass
+    # slow path: element by element, marking what cannot be read
+    out = np.full(n, np.nan)
+    bad = np.zeros(n, dtype=bool)
+    fmt = spec.time_format
+    for i, v in enumerate(arr.to_pylist()):
+        if v is None or v == "":
+            continue
+        try:
+            if fmt:
+                dt = datetime.strptime(v, fmt)
+                if dt.tzinfo is None:
+                    dt = dt.replace(tzinfo=timezone.utc)
+                out[i] = dt.timestamp()
+            else:
+                try:
+                    out[i] = float(v) * _UNITS.get(spec.time_unit or "s", 1.0)
+                except ValueError:
+                    out[i] = _parse_iso(v)
+        except (ValueError, OverflowError):
+            bad[i] = True
+    return out, bad

@@ -1,0 +1,234 @@
+"""Mapping raw event names to states, from a YAML file (safe loader only).
+
+The file is a mapping with these optional keys::
+
+    version: 1
+    rename:                 # exact renames, tried first
+      home_view: Home
+    rules:                  # tried in order; the first that matches wins
+      - regex: '^search:(\\w+)$'
+        state: 'Search {1}'         # {1} or {name}: regex groups
+      - path: /item/{id}            # URL path template; {x} is one segment, {x*} the rest
+        state: Item
+      - regex: '^debug\\.'
+        drop: true                  # leave the event out
+    unmatched: keep         # keep (default), drop, or a state name to lump into
+    collapse_repeats: false # merge immediate repeats of a state
+    goals: [Purchase]       # default goals when none are given on the command line
+    terminal: [Closed]      # workflow states in which a case is finished
+    groups: {Item: catalogue}   # diagram clusters (optional)
+
+Path templates match the path part of a URL (scheme, host, query and fragment are
+removed first) and ignore one trailing slash.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from typing import Any
+from urllib.parse import urlsplit
+
+import yaml
+
+from ..errors import ConfigError
+
+__all__ = ["Mapping", "Rule", "load_mapping", "parse_mapping"]
+
+_PLACEHOLDER = re.compile(r"\{(\w+)(\*?)\}")
+_STATE_REF = re.compile(r"\{(\w+)\}")
+
+
+class _LineLoader(yaml.SafeLoader):
+    """SafeLoader that records the line of every mapping as ``__line__``."""
+
+    def construct_mapping(self, node, deep=False):  # type: ignore[override]
+        data = super().construct_mapping(node, deep=deep)
+        data["__line__"] = node.start_mark.line + 1
+        return data
+
+
+@dataclass(frozen=True)
+class Rule:
+    kind: str  # "regex" or "path"
+    pattern: re.Pattern
+    state: str | None  # None: drop
+    line: int | None = None
+
+    def apply(self, raw: str) -> tuple[bool, str | None]:
+        subject = raw
+        if self.kind == "path":
+            subject = _path_of(raw)
+        m = self.pattern.search(subject) if self.kind == "regex" else self.pattern.fullmatch(subject)
+        if m is None:
+            return False, None
+        if self.state is None:
+            return True, None
+        groups = {str(i): (g or "") for i, g in enumerate(m.groups(), start=1)}
+        groups.update({k: (v or "") for k, v in m.groupdict().items()})
+        groups["0"] = m.group(0)
+
+        def sub(ref: re.Match) -> str:
+            return groups.get(ref.group(1), ref.group(0))
+
+        return True, _STATE_REF.sub(sub, self.state)
+
+
+def _path_of(raw: str) -> str:
+    s = raw.strip()
+    if "://" in s or s.startswith(("/", "?")) or " " not in s:
+        try:
+            parts = urlsplit(s)
+            return parts.path or "/"
+        except ValueError:
+            return s
+    return s
+
+
+def _template_regex(template: str, line: int | None, source: str | None) -> re.Pattern:
+    out = []
+    pos = 0
+    for m in _PLACEHOLDER.finditer(template):
+        out.append(re.escape(template[pos : m.start()]))
+        name, star = m.group(1), m.group(2)
+        out.append(f"(?P<{name}>.+)" if star else f"(?P<{name}>[^/]+)")
+        pos = m.end()
+    rest = template[pos:]
+    if rest.endswith("/*"):
+        out.append(re.escape(rest[:-2]) + "(?:/.*)?")
+    else:
+        out.append(re.escape(rest.rstrip("/")) if rest != "/" else re.escape(rest))
+    body = "".join(out)
+    if not template.endswith("/"):
+        body += "/?"
+    try:
+        return re.compile(body)
+    except re.error as err:
+        raise ConfigError(f"path template {template!r} is not valid: {err}", source, line) from err
+
+
+@dataclass(frozen=True)
+class Mapping:
+    """Compiled mapping rules; :meth:`map` turns one raw name into a state or None (drop)."""
+
+    rename: dict[str, str] = field(default_factory=dict)
+    rules: tuple[Rule, ...] = ()
+    unmatched: str = "keep"
+    collapse_repeats: bool = False
+    goals: tuple[str, ...] = ()
+    terminal: tuple[str, ...] = ()
+    groups: dict[str, str] = field(default_factory=dict)
+    source: str | None = None
+
+    def map(self, raw: str) -> str | None:
+        if raw in self.rename:
+            return self.rename[raw]
+        for rule in self.rules:
+            hit, state = rule.apply(raw)
+            if hit:
+                return state
+        if self.unmatched == "keep":
+            return raw
+        if self.unmatched == "drop":
+            return None
+        return self.unmatched
+
+    def map_many(self, names: list[str]) -> list[str | None]:
+        return [self.map(n) for n in names]
+
+
+def load_mapping(path: str) -> Mapping:
+    """Read a mapping file; errors name the file and line."""
+    try:
+        with open(path, encoding="utf-8") as f:
+            text = f.read()
+    except OSError as err:
+        raise ConfigError(f"cannot read mapping file: {err.strerror}", path) from err
+    return parse_mapping(text, path)
+
+
+def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
+    try:
+        data = yaml.load(text, Loader=_LineLoader)  # noqa: S506 - a SafeLoader subclass
+    except yaml.MarkedYAMLError as err:
+        mark = err.problem_mark or err.context_mark
+        line = mark.line + 1 if mark is not None else None
+        raise ConfigError(f"not valid YAML: {err.problem or err}", source, line) from err
+    except yaml.YAMLError as err:
+        raise ConfigError(f"not valid YAML: {err}", source) from err
+    if data is None:
+        return Mapping(source=source)
+    if not isinstance(data, dict):
+        raise ConfigError("a mapping file must be a YAML mapping (key: value)", source, 1)
+    allowed = {"version", "rename", "rules", "unmatched", "collapse_repeats", "goals", "terminal", "groups",
+               "parser", "__line__"}
+    for key in data:
+        if key not in allowed:
+            raise ConfigError(
+                f"unknown key {key!r}; allowed: {', '.join(sorted(allowed - {'__line__'}))}", source, data["__line__"]
+            )
+    if data.get("version", 1) != 1:
+        raise ConfigError(f"unsupported mapping version {data.get('version')!r} (this release reads 1)", source,
+                          data["__line__"])
+    rename = data.get("rename") or {}
+    if not isinstance(rename, dict):
+        raise ConfigError("'rename' must map raw names to states", source, data["__line__"])
+    rename = {str(k): str(v) for k, v in rename.items() if k != "__line__"}
+    rules = []
+    raw_rules = data.get("rules") or []
+    if not isinstance(raw_rules, list):
+        raise ConfigError("'rules' must be a list", source, data["__line__"])
+    for item in raw_rules:
+        rules.append(_rule(item, source))
+    unmatched = data.get("unmatched", "keep")
+    if not isinstance(unmatched, str) or not unmatched:
+        raise ConfigError("'unmatched' must be keep, drop or a state name", source, data["__line__"])
+
+    def names(key: str) -> tuple[str, ...]:
+        v = data.get(key) or []
+        if isinstance(v, str):
+            v = [v]
+        if not isinstance(v, list):
+            raise ConfigError(f"'{key}' must be a list of state names", source, data["__line__"])
+        return tuple(str(x) for x in v)
+
+    groups = data.get("groups") or {}
+    if not isinstance(groups, dict):
+        raise ConfigError("'groups' must map state names to group names", source, data["__line__"])
+    return Mapping(
+        rename=rename,
+        rules=tuple(rules),
+        unmatched=unmatched,
+        collapse_repeats=bool(data.get("collapse_repeats", False)),
+        goals=names("goals"),
+        terminal=names("terminal"),
+        groups={str(k): str(v) for k, v in groups.items() if k != "__line__"},
+        source=source,
+    )
+
+
+def _rule(item: Any, source: str | None) -> Rule:
+    if not isinstance(item, dict):
+        raise ConfigError(f"each rule must be a mapping, got {item!r}", source)
+    line = item.get("__line__")
+    keys = set(item) - {"__line__"}
+    kinds = keys & {"regex", "path"}
+    if len(kinds) != 1:
+        raise ConfigError("a rule needs exactly one of 'regex' or 'path'", source, line)
+    extra = keys - {"regex", "path", "state", "drop"}
+    if extra:
+        raise ConfigError(f"unknown rule key(s): {', '.join(sorted(extra))}", source, line)
+    kind = kinds.pop()
+    drop = bool(item.get("drop", False))
+    state = item.get("state")
+    if drop == (state is not None):
+        raise ConfigError("a rule needs either 'state: NAME' or 'drop: true'", source, line)
+    pattern_text = str(item[kind])
+    if kind == "regex":
+        try:
+            pattern = re.compile(pattern_text)
+        except re.error as err:
+            raise ConfigError(f"regular expression {pattern_text!r} is not valid: {err}", source, line) from err
+    else:
+        pattern = _template_regex(pattern_text, line, source)
+    return Rule(kind, pattern, None if drop else str(state), line)

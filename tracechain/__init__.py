@@ -1,0 +1,48 @@
+"""tracechain: Markov-chain analysis of sessions in event logs.
+
+The public API is the same objects the command line uses::
+
+    from tracechain import count_sources, ShapeOptions, Chain, analyze
+    counts, report = count_sources(["shop.jsonl"], shape=ShapeOptions(goals=("Order placed",)))
+    chain = Chain.from_counts(counts, goals=["Order placed"])
+    result = analyze(chain, report)
+    result.conversion_total()
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .chain import Chain  # noqa: E402
+from .counts import TransitionCounts  # noqa: E402
+from .events import EventChunk, ParseReport  # noqa: E402
+from .ingest.fields import FieldSpec  # noqa: E402
+from .pipeline import ShapeOptions, count_chunks, count_sources, read_events  # noqa: E402
+from .shape.mapping import Mapping, load_mapping, parse_mapping  # noqa: E402
+from .analyze.summary import Analysis, analyze  # noqa: E402
+from .analyze.absorbing import absorbing_analysis  # noqa: E402
+from .analyze.classes import communicating_classes  # noqa: E402
+from .analyze.dead_ends import dead_ends, exit_states, goal_unreachable  # noqa: E402
+
+__all__ = [
+    "__version__",
+    "Chain",
+    "TransitionCounts",
+    "EventChunk",
+    "ParseReport",
+    "FieldSpec",
+    "ShapeOptions",
+    "count_chunks",
+    "count_sources",
+    "read_events",
+    "Mapping",
+    "load_mapping",
+    "parse_mapping",
+    "Analysis",
+    "analyze",
+    "absorbing_analysis",
+    "communicating_classes",
+    "dead_ends",
+    "exit_states",
+    "goal_unreachable",
+]

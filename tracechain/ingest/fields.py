@@ -23,7 +23,9 @@ SESSION_NAMES = (
     "session_id", "sessionid", "session", "sid", "case_id", "caseid", "case", "visit_id",
     "visitor_id", "user_id", "userid", "user", "trace_id", "traceid", "job_id", "ticket_id", "order_id",
 )
-TIME_NAMES = ("timestamp", "time", "ts", "event_time", "datetime", "date", "created_at", "at")
+TIME_NAMES = (
+    "timestamp", "time", "ts", "event_time", "datetime", "date", "created_at", "changed_at", "updated_at", "at",
+)
 EVENT_NAMES = (
     "event", "event_name", "eventname", "event_type", "action", "activity", "state", "status",
     "page", "path", "url", "name", "type",
@@ -160,6 +162,7 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
     # slow path: element by element, marking what cannot be read
     out = np.full(n, np.nan)
     bad = np.zeros(n, dtype=bool)
+    numeric = np.zeros(n, dtype=bool)  # epoch numbers, scaled together below
     fmt = spec.time_format
     for i, v in enumerate(arr.to_pylist()):
         if v is None or v == "":
@@ -172,9 +175,18 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
                 out[i] = dt.timestamp()
             else:
                 try:
-                    out[i] = float(v) * _UNITS.get(spec.time_unit or "s", 1.0)
+                    out[i] = float(v)
+                    numeric[i] = True
                 except ValueError:
                     out[i] = _parse_iso(v)
         except (ValueError, OverflowError):
             bad[i] = True
+    if numeric.any():
+        # the same unit rule as a wholly numeric column: a column of epoch milliseconds
+        # with one unreadable value must not be read as seconds
+        vals = out[numeric]
+        finite = np.isfinite(vals)
+        bad[np.flatnonzero(numeric)[~finite]] = True  # "nan", "inf" are no times
+        vals[~finite] = np.nan
+        out[numeric] = vals * _epoch_scale(vals, spec.time_unit)
     return out, bad

@@ -1,0 +1,102 @@
+"""Where sessions are lost: dead ends, exit states and states that cannot reach a goal.
+
+* A *dead end* is a state that is not a goal and whose observed exits all go to the end
+  (or back to itself): every session that gets there leaves the product from there.
+* *Exit states* rank states by the sessions that ended there without converting
+  ("sessions lost"), with the exit rate: sessions lost / visits.
+* A state is *goal-unreachable* when no path leads from it to a goal, i.e. its absorption
+  probability into every goal is exactly 0. This is decided on the graph (reachability),
+  not by comparing floating-point numbers with 0.
+
+These are definitions of the trade (common practice, no source).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+from scipy.sparse import csgraph
+
+from ..chain import Chain
+
+__all__ = ["DeadEnd", "ExitState", "dead_ends", "exit_states", "goal_unreachable"]
+
+
+@dataclass(frozen=True)
+class DeadEnd:
+    state: int  # chain index
+    sessions_lost: int
+    visits: int
+
+
+@dataclass(frozen=True)
+class ExitState:
+    state: int
+    sessions_lost: int
+    visits: int
+    exit_rate: float
+    share_of_sessions: float
+
+
+def _counts(chain: Chain):
+    W = chain.weights
+    visits = np.asarray(W.sum(axis=1)).ravel()
+    if chain.counts is not None:
+        off = 1 if chain.start is not None else 0
+        opened = np.zeros(chain.n)
+        opened[off : off + chain.counts.n_states] = chain.counts.open
+        visits = visits + opened
+    to_end = np.zeros(chain.n)
+    if chain.end is not None:
+        to_end = W[:, [chain.end]].toarray().ravel()
+    return W, visits, to_end
+
+
+def dead_ends(chain: Chain) -> tuple[DeadEnd, ...]:
+    """Non-goal states whose observed exits all go to the end or back to themselves."""
+    if chain.end is None:
+        return ()
+    W, visits, to_end = _counts(chain)
+    Wc = W.tocoo()
+    other = (Wc.col != Wc.row) & (Wc.col != chain.end)
+    leaves = np.zeros(chain.n, dtype=bool)
+    leaves[Wc.row[other & (Wc.data > 0)]] = True
+    out = []
+    for i in chain.observed:
+        if chain.roles[i] in ("transient",) and not leaves[i] and to_end[i] > 0:
+            out.append(DeadEnd(int(i), int(to_end[i]), int(visits[i])))
+    out.sort(key=lambda d: (-d.sessions_lost, d.state))
+    return tuple(out)
+
+
+def exit_states(chain: Chain, top: int | None = None) -> tuple[ExitState, ...]:
+    """States ranked by sessions that ended there without converting."""
+    if chain.end is None:
+        return ()
+    W, visits, to_end = _counts(chain)
+    total = chain.counts.sessions if chain.counts is not None and chain.counts.sessions else max(to_end.sum(), 1)
+    out = []
+    for i in chain.observed:
+        if chain.roles[i] == "transient" and to_end[i] > 0:
+            out.append(ExitState(int(i), int(to_end[i]), int(visits[i]), float(to_end[i] / visits[i]),
+                                 float(to_end[i] / total)))
+    out.sort(key=lambda e: (-e.sessions_lost, e.state))
+    return tuple(out[:top] if top else out)
+
+
+def goal_unreachable(chain: Chain) -> dict[int, np.ndarray]:
+    """Per goal (chain index): the non-absorbing states from which it cannot be reached."""
+    if len(chain.goals) == 0:
+        return {}
+    G = sp.csr_array(chain.P.T, copy=True)
+    G.data = np.ones_like(G.data)
+    candidates = np.array([i for i in range(chain.n) if not chain.absorbing_mask[i]], dtype=np.int64)
+    out = {}
+    for g in chain.goals:
+        order = csgraph.breadth_first_order(G, int(g), directed=True, return_predecessors=False)
+        reach = np.zeros(chain.n, dtype=bool)
+        reach[order] = True
+        out[int(g)] = candidates[~reach[candidates]]
+    return out

@@ -1,0 +1,157 @@
+"""The standard analysis of a chain, bundled for reports.
+
+:func:`analyze` runs the structural and absorbing analyses once and returns an
+:class:`Analysis`: a small, format-free object that the terminal, JSON and diagram
+renderers read. Every number in it is finite or ``None`` (with the reason in
+``notes``); nothing here knows about output formats.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..chain import Chain
+from ..events import ParseReport
+from .absorbing import AbsorbingResult, absorbing_analysis
+from .classes import ClassesResult, communicating_classes
+from .dead_ends import DeadEnd, ExitState, dead_ends, exit_states, goal_unreachable
+
+__all__ = ["Analysis", "StateRow", "GoalConversion", "analyze"]
+
+
+def _num(x) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+@dataclass(frozen=True)
+class GoalConversion:
+    goal: str
+    probability: float | None  # from the start, by the chain
+    sessions: int  # sessions observed entering the goal
+
+
+@dataclass(frozen=True)
+class StateRow:
+    """Per-state figures for reports (``None`` where undefined)."""
+
+    state: str
+    index: int
+    role: str
+    visits: int
+    sessions_lost: int
+    p_goal: dict[str, float | None]
+    p_any_goal: float | None
+    p_trap: float | None
+    steps: float | None
+    steps_sd: float | None
+    steps_given: dict[str, float | None]
+
+
+@dataclass(frozen=True)
+class Analysis:
+    chain: Chain
+    classes: ClassesResult
+    absorbing: AbsorbingResult
+    dead_ends: tuple[DeadEnd, ...]
+    exits: tuple[ExitState, ...]
+    unreachable: dict[int, np.ndarray]
+    report: ParseReport | None = None
+    notes: tuple[str, ...] = ()
+    settings: dict = field(default_factory=dict)
+
+    # -- headline figures -------------------------------------------------------------
+    @property
+    def goal_labels(self) -> list[str]:
+        return [self.chain.label(int(g)) for g in self.chain.goals]
+
+    def conversion(self) -> list[GoalConversion]:
+        ch = self.chain
+        out = []
+        W = ch.weights
+        for g in ch.goals:
+            p = None
+            if ch.start is not None:
+                p = _num(self.absorbing.probability(ch.start, int(g)))
+            gi = int(g)
+            entered = int(W[:, [gi]].sum() - W[gi, gi]) if ch.counts is not None else 0
+            out.append(GoalConversion(ch.label(int(g)), p, entered))
+        return out
+
+    def conversion_total(self) -> float | None:
+        conv = self.conversion()
+        if not conv or any(c.probability is None for c in conv):
+            return None
+        return _num(sum(c.probability for c in conv))
+
+    def unreachable_any(self) -> list[int]:
+        """States from which no goal can be reached."""
+        if not self.unreachable:
+            return []
+        sets = [set(v.tolist()) for v in self.unreachable.values()]
+        common = set.intersection(*sets)
+        return sorted(common)
+
+    def state_rows(self) -> list[StateRow]:
+        ch, ab = self.chain, self.absorbing
+        W = ch.weights
+        visits = np.asarray(W.sum(axis=1)).ravel()
+        to_end = W[:, [ch.end]].toarray().ravel() if ch.end is not None else np.zeros(ch.n)
+        goal_cols = {int(g): ab.column(int(g)) for g in ch.goals}
+        trap_cols = [k for k, nm in enumerate(ab.outcomes) if nm.startswith("trap:")]
+        rows = []
+        for i in range(ch.n):
+            r = ab.row(i)
+            role = ch.roles[i]
+            if r is not None:
+                pg = {ch.label(g): _num(ab.B[r, c]) for g, c in goal_cols.items()}
+                pany = _num(sum(ab.B[r, c] for c in goal_cols.values())) if goal_cols else None
+                ptrap = _num(sum(ab.B[r, c] for c in trap_cols)) if trap_cols else 0.0
+                steps = _num(ab.steps[r])
+                var = ab.steps_var[r]
+                sd = _num(math.sqrt(var)) if math.isfinite(var) else None
+                given = {ab.outcomes[c]: _num(v[r]) for c, v in ab.steps_given.items()}
+            else:
+                in_trap = any(i in ab.outcome_states[c] for c in trap_cols)
+                pg = {ch.label(g): (1.0 if g == i else 0.0) for g in goal_cols}
+                pany = (1.0 if i in goal_cols else 0.0) if goal_cols else None
+                ptrap = 1.0 if in_trap else 0.0
+                steps = None if in_trap else 0.0
+                sd = None if in_trap else 0.0
+                given = {ab.outcomes[c]: (0.0 if ab.outcome_states[c] == (i,) else None) for c in ab.steps_given}
+            rows.append(StateRow(
+                state=ch.label(i), index=i, role=role, visits=int(visits[i]),
+                sessions_lost=int(to_end[i]) if role == "transient" else 0,
+                p_goal=pg, p_any_goal=pany, p_trap=ptrap, steps=steps, steps_sd=sd, steps_given=given,
+            ))
+        return rows
+
+
+def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, settings: dict | None = None) -> Analysis:
+    """Run the standard analyses of ``chain``."""
+    classes = communicating_classes(chain)
+    ab = absorbing_analysis(chain, classes)
+    notes: list[str] = []
+    if len(chain.goals) == 0:
+        notes.append("no goal given: conversion is not computed (name goals with --goal or in the mapping file)")
+    if chain.start is None:
+        notes.append("the data do not say where sessions start: conversion from the start is not computed")
+    if classes.traps:
+        k = len(classes.traps)
+        notes.append(
+            f"{k} closed loop{'s' if k > 1 else ''} with no way out (trap): sessions that enter never end; "
+            "expected steps are infinite (shown as none) for states that can reach one"
+        )
+    sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink"]
+    if sinks:
+        notes.append(f"{len(sinks)} state(s) have no observed exit and are treated as absorbing: {', '.join(sinks[:5])}")
+    return Analysis(
+        chain=chain, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
+        exits=exit_states(chain, top), unreachable=goal_unreachable(chain), report=report,
+        notes=tuple(notes), settings=dict(settings or {}),
+    )

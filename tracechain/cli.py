@@ -1,0 +1,204 @@
+"""The command line: a thin layer over the Python API.
+
+``main(argv) -> int`` parses arguments, calls the API and renders results. Every
+:class:`~tracechain.errors.TracechainError` becomes one message on stderr and exit
+status 2; nothing a user can cause ends in a traceback.
+
+Exit statuses: 0 success, 1 findings (reserved for checks), 2 usage or input error,
+130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import sys
+import warnings
+from collections.abc import Sequence
+
+from . import __version__
+from .analyze.summary import analyze
+from .chain import Chain
+from .errors import TracechainError, UsageError
+from .ingest.fields import FieldSpec
+from .ingest.registry import available_parsers
+from .ingest.sources import cleanup_spooled
+from .pipeline import ShapeOptions, count_sources
+from .report.dot import render_dot, render_image
+from .report.json_report import analysis_document, dumps
+from .report.text import render_text
+from .report.writer import write_output
+from .shape.mapping import load_mapping
+
+__all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
+
+EXIT_OK = 0
+EXIT_FINDINGS = 1
+EXIT_ERROR = 2
+EXIT_INTERRUPTED = 130
+
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|m|min|h|d)?\s*$", re.IGNORECASE)
+_UNIT_S = {None: 1, "s": 1, "sec": 1, "m": 60, "min": 60, "h": 3600, "d": 86400}
+
+
+def parse_duration(text: str) -> float:
+    """``90``, ``90s``, ``30m``, ``1.5h``, ``2d`` -> seconds."""
+    m = _DURATION.match(text)
+    if not m:
+        raise argparse.ArgumentTypeError(f"not a duration: {text!r} (use e.g. 90s, 30m, 1h, 2d)")
+    return float(m.group(1)) * _UNIT_S[m.group(2).lower() if m.group(2) else None]
+
+
+def _share(text: str) -> float:
+    try:
+        v = float(text.rstrip("%")) / (100.0 if text.endswith("%") else 1.0)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a share: {text!r} (use e.g. 0.01 or 1%)") from None
+    if not 0.0 <= v < 1.0:
+        raise argparse.ArgumentTypeError("a share must be at least 0 and below 1")
+    return v
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # argparse's own usage errors: exit 2 with usage
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_ERROR, f"tracechain: error: {message}\n")
+
+
+def _add_input_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("paths", nargs="+", metavar="PATH",
+                   help="event logs: files, directories, globs; '-' for standard input; gzip/bz2/xz are read too")
+    g = p.add_argument_group("reading")
+    g.add_argument("--format", help="input format (default: detected from the first lines); see 'tracechain formats'")
+    g.add_argument("--session-field", metavar="NAME", help="field holding the session key (default: detected)")
+    g.add_argument("--time-field", metavar="NAME", help="field holding the time; '' for none (default: detected)")
+    g.add_argument("--event-field", metavar="NAME", help="field holding the event name (default: detected)")
+    g.add_argument("--time-unit", choices=("s", "ms", "us", "ns"),
+                   help="unit of numeric epoch times (default: from their magnitude)")
+    g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
+    g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
+    s = p.add_argument_group("shaping sessions into states")
+    s.add_argument("--mapping", metavar="YAML", help="rules turning raw event names into states")
+    s.add_argument("--goal", action="append", default=[], metavar="STATE",
+                   help="a goal (conversion) state; repeat for several (default: the mapping file's goals)")
+    s.add_argument("--keep-after-goal", action="store_true",
+                   help="keep a session's events after its first goal (default: cut there)")
+    rep = s.add_mutually_exclusive_group()
+    rep.add_argument("--collapse-repeats", dest="collapse", action="store_true", default=None,
+                     help="merge immediate repeats of a state")
+    rep.add_argument("--no-collapse-repeats", dest="collapse", action="store_false")
+    s.add_argument("--gap", type=parse_duration, metavar="DURATION",
+                   help="start a new session after this much inactivity (e.g. 30m)")
+    s.add_argument("--order", type=int, default=1, metavar="K", help="chain order: states are the last K events")
+    s.add_argument("--smoothing", type=float, default=0.0, metavar="ALPHA",
+                   help="additive smoothing of transition probabilities (default 0)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="tracechain", description="Markov-chain analysis of sessions in event logs.")
+    parser.add_argument("--version", action="version", version=f"tracechain {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    a = sub.add_parser("analyze", help="build the chain from event logs and print its analysis",
+                       description="Build a Markov chain from event logs and analyse it: conversion, dead ends, "
+                                   "exit states, classes, expected steps.")
+    _add_input_options(a)
+    o = a.add_argument_group("output")
+    o.add_argument("--json", metavar="FILE", help="write the results as JSON ('-' for stdout)")
+    o.add_argument("--dot", metavar="FILE", help="write the diagram as Graphviz DOT")
+    o.add_argument("--svg", metavar="FILE", help="write the diagram as SVG (needs Graphviz)")
+    o.add_argument("--png", metavar="FILE", help="write the diagram as PNG (needs Graphviz)")
+    o.add_argument("--pdf", metavar="FILE", help="write the diagram as PDF (needs Graphviz)")
+    o.add_argument("--min-edge-share", type=_share, default=0.005, metavar="SHARE",
+                   help="hide diagram edges carrying less than this share of transitions (default 0.005 = 0.5%%)")
+    o.add_argument("--max-states", type=int, default=60, metavar="N", help="draw at most N states (default 60)")
+    o.add_argument("--top", type=int, default=10, metavar="N", help="rows in the exit-state table (default 10)")
+    o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
+    a.set_defaults(handler=cmd_analyze)
+    f = sub.add_parser("formats", help="list the input formats this installation reads")
+    f.set_defaults(handler=cmd_formats)
+    return parser
+
+
+def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, list[str], list[str]]:
+    mapping = load_mapping(args.mapping) if args.mapping else None
+    goals = list(args.goal) or (list(mapping.goals) if mapping else [])
+    terminal = list(mapping.terminal) if mapping else []
+    if args.order < 1:
+        raise UsageError("--order must be at least 1")
+    if args.smoothing < 0:
+        raise UsageError("--smoothing must be non-negative")
+    shape = ShapeOptions(
+        mapping=mapping, goals=tuple(goals), truncate_at_goal=not args.keep_after_goal,
+        collapse_repeats=args.collapse, gap=args.gap, order=args.order,
+    )
+    fields = FieldSpec(session=args.session_field, time=args.time_field, event=args.event_field,
+                       time_unit=args.time_unit, time_format=args.time_format)
+    return shape, fields, goals, terminal
+
+
+def build_chain(args: argparse.Namespace):
+    shape, fields, goals, terminal = shape_from_args(args)
+    counts, report = count_sources(args.paths, format=args.format, fields=fields, shape=shape, strict=args.strict)
+    chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
+    settings = {
+        "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,
+        "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": shape.gap, "order": shape.order,
+        "smoothing": args.smoothing, "mapping": args.mapping,
+    }
+    return chain, report, settings
+
+
+def cmd_analyze(args: argparse.Namespace) -> int:
+    chain, report, settings = build_chain(args)
+    result = analyze(chain, report, top=args.top, settings=settings)
+    written = []
+    if args.json:
+        written.append(write_output(args.json, dumps(analysis_document(result))))
+    wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
+    if wants_diagram:
+        dot_text = render_dot(result, min_edge_share=args.min_edge_share, max_states=args.max_states)
+        if args.dot:
+            written.append(write_output(args.dot, dot_text))
+        for fmt in ("svg", "png", "pdf"):
+            target = getattr(args, fmt)
+            if target:
+                written.append(write_output(target, render_image(dot_text, fmt)))
+    if not args.quiet and args.json != "-":
+        sys.stdout.write(render_text(result))
+        sys.stdout.flush()
+    for w in written:
+        if w != "-":
+            print(f"wrote {w}", file=sys.stderr)
+    return EXIT_OK
+
+
+def cmd_formats(args: argparse.Namespace) -> int:
+    for name, p in sorted(available_parsers().items()):
+        print(f"{name:10s} {p.kind:7s} {getattr(p, 'description', '')}")
+    return EXIT_OK
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "handler", None):
+        parser.print_help(sys.stderr)
+        return EXIT_ERROR
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            return args.handler(args)
+    except TracechainError as err:
+        print(f"tracechain: error: {err}", file=sys.stderr)
+        return err.exit_status
+    except KeyboardInterrupt:
+        print("tracechain: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        return EXIT_OK
+    finally:
+        cleanup_spooled()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,81 @@
+"""The analysis as a JSON document, versioned and described by a JSON Schema.
+
+The schema is ``tracechain/schemas/analysis-1.schema.json`` (JSON Schema draft
+2020-12). Every document carries ``schema_version``; no NaN or Infinity is ever written
+(undefined figures are ``null``).
+"""
+
+from __future__ import annotations
+
+import json
+from importlib import resources
+from typing import Any
+
+from .. import __version__
+from ..analyze.summary import Analysis
+
+__all__ = ["SCHEMA_VERSION", "analysis_document", "dumps", "load_schema"]
+
+SCHEMA_VERSION = "1.0"
+
+
+def load_schema() -> dict:
+    text = resources.files("tracechain").joinpath("schemas/analysis-1.schema.json").read_text(encoding="utf-8")
+    return json.loads(text)
+
+
+def analysis_document(a: Analysis) -> dict[str, Any]:
+    ch = a.chain
+    counts = ch.counts
+    lab = ch.label
+    conv = a.conversion()
+    doc: dict[str, Any] = {
+        "schema_version": SCHEMA_VERSION,
+        "tool": {"name": "tracechain", "version": __version__},
+        "input": a.report.to_dict() if a.report is not None else None,
+        "settings": dict(a.settings),
+        "overview": {
+            "sessions": int(counts.sessions) if counts is not None else None,
+            "events": int(counts.events) if counts is not None else None,
+            "states": int(len(ch.observed)),
+            "edges": int(ch.P.nnz),
+            "transitions": int(counts.n_transitions + counts.starts.sum() + counts.ends.sum()) if counts else None,
+            "goals": a.goal_labels,
+            "order": int(counts.meta.get("order", 1)) if counts is not None else 1,
+            "solver": a.absorbing.method,
+        },
+        "conversion": {
+            "from_start": a.conversion_total(),
+            "goals": [{"goal": c.goal, "probability": c.probability, "sessions": c.sessions} for c in conv],
+        },
+        "dead_ends": [
+            {"state": lab(d.state), "sessions_lost": d.sessions_lost, "visits": d.visits} for d in a.dead_ends
+        ],
+        "exit_states": [
+            {"state": lab(e.state), "sessions_lost": e.sessions_lost, "visits": e.visits,
+             "exit_rate": e.exit_rate, "share_of_sessions": e.share_of_sessions}
+            for e in a.exits
+        ],
+        "goal_unreachable": {
+            "any_goal": [lab(i) for i in a.unreachable_any() if ch.roles[i] != "start"],
+            "by_goal": {lab(g): [lab(int(i)) for i in v] for g, v in a.unreachable.items()},
+        },
+        "classes": [
+            {"states": [lab(i) for i in c.states], "closed": c.closed, "period": c.period, "kind": c.kind}
+            for c in a.classes.classes
+        ],
+        "states": [
+            {
+                "state": r.state, "role": r.role, "visits": r.visits, "sessions_lost": r.sessions_lost,
+                "p_goal": r.p_goal, "p_any_goal": r.p_any_goal, "p_trap": r.p_trap,
+                "expected_steps": r.steps, "steps_sd": r.steps_sd, "steps_given": r.steps_given,
+            }
+            for r in a.state_rows()
+        ],
+        "notes": list(a.notes),
+    }
+    return doc
+
+
+def dumps(doc: dict[str, Any]) -> str:
+    return json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n"

@@ -1,0 +1,151 @@
+"""The terminal summary of an analysis.
+
+State names come from logs and are untrusted: control characters and bidirectional
+marks are shown as escapes, and very long names are shortened, so a name cannot move
+the cursor, recolour the terminal or reorder a line.
+"""
+
+from __future__ import annotations
+
+import textwrap
+import unicodedata
+
+from ..analyze.summary import Analysis
+
+__all__ = ["render_text", "safe_text", "CAUTION"]
+
+CAUTION = (
+    "Read with care: these figures describe the sessions in these logs under a Markov model "
+    "(the next state depends only on the current one, or on the last k with --order k); they are "
+    "estimates, not causes. Session keys and event names can be personal data: handle the logs and "
+    "these outputs under your organisation's rules and the data-protection law that applies to you."
+)
+
+
+def safe_text(s: str, limit: int = 60) -> str:
+    out = []
+    for ch in str(s):
+        cat = unicodedata.category(ch)
+        if cat in ("Cc", "Cf", "Zl", "Zp") or ch in "\u2028\u2029":
+            out.append(f"\\u{ord(ch):04x}" if ord(ch) > 0xFF else f"\\x{ord(ch):02x}")
+        else:
+            out.append(ch)
+    text = "".join(out)
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def _pct(x: float | None) -> str:
+    return "n/a" if x is None else f"{100 * x:.1f}%"
+
+
+def _num(x: float | None, digits: int = 2) -> str:
+    return "inf" if x is None else f"{x:.{digits}f}"
+
+
+def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> list[str]:
+    right = right if right is not None else set(range(1, len(headers)))
+    widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
+
+    def fmt(cells: list[str]) -> str:
+        return "  ".join(c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+
+    return ["  " + fmt(headers), "  " + "  ".join("-" * w for w in widths)] + ["  " + fmt(r) for r in rows]
+
+
+def render_text(a: Analysis, max_states: int = 40) -> str:
+    ch = a.chain
+    c = ch.counts
+    lab = lambda i: safe_text(ch.label(i))  # noqa: E731
+    lines: list[str] = []
+    order = c.meta.get("order", 1) if c is not None else 1
+    if c is not None:
+        lines.append(
+            f"tracechain: {c.sessions:,} sessions, {c.events:,} events, {len(ch.observed):,} states, "
+            f"{c.counts.nnz:,} edges between states (order {order})"
+        )
+    rep = a.report
+    if rep is not None:
+        skipped = ", ".join(f"{k} {v:,}" for k, v in sorted(rep.skipped.items()))
+        lines.append(
+            f"input: {len(rep.sources)} file(s), {rep.lines_read:,} lines read, {rep.lines_skipped:,} skipped"
+            + (f" ({skipped})" if skipped else "")
+        )
+        if rep.fields:
+            lines.append("fields: " + ", ".join(f"{k}={safe_text(v) or '(none)'}" for k, v in rep.fields.items()))
+        for p in rep.problems[:5]:
+            lines.append(f"  {safe_text(str(p), 160)}")
+        for n in rep.notes:
+            lines.append(f"note: {n}")
+    lines.append("goals: " + (", ".join(safe_text(g) for g in a.goal_labels) or "(none)"))
+    lines.append("")
+
+    conv = a.conversion()
+    if conv:
+        lines.append("Conversion from the start")
+        rows = [[safe_text(x.goal), _pct(x.probability), f"{x.sessions:,}"] for x in conv]
+        if len(conv) > 1:
+            rows.append(["any goal", _pct(a.conversion_total()), f"{sum(x.sessions for x in conv):,}"])
+        lines += _table(["goal", "probability", "sessions"], rows)
+        lines.append("")
+
+    lines.append("Dead ends (every observed exit leaves the product)")
+    if a.dead_ends:
+        lines += _table(["state", "sessions lost", "visits"],
+                        [[lab(d.state), f"{d.sessions_lost:,}", f"{d.visits:,}"] for d in a.dead_ends])
+    else:
+        lines.append("  none")
+    lines.append("")
+
+    lines.append("Top exit states (sessions that ended there without converting)")
+    if a.exits:
+        lines += _table(
+            ["state", "sessions lost", "exit rate", "share of sessions"],
+            [[lab(e.state), f"{e.sessions_lost:,}", _pct(e.exit_rate), _pct(e.share_of_sessions)] for e in a.exits],
+        )
+    else:
+        lines.append("  none")
+    lines.append("")
+
+    if ch.goals.size:
+        un = [i for i in a.unreachable_any() if ch.roles[i] != "start"]
+        lines.append("Goal-unreachable states (no path to any goal)")
+        lines.append("  " + (", ".join(lab(i) for i in un[:30]) + (" ..." if len(un) > 30 else "") if un else "none"))
+        lines.append("")
+
+    lines.append("Communicating classes")
+    cls_rows = []
+    for k, cl in enumerate(a.classes.classes):
+        if cl.size == 1 and cl.kind == "open" and len(a.classes.classes) > 12:
+            continue
+        names = ", ".join(lab(i) for i in cl.states[:6]) + (" ..." if cl.size > 6 else "")
+        period = "-" if cl.period is None else str(cl.period)
+        cls_rows.append([names, str(cl.size), "closed" if cl.closed else "open", cl.kind, period])
+    lines += _table(["states", "size", "closed", "kind", "period"], cls_rows, right={1, 4})
+    hidden = len(a.classes.classes) - len(cls_rows)
+    if hidden:
+        lines.append(f"  ... and {hidden} single-state open classes")
+    lines.append("")
+
+    rows = a.state_rows()
+    goal_names = a.goal_labels
+    given_cols = [o for o in a.absorbing.outcomes if o in goal_names]
+    headers = ["state", "role", "visits"] + [f"P({safe_text(g, 20)})" for g in goal_names]
+    headers += ["steps to absorption", "sd"] + [f"steps | {safe_text(g, 20)}" for g in given_cols]
+    body = []
+    shown = [r for r in rows if r.role in ("start", "transient", "sink", "terminal", "goal")]
+    shown.sort(key=lambda r: (r.role != "start", -r.visits))
+    for r in shown[:max_states]:
+        cells = [safe_text(r.state, 40), r.role, f"{r.visits:,}"]
+        cells += [_pct(r.p_goal.get(g)) for g in goal_names]
+        cells += [_num(r.steps), _num(r.steps_sd)]
+        cells += ["-" if r.steps_given.get(g) is None else _num(r.steps_given.get(g)) for g in given_cols]
+        body.append(cells)
+    lines.append("Per state (probability of reaching each goal, expected steps to absorption)")
+    lines += _table(headers, body, right=set(range(2, len(headers))))
+    if len(shown) > max_states:
+        lines.append(f"  ... {len(shown) - max_states} more states in the JSON output (--json)")
+    lines.append("")
+    for n in a.notes:
+        lines.append(f"note: {n}")
+    lines.extend(textwrap.wrap(CAUTION, 100))
+    return "\n".join(lines) + "\n"

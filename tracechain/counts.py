@@ -109,10 +109,13 @@ class TransitionCounts:
         end: Any = END,
         gaps: dict[tuple[Any, Any], float] | None = None,
         sessions: int | None = None,
+        gap_counts: dict[tuple[Any, Any], int] | None = None,
     ) -> "TransitionCounts":
         """Counts from ``{(from, to): count}``; ``start``/``end`` mark the pseudo-states.
 
-        ``gaps`` optionally gives the sum of time gaps per edge (in seconds).
+        ``gaps`` optionally gives the sum of time gaps per edge (in seconds), and
+        ``gap_counts`` how many of the edge's transitions that sum covers (all of
+        them when not given).
         """
         labels: dict[Any, int] = {}
         for a, b in edges:
@@ -137,7 +140,12 @@ class TransitionCounts:
                 vals.append(c)
                 g = (gaps or {}).get((a, b))
                 gs.append(0.0 if g is None else float(g))
-                gn.append(0 if g is None else c)
+                if g is None:
+                    gn.append(0)
+                elif gap_counts is not None and (a, b) in gap_counts:
+                    gn.append(int(gap_counts[(a, b)]))
+                else:
+                    gn.append(c)
         return cls(
             tuple(labels),
             _csr(n, rows, cols, vals),
@@ -216,7 +224,8 @@ class TransitionCounts:
     def __add__(self, other: "TransitionCounts") -> "TransitionCounts":
         if not isinstance(other, TransitionCounts):
             return NotImplemented
-        union = tuple(self.states) + tuple(s for s in other.states if s not in set(self.states))
+        mine = set(self.states)
+        union = tuple(self.states) + tuple(s for s in other.states if s not in mine)
         a = self.reindex(union)
         b = other.reindex(union)
         seen = dict(b.first_seen)

@@ -41,6 +41,7 @@ class EdgeListParser:
     def read_counts(self, source: Source, options: ReadOptions, report: ParseReport) -> TransitionCounts:
         edges: dict[tuple, int] = {}
         gaps: dict[tuple, float] = {}
+        gap_n: dict[tuple, int] = {}  # transitions covered by gap_sum, per edge
         with as_text_stream(source) as f:
             reader = csv.reader(f)
             try:
@@ -93,15 +94,22 @@ class EdgeListParser:
                 if key[0] == END or key[1] == START:
                     self._bad(report, source, line, "edge leaves the end or enters the start", options)
                     continue
-                edges[key] = edges.get(key, 0) + int(c)
+                gap = None
                 if ig is not None and row[ig].strip():
                     try:
-                        gaps[key] = gaps.get(key, 0.0) + float(row[ig])
+                        gap = float(row[ig])
                     except ValueError:
+                        gap = math.nan
+                    if not math.isfinite(gap):
+                        # the whole row is skipped, so a skipped row never counts
                         self._bad(report, source, line, "gap_sum is not a number", options, row[ig])
                         continue
+                edges[key] = edges.get(key, 0) + int(c)
+                if gap is not None:
+                    gaps[key] = gaps.get(key, 0.0) + gap
+                    gap_n[key] = gap_n.get(key, 0) + int(c)
                 report.events += int(c)
-        counts = TransitionCounts.from_edges(edges, START, END, gaps or None)
+        counts = TransitionCounts.from_edges(edges, START, END, gaps or None, gap_counts=gap_n)
         meta = dict(counts.meta)
         meta["pre_aggregated"] = True
         return TransitionCounts(

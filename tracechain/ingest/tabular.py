@@ -32,10 +32,16 @@ def as_string_column(arr: pa.Array | pa.ChunkedArray) -> pa.Array:
     if pa.types.is_floating(arr.type):
         # 12.0 -> "12" so that a float-typed id column matches the integer text
         vals = arr.to_numpy(zero_copy_only=False)
-        if np.all(np.isnan(vals) | (vals == np.round(vals))):
-            ints = pc.cast(pc.fill_null(arr, 0), pa.int64(), safe=False)
-            text = pc.cast(ints, pa.string())
-            return pc.if_else(arr.is_null(), pa.scalar(None, pa.string()), text)
+        known = ~np.isnan(vals)
+        if np.all(vals[known] == np.round(vals[known])):
+            if np.all(np.abs(vals[known]) < 2.0**63):
+                ints = pc.cast(pc.fill_null(arr, 0), pa.int64(), safe=False)
+                text = pc.cast(ints, pa.string())
+                missing = pc.or_(arr.is_null(), pc.fill_null(pc.is_nan(arr), True))  # NaN is no id
+                return pc.if_else(missing, pa.scalar(None, pa.string()), text)
+            # beyond int64 a cast would wrap around (and merge distinct ids): format each value
+            text = [None if v is None or v != v else str(int(v)) for v in arr.to_pylist()]
+            return pa.array(text, type=pa.string())
     if pa.types.is_struct(arr.type) or pa.types.is_list(arr.type):
         raise TypeError("nested value")
     return pc.cast(arr, pa.string())
@@ -54,6 +60,9 @@ def table_to_chunk(
     s_name, t_name, e_name = names
     n = len(lines)
     keep = np.ones(n, dtype=bool)
+    # (row, reason) of every unusable row, reported in line order once all are known,
+    # so that strict mode names the first problem of the block, whatever its kind
+    found: list[tuple[np.ndarray, str]] = []
     cols = {}
     for role, name in (("session", s_name), ("event", e_name)):
         raw = columns.get(name)
@@ -64,22 +73,24 @@ def table_to_chunk(
                 arr = as_string_column(raw)
             except TypeError:
                 arr = pa.nulls(n, pa.string())
-                _problem(report, source, lines, np.arange(n), f"{role} field {name!r} is not a plain value", strict)
+                found.append((np.flatnonzero(keep), f"{role} field {name!r} is not a plain value"))
                 keep[:] = False
         empty = pc.or_(arr.is_null(), pc.equal(pc.utf8_length(pc.fill_null(arr, "")), 0))
         bad = empty.to_numpy(zero_copy_only=False) & keep
         if bad.any():
-            _problem(report, source, lines, np.flatnonzero(bad), f"missing {role} field {name!r}", strict)
+            found.append((np.flatnonzero(bad), f"missing {role} field {name!r}"))
             keep &= ~bad
         cols[role] = arr
     if t_name is not None and t_name in columns:
         secs, badt = times_to_seconds(columns[t_name], spec)
         badt &= keep
         if badt.any():
-            _problem(report, source, lines, np.flatnonzero(badt), f"unreadable time in field {t_name!r}", strict)
+            found.append((np.flatnonzero(badt), f"unreadable time in field {t_name!r}"))
             keep &= ~badt
     else:
         secs = np.full(n, np.nan)
+    if found:
+        _problems(report, source, lines, found, strict)
     if not keep.all():
         mask = pa.array(keep)
         cols = {k: pc.filter(v, mask) for k, v in cols.items()}
@@ -91,10 +102,17 @@ def table_to_chunk(
     return EventChunk(source, cols["session"], cols["event"], secs, lines)
 
 
-def _problem(report: ParseReport, source: str, lines: np.ndarray, rows: np.ndarray, reason: str, strict: bool) -> None:
+def _problems(
+    report: ParseReport, source: str, lines: np.ndarray, found: list[tuple[np.ndarray, str]], strict: bool
+) -> None:
+    rows = np.concatenate([r for r, _ in found])
+    reasons = [reason for r, reason in found for _ in range(len(r))]
+    order = np.argsort(rows, kind="stable")
     if strict:
-        raise IngestError(reason, source, int(lines[rows[0]]))
+        first = int(order[0])
+        raise IngestError(reasons[first], source, int(lines[rows[first]]))
     room = max(0, MAX_PROBLEMS - len(report.problems))
-    for r in rows[:room]:
-        report.skip(source, int(lines[r]), reason)
-    report.skipped[reason] += max(0, len(rows) - room)
+    for k in order[:room]:
+        report.skip(source, int(lines[rows[k]]), reasons[k])
+    for k in order[room:]:
+        report.skipped[reasons[k]] += 1

@@ -39,13 +39,57 @@ _PLACEHOLDER = re.compile(r"\{(\w+)(\*?)\}")
 _STATE_REF = re.compile(r"\{(\w+)\}")
 
 
+_META = frozenset({"__line__", "__keys__"})
+_TYPED = frozenset(f"tag:yaml.org,2002:{t}" for t in ("bool", "int", "float", "null", "timestamp"))
+
+
+class _LineList(list):
+    """A YAML sequence that remembers the line of each item (``lines``)."""
+
+    lines: tuple[int, ...] = ()
+
+
 class _LineLoader(yaml.SafeLoader):
-    """SafeLoader that records the line of every mapping as ``__line__``."""
+    """SafeLoader that records the line of every mapping as ``__line__`` and the line
+    of each of its keys as ``__keys__``; sequences remember the line of each item."""
 
     def construct_mapping(self, node, deep=False):  # type: ignore[override]
+        keys: dict = {}
+        seen: dict = {}
+        if isinstance(node, yaml.MappingNode):
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":
+                    continue
+                if isinstance(key_node, yaml.ScalarNode) and key_node.style is None and key_node.tag in _TYPED:
+                    # every key in a mapping file is a name: a raw event "no", "on" or "404" must not
+                    # become the YAML 1.1 boolean False / True or a number
+                    key_node.tag = "tag:yaml.org,2002:str"
+                key = self.construct_object(key_node, deep=deep)
+                try:
+                    first = seen.get((type(key), key))  # True and 1.0 are different keys in YAML
+                except TypeError:  # an unhashable key: the base class reports it
+                    continue
+                if first is not None:
+                    # keys of a mapping are unique (YAML 1.2, 3.2.1.1); PyYAML would keep the last silently
+                    raise yaml.constructor.ConstructorError(
+                        "while constructing a mapping", node.start_mark,
+                        f"duplicate key {key!r} (first on line {first})", key_node.start_mark,
+                    )
+                keys[key] = seen[(type(key), key)] = key_node.start_mark.line + 1
         data = super().construct_mapping(node, deep=deep)
         data["__line__"] = node.start_mark.line + 1
+        data["__keys__"] = keys
         return data
+
+
+def _construct_seq(loader: _LineLoader, node):
+    data = _LineList()
+    data.lines = tuple(item.start_mark.line + 1 for item in node.value)
+    yield data
+    data.extend(loader.construct_sequence(node))
+
+
+_LineLoader.add_constructor("tag:yaml.org,2002:seq", _construct_seq)
 
 
 @dataclass(frozen=True)
@@ -91,16 +135,15 @@ def _template_regex(template: str, line: int | None, source: str | None) -> re.P
     for m in _PLACEHOLDER.finditer(template):
         out.append(re.escape(template[pos : m.start()]))
         name, star = m.group(1), m.group(2)
-        out.append(f"(?P<{name}>.+)" if star else f"(?P<{name}>[^/]+)")
+        out.append(f"(?P<{name}>.+?)" if star else f"(?P<{name}>[^/]+)")
         pos = m.end()
     rest = template[pos:]
     if rest.endswith("/*"):
         out.append(re.escape(rest[:-2]) + "(?:/.*)?")
     else:
-        out.append(re.escape(rest.rstrip("/")) if rest != "/" else re.escape(rest))
-    body = "".join(out)
-    if not template.endswith("/"):
-        body += "/?"
+        # one trailing slash is optional, whether the template has it or not
+        out.append(re.escape(rest[:-1] if rest.endswith("/") else rest))
+    body = "".join(out) + "/?"
     try:
         return re.compile(body)
     except re.error as err:
@@ -161,57 +204,65 @@ def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
     if not isinstance(data, dict):
         raise ConfigError("a mapping file must be a YAML mapping (key: value)", source, 1)
     allowed = {"version", "rename", "rules", "unmatched", "collapse_repeats", "goals", "terminal", "groups",
-               "parser", "__line__"}
+               "parser"}
+
+    def at(key: str) -> int:
+        """The line of a top-level key (of the whole mapping if unknown)."""
+        return data["__keys__"].get(key, data["__line__"])
+
     for key in data:
-        if key not in allowed:
-            raise ConfigError(
-                f"unknown key {key!r}; allowed: {', '.join(sorted(allowed - {'__line__'}))}", source, data["__line__"]
-            )
+        if key not in allowed and key not in _META:
+            raise ConfigError(f"unknown key {key!r}; allowed: {', '.join(sorted(allowed))}", source, at(key))
     if data.get("version", 1) != 1:
         raise ConfigError(f"unsupported mapping version {data.get('version')!r} (this release reads 1)", source,
-                          data["__line__"])
+                          at("version"))
     rename = data.get("rename") or {}
     if not isinstance(rename, dict):
-        raise ConfigError("'rename' must map raw names to states", source, data["__line__"])
-    rename = {str(k): str(v) for k, v in rename.items() if k != "__line__"}
+        raise ConfigError("'rename' must map raw names to states", source, at("rename"))
+    rename = {str(k): str(v) for k, v in rename.items() if k not in _META}
     rules = []
     raw_rules = data.get("rules") or []
     if not isinstance(raw_rules, list):
-        raise ConfigError("'rules' must be a list", source, data["__line__"])
-    for item in raw_rules:
-        rules.append(_rule(item, source))
+        raise ConfigError("'rules' must be a list", source, at("rules"))
+    item_lines = getattr(raw_rules, "lines", ())
+    for i, item in enumerate(raw_rules):
+        rules.append(_rule(item, source, item_lines[i] if i < len(item_lines) else None))
     unmatched = data.get("unmatched", "keep")
     if not isinstance(unmatched, str) or not unmatched:
-        raise ConfigError("'unmatched' must be keep, drop or a state name", source, data["__line__"])
+        raise ConfigError("'unmatched' must be keep, drop or a state name", source, at("unmatched"))
+    collapse = data.get("collapse_repeats", False)
+    if not isinstance(collapse, bool):
+        raise ConfigError(f"'collapse_repeats' must be true or false, not {collapse!r}", source,
+                          at("collapse_repeats"))
 
     def names(key: str) -> tuple[str, ...]:
         v = data.get(key) or []
         if isinstance(v, str):
             v = [v]
         if not isinstance(v, list):
-            raise ConfigError(f"'{key}' must be a list of state names", source, data["__line__"])
+            raise ConfigError(f"'{key}' must be a list of state names", source, at(key))
         return tuple(str(x) for x in v)
 
     groups = data.get("groups") or {}
     if not isinstance(groups, dict):
-        raise ConfigError("'groups' must map state names to group names", source, data["__line__"])
+        raise ConfigError("'groups' must map state names to group names", source, at("groups"))
     return Mapping(
         rename=rename,
         rules=tuple(rules),
         unmatched=unmatched,
-        collapse_repeats=bool(data.get("collapse_repeats", False)),
+        collapse_repeats=collapse,
         goals=names("goals"),
         terminal=names("terminal"),
-        groups={str(k): str(v) for k, v in groups.items() if k != "__line__"},
+        groups={str(k): str(v) for k, v in groups.items() if k not in _META},
         source=source,
     )
 
 
-def _rule(item: Any, source: str | None) -> Rule:
+def _rule(item: Any, source: str | None, line: int | None = None) -> Rule:
     if not isinstance(item, dict):
-        raise ConfigError(f"each rule must be a mapping, got {item!r}", source)
-    line = item.get("__line__")
-    keys = set(item) - {"__line__"}
+        raise ConfigError(f"each rule must be a mapping, got {item!r}", source, line)
+    line = item.get("__line__", line)
+    keys = set(item) - _META
     kinds = keys & {"regex", "path"}
     if len(kinds) != 1:
         raise ConfigError("a rule needs exactly one of 'regex' or 'path'", source, line)
@@ -219,9 +270,13 @@ def _rule(item: Any, source: str | None) -> Rule:
     if extra:
         raise ConfigError(f"unknown rule key(s): {', '.join(sorted(extra))}", source, line)
     kind = kinds.pop()
-    drop = bool(item.get("drop", False))
+    drop = item.get("drop", False)
+    if not isinstance(drop, bool):
+        raise ConfigError(f"'drop' must be true or false, not {drop!r}", source, line)
     state = item.get("state")
-    if drop == (state is not None):
+    if drop and state is not None:
+        raise ConfigError("a rule has both 'state' and 'drop: true'; give one of them", source, line)
+    if not drop and state is None:
         raise ConfigError("a rule needs either 'state: NAME' or 'drop: true'", source, line)
     pattern_text = str(item[kind])
     if kind == "regex":

@@ -80,12 +80,24 @@ class Chain:
     ) -> "Chain":
         """Estimate the chain from counts; goals and terminal states become absorbing.
 
+        For a higher-order chain (states are windows, tuples of the last k names) the session
+        counter keeps goals as plain names, but not terminal states: a terminal name then
+        stands for every window that ends in it (the case is finished whatever came before).
+
         Raises
         ------
         AnalysisError
             If a named goal or terminal state does not occur in the counts.
         """
         known = set(counts.states)
+        terminal = list(terminal)
+        windows = [s for s in counts.states if isinstance(s, tuple) and s]
+        if windows:
+            expanded = []
+            for t in terminal:
+                ending = [s for s in windows if s[-1] == t] if t not in known else []
+                expanded.extend(ending or [t])
+            terminal = expanded
         for kind, names in (("goal", goals), ("terminal state", terminal)):
             missing = [g for g in names if g not in known]
             if missing:
@@ -133,9 +145,9 @@ class Chain:
             v.append(counts.ends[nz].astype(np.float64))
         W = sp.coo_array((np.concatenate(v), (np.concatenate(r), np.concatenate(c))), shape=(size, size)).tocsr()
         absorbing = np.array([ro in _ABSORBING_ROLES for ro in roles], dtype=bool)
+        if not np.isfinite(smoothing) or smoothing < 0:
+            raise AnalysisError(f"smoothing must be a finite non-negative number, not {smoothing!r}")
         if smoothing:
-            if smoothing < 0:
-                raise AnalysisError("smoothing must be non-negative")
             if size > _SMOOTHING_MAX_STATES:
                 raise AnalysisError(
                     f"additive smoothing makes the matrix dense; refused above {_SMOOTHING_MAX_STATES} states"
@@ -149,9 +161,14 @@ class Chain:
             if has_start:
                 rows_sm[0] = False  # where sessions start is not smoothed
             D[np.ix_(rows_sm, targets)] += smoothing
+            with np.errstate(over="ignore"):
+                if not np.all(np.isfinite(D.sum(axis=1))):
+                    raise AnalysisError(f"smoothing {smoothing!r} is too large: the row sums overflow")
             W = sp.csr_array(D)
         P = _row_normalise(W, absorbing)
-        states = ((START_LABEL,) if has_start else ()) + tuple(counts.states) + ((END_LABEL,) if has_end else ())
+        taken = {state_label(s) for s in counts.states}
+        start_label, end_label = _free_label(START_LABEL, taken), _free_label(END_LABEL, taken)
+        states = ((start_label,) if has_start else ()) + tuple(counts.states) + ((end_label,) if has_end else ())
         return cls(states, P, tuple(roles), counts, smoothing)
 
     @classmethod
@@ -232,6 +249,17 @@ class Chain:
     def __repr__(self) -> str:
         ng = len(self.goals)
         return f"Chain({self.n} states, {self.P.nnz} edges, {ng} goal{'s' if ng != 1 else ''})"
+
+
+def _free_label(base: str, taken: set) -> str:
+    """``base`` (``[start]``/``[end]``), or ``[start 2]``, ``[start 3]`` ... if a data state already
+    has that label: a log may contain an event literally named "[end]", and reports name states
+    by label, so the pseudo-states must not share one with a data state."""
+    label, k = base, 1
+    while label in taken:
+        k += 1
+        label = f"{base[:-1]} {k}]"
+    return label
 
 
 def _row_normalise(W: sp.csr_array, absorbing: np.ndarray) -> sp.csr_array:

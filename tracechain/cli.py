@@ -11,6 +11,7 @@ Exit statuses: 0 success, 1 findings (reserved for checks), 2 usage or input err
 from __future__ import annotations
 
 import argparse
+import math
 import re
 import sys
 import warnings
@@ -111,7 +112,7 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--min-edge-share", type=_share, default=0.005, metavar="SHARE",
                    help="hide diagram edges carrying less than this share of transitions (default 0.005 = 0.5%%)")
     o.add_argument("--max-states", type=int, default=60, metavar="N", help="draw at most N states (default 60)")
-    o.add_argument("--top", type=int, default=10, metavar="N", help="rows in the exit-state table (default 10)")
+    o.add_argument("--top", type=int, default=10, metavar="N", help="rows in the exit-state table (default 10; 0 for all)")
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
@@ -125,8 +126,8 @@ def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, 
     terminal = list(mapping.terminal) if mapping else []
     if args.order < 1:
         raise UsageError("--order must be at least 1")
-    if args.smoothing < 0:
-        raise UsageError("--smoothing must be non-negative")
+    if not math.isfinite(args.smoothing) or args.smoothing < 0:
+        raise UsageError("--smoothing must be a finite non-negative number")
     shape = ShapeOptions(
         mapping=mapping, goals=tuple(goals), truncate_at_goal=not args.keep_after_goal,
         collapse_repeats=args.collapse, gap=args.gap, order=args.order,
@@ -149,6 +150,10 @@ def build_chain(args: argparse.Namespace):
 
 
 def cmd_analyze(args: argparse.Namespace) -> int:
+    if args.top < 0:
+        raise UsageError("--top must be at least 0 (0 lists every exit state)")
+    if args.max_states < 1:
+        raise UsageError("--max-states must be at least 1")
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings)
     written = []

@@ -29,6 +29,13 @@ def _num(x) -> float | None:
     return x if math.isfinite(x) else None
 
 
+def _prob(x) -> float | None:
+    """A probability, or a sum of probabilities: finite, and clamped to [0, 1] against round-off
+    (three shares computed as 0.1 + 0.2 + 0.7 give 1.0000000000000002)."""
+    x = _num(x)
+    return None if x is None else min(max(x, 0.0), 1.0)
+
+
 @dataclass(frozen=True)
 class GoalConversion:
     goal: str
@@ -77,7 +84,7 @@ class Analysis:
         for g in ch.goals:
             p = None
             if ch.start is not None:
-                p = _num(self.absorbing.probability(ch.start, int(g)))
+                p = _prob(self.absorbing.probability(ch.start, int(g)))
             gi = int(g)
             entered = int(W[:, [gi]].sum() - W[gi, gi]) if ch.counts is not None else 0
             out.append(GoalConversion(ch.label(int(g)), p, entered))
@@ -87,7 +94,7 @@ class Analysis:
         conv = self.conversion()
         if not conv or any(c.probability is None for c in conv):
             return None
-        return _num(sum(c.probability for c in conv))
+        return _prob(sum(c.probability for c in conv))
 
     def unreachable_any(self) -> list[int]:
         """States from which no goal can be reached."""
@@ -109,9 +116,9 @@ class Analysis:
             r = ab.row(i)
             role = ch.roles[i]
             if r is not None:
-                pg = {ch.label(g): _num(ab.B[r, c]) for g, c in goal_cols.items()}
-                pany = _num(sum(ab.B[r, c] for c in goal_cols.values())) if goal_cols else None
-                ptrap = _num(sum(ab.B[r, c] for c in trap_cols)) if trap_cols else 0.0
+                pg = {ch.label(g): _prob(ab.B[r, c]) for g, c in goal_cols.items()}
+                pany = _prob(sum(ab.B[r, c] for c in goal_cols.values())) if goal_cols else None
+                ptrap = _prob(sum(ab.B[r, c] for c in trap_cols)) if trap_cols else 0.0
                 steps = _num(ab.steps[r])
                 var = ab.steps_var[r]
                 sd = _num(math.sqrt(var)) if math.isfinite(var) else None
@@ -145,8 +152,18 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
         k = len(classes.traps)
         notes.append(
             f"{k} closed loop{'s' if k > 1 else ''} with no way out (trap): sessions that enter never end; "
-            "expected steps are infinite (shown as none) for states that can reach one"
+            "expected steps are infinite for states that can reach one (inf in the table, null in JSON)"
         )
+    meta = chain.counts.meta if chain.counts is not None else {}
+    if len(chain.goals) and "truncate_at_goal" in meta:
+        cut = set(meta.get("goals", ())) if meta.get("truncate_at_goal") else set()
+        uncut = [chain.label(int(g)) for g in chain.goals if chain.states[int(g)] not in cut]
+        if uncut:
+            notes.append(
+                f"sessions were not cut at {', '.join(uncut[:3])}: the goal 'sessions' count entries into the goal "
+                "(a session that leaves a goal and comes back counts again), and the conversion probability, "
+                "which treats goals as absorbing, is not the observed share of sessions"
+            )
     sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink"]
     if sinks:
         notes.append(f"{len(sinks)} state(s) have no observed exit and are treated as absorbing: {', '.join(sinks[:5])}")

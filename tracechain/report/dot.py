@@ -17,8 +17,12 @@ edge           width grows with the number of transitions; label: probability
 =============  =====================================================================
 
 Rare edges (a share of all transitions below ``min_edge_share``) are pruned and the
-pruned share is stated in the diagram's caption. State names are untrusted: they only
-ever appear inside double-quoted, escaped labels; node ids are our own (``n0``, ``n1``).
+pruned share is stated in the diagram's caption. "All transitions" are the exits of
+non-absorbing states (start and end edges included), the flow the diagram can show: the
+end edges recorded after a goal or terminal state are not drawn and not counted. Edges of
+states hidden by ``max_states`` are stated on their own line, not as rare edges. State names
+are untrusted: they only ever appear inside double-quoted, escaped labels; node ids are our
+own (``n0``, ``n1``).
 """
 
 from __future__ import annotations
@@ -102,7 +106,8 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
     """
     ch = a.chain
     W = ch.weights.tocoo()
-    total = float(W.data.sum()) or 1.0
+    drawable = ~ch.absorbing_mask[W.row]
+    total = float(W.data[drawable].sum()) or 1.0
     visits = np.asarray(ch.weights.sum(axis=1)).ravel()
     roles = ch.roles
     dead = {d.state for d in a.dead_ends}
@@ -123,11 +128,15 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
     # which edges are drawn
     edges = []
     pruned_n, pruned_w = 0, 0.0
+    hidden_n, hidden_w = 0, 0.0
     for i, j, w in zip(W.row, W.col, W.data):
         if w <= 0 or ch.absorbing_mask[i]:
             continue
-        rare = w / total < min_edge_share and float(ch.P[i, j]) < min_edge_prob
-        if not (keep[i] and keep[j]) or rare:
+        if not (keep[i] and keep[j]):
+            hidden_n += 1
+            hidden_w += w
+            continue
+        if w / total < min_edge_share and float(ch.P[i, j]) < min_edge_prob:
             pruned_n += 1
             pruned_w += w
             continue
@@ -148,7 +157,10 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
             f"carrying {100 * pruned_w / total:.1f}% of all transitions"
         )
     if hidden_states:
-        cap.append(f"{hidden_states} least-visited states hidden (diagram limited to {max_states} states)")
+        cap.append(
+            f"{hidden_states} least-visited states hidden (diagram limited to {max_states} states), with their "
+            f"{hidden_n} edge{'s' if hidden_n != 1 else ''} carrying {100 * hidden_w / total:.1f}% of all transitions"
+        )
     out.append(
         "  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t", nojustify="true",
                             label=_label(*cap, limit=200) if cap else None, newrank="true")

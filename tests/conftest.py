@@ -1,0 +1,82 @@
+"""Shared fixtures for the analysis, report and command-line tests.
+
+Everything here is an invented scenario (a made-up shop, a made-up job runner). Paths are
+relative to this file or under pytest's ``tmp_path``; nothing outside the repository is read.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+REPO = Path(__file__).resolve().parent.parent
+SAMPLES = REPO / "sample_traces"
+SCHEMA_PATH = REPO / "tracechain" / "schemas" / "analysis-1.schema.json"
+
+
+def _refuse_constant(name: str):
+    raise ValueError(f"non-standard JSON constant {name!r} in output")
+
+
+def strict_json_loads(text: str):
+    """``json.loads`` that fails on NaN, Infinity and -Infinity (which strict JSON forbids)."""
+    return json.loads(text, parse_constant=_refuse_constant)
+
+
+@pytest.fixture
+def strict_json():
+    return strict_json_loads
+
+
+@pytest.fixture(scope="session")
+def schema_validator():
+    jsonschema = pytest.importorskip("jsonschema")
+    schema = json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
+    jsonschema.Draft202012Validator.check_schema(schema)
+    return jsonschema.Draft202012Validator(schema)
+
+
+@pytest.fixture(scope="session")
+def samples() -> Path:
+    return SAMPLES
+
+
+def write_jsonl(path: Path, rows: list[dict]) -> Path:
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+    return path
+
+
+def sessions_to_rows(sessions: dict[str, list[str]], t0: int = 1_700_000_000) -> list[dict]:
+    """JSON Lines rows (session_id, timestamp, event) for ``{session: [events...]}``, interleaved."""
+    rows = []
+    for k, (sid, events) in enumerate(sessions.items()):
+        for j, ev in enumerate(events):
+            rows.append({"session_id": sid, "timestamp": t0 + 10 * j + k, "event": ev})
+    rows.sort(key=lambda r: r["timestamp"])
+    return rows
+
+
+@pytest.fixture
+def run_cli(capsys):
+    """Run ``tracechain.cli.main(argv)``; return (status, stdout, stderr)."""
+    from tracechain.cli import main
+
+    def run(*argv: str):
+        status = main([str(a) for a in argv])
+        out, err = capsys.readouterr()
+        return status, out, err
+
+    return run
+
+
+def absorbing_walk(n_states: int, p: float) -> np.ndarray:
+    """Random walk on {0, ..., n_states-1}: up with probability p, down with 1-p; both ends absorbing."""
+    P = np.zeros((n_states, n_states))
+    P[0, 0] = P[-1, -1] = 1.0
+    for i in range(1, n_states - 1):
+        P[i, i + 1] = p
+        P[i, i - 1] = 1.0 - p
+    return P

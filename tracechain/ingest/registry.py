@@ -14,6 +14,7 @@ known without installation metadata so a source checkout works.
 
 from __future__ import annotations
 
+import importlib
 import warnings
 from importlib.metadata import entry_points
 from typing import Any
@@ -26,12 +27,39 @@ __all__ = ["ENTRY_POINT_GROUP", "available_parsers", "get_parser", "detect_parse
 ENTRY_POINT_GROUP = "tracechain.parsers"
 
 
+#: Built-in parsers beyond the core three: (module, class). One that cannot be loaded
+#: (for example parquet where ``pyarrow.parquet`` is missing) is left out with a
+#: warning; the others still work.
+OPTIONAL_BUILTINS: tuple[tuple[str, str], ...] = (
+    ("tracechain.ingest.accesslog", "AccessLogParser"),
+    ("tracechain.ingest.w3c", "W3CExtendedParser"),
+    ("tracechain.ingest.otlp", "OtlpJsonParser"),
+    ("tracechain.ingest.xes", "XesParser"),
+    ("tracechain.ingest.cloudevents", "CloudEventsParser"),
+    ("tracechain.ingest.strace", "StraceParser"),
+    ("tracechain.ingest.regexlog", "RegexLogParser"),
+    ("tracechain.ingest.parquet", "ParquetParser"),
+)
+_WARNED: set[str] = set()
+
+
 def _builtins() -> dict[str, Any]:
     from .csvlog import CsvParser
     from .edgelist import EdgeListParser
     from .jsonl import JsonLinesParser
 
-    return {p.name: p for p in (JsonLinesParser(), CsvParser(), EdgeListParser())}
+    found = {p.name: p for p in (JsonLinesParser(), CsvParser(), EdgeListParser())}
+    for module, cls in OPTIONAL_BUILTINS:
+        try:
+            obj = getattr(importlib.import_module(module), cls)()
+        except Exception as err:  # an optional format must not stop the others
+            if module not in _WARNED:
+                _WARNED.add(module)
+                warnings.warn(f"built-in parser {module}:{cls} could not be loaded and is unavailable: {err}",
+                              stacklevel=3)
+            continue
+        found[obj.name] = obj
+    return found
 
 
 def _valid(obj: Any) -> bool:
@@ -48,8 +76,10 @@ def available_parsers() -> dict[str, Any]:
     """All parsers by name: built-ins, then plugins (a plugin may not replace a built-in)."""
     found = _builtins()
     for ep in entry_points(group=ENTRY_POINT_GROUP):
-        if ep.name in found and ep.value.startswith("tracechain."):
-            continue
+        if ep.value.startswith("tracechain.") and (
+            ep.name in found or any(ep.value.startswith(m + ":") for m, _ in OPTIONAL_BUILTINS)
+        ):
+            continue  # a built-in, known above (or already warned about)
         try:
             obj = ep.load()
             if isinstance(obj, type):

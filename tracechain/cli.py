@@ -78,6 +78,20 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                    help="unit of numeric epoch times (default: from their magnitude)")
     g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
     g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
+    w = p.add_argument_group("format-specific reading (web logs, traces, XES, CloudEvents, strace)")
+    w.add_argument("--status", metavar="LIST", help="web logs: keep these statuses, e.g. 2xx,3xx or 200,304")
+    w.add_argument("--method", metavar="LIST", help="web logs: keep these request methods, e.g. GET,POST")
+    w.add_argument("--exclude-agent", metavar="REGEX", help="web logs: leave out user agents matching this (bots)")
+    w.add_argument("--method-prefix", action="store_true", help="web logs: name events 'GET /path'")
+    w.add_argument("--lifecycle", metavar="LIST", help="XES: keep only these lifecycle:transition values")
+    w.add_argument("--span-state-attribute", metavar="KEY", help="OTLP: take the state from this span attribute")
+    w.add_argument("--no-mark-errors", action="store_true", help="OTLP: do not suffix error spans with ' [error]'")
+    w.add_argument("--span-kinds", metavar="LIST", help="OTLP: keep only these span kinds, e.g. server,consumer")
+    w.add_argument("--session-extension", metavar="NAME",
+                   help="CloudEvents: session from this extension attribute instead of 'subject'")
+    w.add_argument("--with-errors", action="store_true", help="strace: states carry the error, e.g. open:ENOENT")
+    w.add_argument("--with-signals", action="store_true", help="strace: signals and exits become events")
+    w.add_argument("--trace-date", metavar="YYYY-MM-DD", help="strace: the date of '-tt' times (default 1970-01-01)")
     s = p.add_argument_group("shaping sessions into states")
     s.add_argument("--mapping", metavar="YAML", help="rules turning raw event names into states")
     s.add_argument("--goal", action="append", default=[], metavar="STATE",
@@ -137,9 +151,46 @@ def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, 
     return shape, fields, goals, terminal
 
 
+_EXTRA_OPTIONS = {
+    # option attribute -> (extra key, conversion)
+    "status": ("status", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
+    "method": ("method", lambda v: [x.strip().upper() for x in v.split(",") if x.strip()]),
+    "exclude_agent": ("exclude_agent", str),
+    "method_prefix": ("method_prefix", bool),
+    "lifecycle": ("lifecycle", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
+    "span_state_attribute": ("span_state_attribute", str),
+    "span_kinds": ("span_kinds", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
+    "session_extension": ("session_extension", str),
+    "with_errors": ("with_errors", bool),
+    "with_signals": ("with_signals", bool),
+    "trace_date": ("date", str),
+}
+
+
+def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict]:
+    """The input format and the parser-specific settings the options ask for."""
+    extra: dict = {}
+    for attr, (key, conv) in _EXTRA_OPTIONS.items():
+        value = getattr(args, attr, None)
+        if value:
+            extra[key] = conv(value)
+    if getattr(args, "no_mark_errors", False):
+        extra["mark_errors"] = False
+    fmt = args.format
+    if mapping is not None and mapping.parser:
+        if fmt not in (None, "regex"):
+            raise UsageError(f"the mapping file declares a line pattern ('parser:'), which needs --format regex, "
+                             f"not {fmt!r}")
+        fmt = "regex"
+        extra.update(mapping.parser)
+    return fmt, extra
+
+
 def build_chain(args: argparse.Namespace):
     shape, fields, goals, terminal = shape_from_args(args)
-    counts, report = count_sources(args.paths, format=args.format, fields=fields, shape=shape, strict=args.strict)
+    fmt, extra = extra_from_args(args, shape.mapping)
+    counts, report = count_sources(args.paths, format=fmt, fields=fields, shape=shape, strict=args.strict,
+                                   extra=extra)
     chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
     settings = {
         "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,

@@ -161,6 +161,7 @@ class Mapping:
     goals: tuple[str, ...] = ()
     terminal: tuple[str, ...] = ()
     groups: dict[str, str] = field(default_factory=dict)
+    parser: dict[str, str] = field(default_factory=dict)
     source: str | None = None
 
     def map(self, raw: str) -> str | None:
@@ -254,8 +255,38 @@ def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
         goals=names("goals"),
         terminal=names("terminal"),
         groups={str(k): str(v) for k, v in groups.items() if k not in _META},
+        parser=_parser_section(data.get("parser"), source, at("parser")),
         source=source,
     )
+
+
+_PARSER_KEYS = {"pattern", "time_format", "time_unit"}
+
+
+def _parser_section(value: Any, source: str | None, line: int) -> dict[str, str]:
+    """The ``parser:`` section: a line pattern for logs of any shape (the ``regex`` format)."""
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        raise ConfigError("'parser' must be a mapping with 'pattern' (and optionally 'time_format', 'time_unit')",
+                          source, line)
+    keys = {k for k in value if k not in _META}
+    unknown = keys - _PARSER_KEYS
+    if unknown:
+        raise ConfigError(f"unknown parser key(s): {', '.join(sorted(unknown))}; allowed: "
+                          f"{', '.join(sorted(_PARSER_KEYS))}", source, line)
+    if "pattern" not in keys:
+        raise ConfigError("'parser' needs a 'pattern' (a regular expression with named groups session, event "
+                          "and optionally time)", source, line)
+    out = {k: str(value[k]) for k in keys}
+    try:
+        rx = re.compile(out["pattern"])
+    except re.error as err:
+        raise ConfigError(f"parser pattern is not a valid regular expression: {err}", source, line) from err
+    missing = {"session", "event"} - set(rx.groupindex)
+    if missing:
+        raise ConfigError(f"parser pattern lacks the named group(s) {', '.join(sorted(missing))}", source, line)
+    return out
 
 
 def _rule(item: Any, source: str | None, line: int | None = None) -> Rule:

@@ -131,6 +131,9 @@ def build_parser() -> argparse.ArgumentParser:
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
     f.set_defaults(handler=cmd_formats)
+    from .check.command import register as _register_check
+
+    _register_check(sub)
     return parser
 
 

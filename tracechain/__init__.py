@@ -2,10 +2,10 @@
 
 The public API is the same objects the command line uses::
 
-    from tracechain import count_sources, ShapeOptions, Chain, analyze
+    from tracechain import count_sources, ShapeOptions, Chain, analyze_chain
     counts, report = count_sources(["shop.jsonl"], shape=ShapeOptions(goals=("Order placed",)))
     chain = Chain.from_counts(counts, goals=["Order placed"])
-    result = analyze(chain, report)
+    result = analyze_chain(chain, report)
     result.conversion_total()
 """
 
@@ -19,7 +19,10 @@ from .events import EventChunk, ParseReport  # noqa: E402
 from .ingest.fields import FieldSpec  # noqa: E402
 from .pipeline import ShapeOptions, count_chunks, count_sources, read_events  # noqa: E402
 from .shape.mapping import Mapping, load_mapping, parse_mapping  # noqa: E402
-from .analyze.summary import Analysis, analyze  # noqa: E402
+# the analysis bundle is exported as ``analyze_chain``: binding the name ``analyze`` here
+# would hide the ``tracechain.analyze`` subpackage from ``import tracechain.analyze.x``
+from .analyze.summary import Analysis  # noqa: E402
+from .analyze.summary import analyze as analyze_chain  # noqa: E402
 from .analyze.absorbing import absorbing_analysis  # noqa: E402
 from .analyze.classes import communicating_classes  # noqa: E402
 from .analyze.dead_ends import dead_ends, exit_states, goal_unreachable  # noqa: E402
@@ -39,7 +42,7 @@ __all__ = [
     "load_mapping",
     "parse_mapping",
     "Analysis",
-    "analyze",
+    "analyze_chain",
     "absorbing_analysis",
     "communicating_classes",
     "dead_ends",

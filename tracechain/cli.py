@@ -128,10 +128,16 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--max-states", type=int, default=60, metavar="N", help="draw at most N states (default 60)")
     o.add_argument("--top", type=int, default=10, metavar="N", help="rows in the exit-state table (default 10; 0 for all)")
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
+    o.add_argument("--extended", action="store_true",
+                   help="also report times, removal effects, most likely paths and intervals (see --seed)")
+    o.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
     f.set_defaults(handler=cmd_formats)
+    from .analyze.commands import register as _register_extended
     from .check.command import register as _register_check
+
+    _register_extended(sub)
 
     _register_check(sub)
     return parser
@@ -210,9 +216,14 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--max-states must be at least 1")
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings)
+    ext = None
+    if args.extended:
+        from .analyze.extended import extended_analysis
+
+        ext = extended_analysis(chain, seed=args.seed, top=args.top or None)
     written = []
     if args.json:
-        written.append(write_output(args.json, dumps(analysis_document(result))))
+        written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))
     wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
     if wants_diagram:
         dot_text = render_dot(result, min_edge_share=args.min_edge_share, max_states=args.max_states)
@@ -223,7 +234,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
             if target:
                 written.append(write_output(target, render_image(dot_text, fmt)))
     if not args.quiet and args.json != "-":
-        sys.stdout.write(render_text(result))
+        sys.stdout.write(render_text(result, extended=ext))
         sys.stdout.flush()
     for w in written:
         if w != "-":

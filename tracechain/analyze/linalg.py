@@ -76,7 +76,8 @@ class TransientSolver:
                 x = sla.lu_solve(self._lu, b)
                 self._check(b, x)
                 return x
-            return np.column_stack([self.solve(b[:, j]) for j in range(b.shape[1])])
+            # contiguous columns: Krylov kernels on strided views are many times slower
+            return np.column_stack([self.solve(np.ascontiguousarray(b[:, j])) for j in range(b.shape[1])])
         if self.m == 0:
             return np.zeros(0)
         if self._lu is not None:

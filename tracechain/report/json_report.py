@@ -24,7 +24,8 @@ def load_schema() -> dict:
     return json.loads(text)
 
 
-def analysis_document(a: Analysis) -> dict[str, Any]:
+def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
+    """The JSON document; ``extended`` (an ExtendedAnalysis) adds the optional ``extended`` section."""
     ch = a.chain
     counts = ch.counts
     lab = ch.label
@@ -74,6 +75,10 @@ def analysis_document(a: Analysis) -> dict[str, Any]:
         ],
         "notes": list(a.notes),
     }
+    if extended is not None:
+        from ..analyze.extended import extended_document
+
+        doc["extended"] = extended_document(extended)
     return doc
 
 

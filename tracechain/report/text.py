@@ -52,7 +52,7 @@ def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = N
     return ["  " + fmt(headers), "  " + "  ".join("-" * w for w in widths)] + ["  " + fmt(r) for r in rows]
 
 
-def render_text(a: Analysis, max_states: int = 40) -> str:
+def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
     ch = a.chain
     c = ch.counts
     lab = lambda i: safe_text(ch.label(i))  # noqa: E731
@@ -145,6 +145,11 @@ def render_text(a: Analysis, max_states: int = 40) -> str:
     if len(shown) > max_states:
         lines.append(f"  ... {len(shown) - max_states} more states in the JSON output (--json)")
     lines.append("")
+    if extended is not None:
+        from ..analyze.extended import extended_lines
+
+        lines.extend(extended_lines(extended))
+        lines.append("")
     for n in a.notes:
         lines.append(f"note: {n}")
     lines.extend(textwrap.wrap(CAUTION, 100))

@@ -1,0 +1,470 @@
+"""The extended analyses bundled for reports.
+
+:func:`extended_analysis` runs the cheap extended analyses once and returns an
+:class:`ExtendedAnalysis` of plain values (finite floats or ``None``, labels as strings):
+
+* dwell times per state (mean; median only when the sessions with times are given),
+  expected time from the start to absorption and to each goal given it is reached
+  (:mod:`.timing`);
+* removal effects and shares of conversion of the top states (:mod:`.attribution`);
+* the most likely path from the start to each goal (:mod:`.paths`);
+* for a chain without absorbing states: the stationary distribution, mean recurrence
+  times and entropy rate (:mod:`.stationary`);
+* Dirichlet-posterior intervals for the conversion from the start and the expected steps
+  (:mod:`.uncertainty`);
+* with sessions: the most common observed paths and the least likely sessions
+  (:mod:`.paths`, :mod:`.surprise`).
+
+:func:`extended_document` turns it into a JSON-ready dict described by
+:data:`EXTENDED_SCHEMA` (a JSON Schema draft 2020-12 fragment), meant for the key
+``"extended"`` of the analysis document; :func:`extended_lines` gives terminal lines.
+Every undefined figure is ``None`` with the reason in ``notes``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..chain import Chain
+from ..counts import TransitionCounts
+from ..errors import AnalysisError
+from .attribution import StartBlock, removal_effects
+from .linalg import DENSE_MAX
+from .paths import common_paths, most_likely_paths
+from .stationary import stationary_analysis
+from .surprise import surprise
+from .timing import state_gaps, timing_analysis
+from .uncertainty import Interval, dirichlet_intervals
+
+__all__ = ["ExtendedAnalysis", "extended_analysis", "extended_document", "extended_lines", "EXTENDED_SCHEMA"]
+
+
+def _num(x) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+@dataclass(frozen=True)
+class DwellRow:
+    state: str
+    mean_s: float | None
+    median_s: float | None
+    gaps: int
+
+
+@dataclass(frozen=True)
+class RemovalRow:
+    state: str
+    effect: float
+    share: float | None
+    conversion_without: float
+    visit_probability: float
+
+
+@dataclass(frozen=True)
+class PathRow:
+    goal: str
+    states: tuple[str, ...]
+    probability: float | None
+
+
+@dataclass(frozen=True)
+class StationaryRow:
+    state: str
+    probability: float
+    recurrence_time: float | None
+
+
+@dataclass(frozen=True)
+class CommonPathRow:
+    states: tuple[str, ...]
+    sessions: int
+    share: float
+    converted: bool
+    conversion_share: float
+
+
+@dataclass(frozen=True)
+class SurpriseRow:
+    session: str
+    per_step: float
+    steps: int
+    improbable: tuple[tuple[str, str, float], ...]
+
+
+@dataclass(frozen=True)
+class ExtendedAnalysis:
+    """Extended figures, as plain values (see the module docstring)."""
+
+    dwell: tuple[DwellRow, ...]
+    time_from_start: float | None
+    time_to_goal: dict
+    removal: tuple[RemovalRow, ...]
+    removal_exact: bool
+    likely_paths: tuple[PathRow, ...]
+    stationary: tuple[StationaryRow, ...] | None
+    entropy_rate_bits: float | None
+    period: int | None
+    conversion_interval: Interval | None
+    steps_interval: Interval | None
+    level: float
+    draws: int
+    seed: int
+    prior: float | None
+    common_paths: tuple[CommonPathRow, ...] = ()
+    least_likely: tuple[SurpriseRow, ...] = ()
+    notes: tuple[str, ...] = field(default=())
+
+
+def _with_counts(chain: Chain, counts: TransitionCounts | None) -> Chain:
+    if counts is None or counts is chain.counts:
+        return chain
+    if chain.counts is not None and set(counts.states) != set(chain.counts.states):
+        raise AnalysisError("the counts given are not those of the chain")
+    data = [s for s, r in zip(chain.states, chain.roles) if r not in ("start", "end")]
+    if tuple(data) != tuple(counts.states):
+        raise AnalysisError("the counts given do not match the chain's states")
+    return Chain(chain.states, chain.P, chain.roles, counts, chain.smoothing)
+
+
+def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sessions=None, *, level: float = 0.95,
+                      seed: int = 0, draws: int | None = None, top: int = 10, prior: float = 0.5) -> ExtendedAnalysis:
+    """Run the cheap extended analyses of ``chain``.
+
+    Parameters
+    ----------
+    chain : Chain
+    counts : TransitionCounts, optional
+        The counts the chain was built from (default ``chain.counts``); they carry the
+        time gaps and the observations behind the intervals.
+    sessions : Sessions or sequence of sequences of str, optional
+        Shaped sessions (:func:`tracechain.analyze.order.session_sequences`): adds observed
+        paths, the least likely sessions, and median dwell times when they carry times.
+    level : float
+        Interval level.
+    seed : int
+        Seed of the Dirichlet draws.
+    draws : int, optional
+        Dirichlet draws; default 200, or 20 when the transient block is above ``DENSE_MAX``
+        states (each draw is then an iterative solve).
+    top : int
+        Rows of the removal-effect, common-path and least-likely tables.
+    prior : float
+        Dirichlet prior concentration.
+
+    Returns
+    -------
+    ExtendedAnalysis
+    """
+    chain = _with_counts(chain, counts)
+    lab = chain.label
+    notes: list[str] = []
+    # time
+    gaps = None
+    order = int(chain.counts.meta.get("order", 1)) if chain.counts is not None else 1
+    if sessions is not None and getattr(sessions, "times", None) is not None:
+        if order == 1:
+            gaps = state_gaps(sessions)
+        else:
+            notes.append("median dwell times are given for first-order chains only (gaps are kept per name)")
+    tm = timing_analysis(chain, gaps=gaps)
+    notes.extend(tm.notes)
+    dwell = tuple(
+        DwellRow(lab(int(i)), _num(tm.dwell[i]), _num(tm.dwell_median[i]) if tm.dwell_median is not None else None,
+                 int(tm.dwell_n[i]))
+        for i in chain.observed if not chain.absorbing_mask[i]
+    )
+    t_start = tm.time_to_absorption(chain.start) if chain.start is not None and tm.available else None
+    t_goal = {}
+    if chain.start is not None and tm.available:
+        for g in chain.goals:
+            t_goal[lab(int(g))] = tm.time_given(chain.start, int(g))
+    # attribution and paths
+    removal: tuple[RemovalRow, ...] = ()
+    removal_exact = True
+    paths: tuple[PathRow, ...] = ()
+    if chain.start is not None and len(chain.goals):
+        m = len(StartBlock(chain.P, chain.start, chain.absorbing_mask).T)
+        re = removal_effects(chain, max_exact=None if m <= DENSE_MAX else top)
+        notes.extend(re.notes)
+        removal_exact = re.exact
+        removal = tuple(
+            RemovalRow(lab(e.state), e.effect, e.share, e.conversion_without, e.visit_probability)
+            for e in re.effects[:top]
+        )
+        lp = most_likely_paths(chain)
+        paths = tuple(PathRow(lab(p.target), tuple(lab(s) for s in p.states), _num(p.probability)) for p in lp.paths)
+        paths += tuple(PathRow(lab(t), (), None) for t in lp.unreachable)
+        if lp.unreachable:
+            notes.append(f"{len(lp.unreachable)} goal(s) cannot be reached from the start")
+    # long run
+    stat = None
+    H = None
+    period = None
+    if not chain.absorbing_mask.any():
+        try:
+            st = stationary_analysis(chain, first_passage=False)
+        except AnalysisError as err:
+            notes.append(f"no stationary distribution: {err}")
+        else:
+            order = np.argsort(-st.pi, kind="stable")
+            stat = tuple(StationaryRow(lab(int(i)), float(st.pi[i]), _num(st.recurrence[i]))
+                         for i in order if st.pi[i] > 0)
+            H = _num(st.entropy_rate) if st.base == 2.0 else None
+            period = st.period
+    # intervals
+    conv_i = steps_i = None
+    used_draws = 0
+    if chain.counts is not None and chain.start is not None and chain.absorbing_mask.any():
+        if draws is None:
+            m = len(StartBlock(chain.P, chain.start, chain.absorbing_mask).T)
+            draws = 200 if m <= DENSE_MAX else 20
+        try:
+            u = dirichlet_intervals(chain, level=level, draws=draws, seed=seed, prior=prior)
+        except AnalysisError as err:
+            notes.append(f"no intervals: {err}")
+        else:
+            conv_i, steps_i, used_draws = u.conversion, u.steps, u.draws
+            notes.extend(u.notes)
+    # sessions
+    cp: tuple[CommonPathRow, ...] = ()
+    ll: tuple[SurpriseRow, ...] = ()
+    if sessions is not None:
+        goals = [lab(int(g)) for g in chain.goals]
+        obs = common_paths(sessions, goals=goals, top=top)
+        cp = tuple(CommonPathRow(p.states, p.sessions, p.share, p.converted, p.conversion_share) for p in obs.paths)
+        sr = surprise(chain, sessions, top=top)
+        keys = getattr(sessions, "keys", None)
+        ll = tuple(
+            SurpriseRow(str(keys[s.index]) if keys else str(s.index), s.per_step, s.steps, s.improbable)
+            for s in sr.least_likely
+        )
+    return ExtendedAnalysis(
+        dwell=dwell, time_from_start=_num(t_start), time_to_goal=t_goal, removal=removal, removal_exact=removal_exact,
+        likely_paths=paths, stationary=stat, entropy_rate_bits=H, period=period, conversion_interval=conv_i,
+        steps_interval=steps_i, level=float(level), draws=int(used_draws), seed=int(seed),
+        prior=float(prior) if used_draws else None, common_paths=cp, least_likely=ll, notes=tuple(dict.fromkeys(notes)),
+    )
+
+
+# -- JSON ---------------------------------------------------------------------------------
+def _interval_doc(iv: Interval | None):
+    if iv is None:
+        return None
+    return {"estimate": _num(iv.estimate), "low": _num(iv.low), "high": _num(iv.high), "mean": _num(iv.mean),
+            "draws": int(iv.draws)}
+
+
+def extended_document(ext: ExtendedAnalysis) -> dict:
+    """A JSON-ready dict (finite numbers or None only) described by :data:`EXTENDED_SCHEMA`."""
+    return {
+        "time": {
+            "dwell": [{"state": d.state, "mean_s": _num(d.mean_s), "median_s": _num(d.median_s), "gaps": d.gaps}
+                      for d in ext.dwell],
+            "from_start_s": _num(ext.time_from_start),
+            "to_goal_s": {k: _num(v) for k, v in ext.time_to_goal.items()},
+        },
+        "removal_effects": {
+            "exact": bool(ext.removal_exact),
+            "states": [{"state": r.state, "effect": _num(r.effect), "share": _num(r.share),
+                        "conversion_without": _num(r.conversion_without),
+                        "visit_probability": _num(r.visit_probability)} for r in ext.removal],
+        },
+        "most_likely_paths": [{"goal": p.goal, "states": list(p.states), "probability": _num(p.probability)}
+                              for p in ext.likely_paths],
+        "stationary": None if ext.stationary is None else {
+            "distribution": [{"state": s.state, "probability": _num(s.probability),
+                              "recurrence_time": _num(s.recurrence_time)} for s in ext.stationary],
+            "entropy_rate_bits": _num(ext.entropy_rate_bits),
+            "period": ext.period,
+        },
+        "intervals": {
+            "method": "dirichlet",
+            "level": float(ext.level),
+            "draws": int(ext.draws),
+            "seed": int(ext.seed),
+            "prior": _num(ext.prior),
+            "conversion": _interval_doc(ext.conversion_interval),
+            "expected_steps": _interval_doc(ext.steps_interval),
+        },
+        "common_paths": [{"states": list(c.states), "sessions": int(c.sessions), "share": _num(c.share),
+                          "converted": bool(c.converted), "conversion_share": _num(c.conversion_share)}
+                         for c in ext.common_paths],
+        "least_likely_sessions": [
+            {"session": s.session, "log_likelihood_per_step": _num(s.per_step), "steps": int(s.steps),
+             "improbable": [{"from": a, "to": b, "probability": _num(p)} for a, b, p in s.improbable]}
+            for s in ext.least_likely
+        ],
+        "notes": list(ext.notes),
+    }
+
+
+_NUM = {"type": ["number", "null"]}
+_PROB = {"type": ["number", "null"], "minimum": 0, "maximum": 1}
+_NONNEG = {"type": ["number", "null"], "minimum": 0}
+_INTERVAL = {
+    "oneOf": [
+        {"type": "null"},
+        {
+            "type": "object",
+            "required": ["estimate", "low", "high", "mean", "draws"],
+            "additionalProperties": False,
+            "properties": {"estimate": _NUM, "low": _NUM, "high": _NUM, "mean": _NUM,
+                           "draws": {"type": "integer", "minimum": 0}},
+        },
+    ]
+}
+
+#: JSON Schema (draft 2020-12) of :func:`extended_document`.
+EXTENDED_SCHEMA: dict = {
+    "$schema": "https://json-schema.org/draft/2020-12/schema",
+    "title": "tracechain extended analysis",
+    "description": "Dwell and expected times (seconds), removal effects, most likely paths, the long run of chains "
+                   "without absorbing states, Dirichlet intervals, and with sessions the common and least likely "
+                   "sessions. Undefined figures are null, never NaN.",
+    "type": "object",
+    "required": ["time", "removal_effects", "most_likely_paths", "stationary", "intervals", "common_paths",
+                 "least_likely_sessions", "notes"],
+    "additionalProperties": False,
+    "properties": {
+        "time": {
+            "type": "object",
+            "required": ["dwell", "from_start_s", "to_goal_s"],
+            "additionalProperties": False,
+            "properties": {
+                "dwell": {"type": "array", "items": {
+                    "type": "object", "required": ["state", "mean_s", "median_s", "gaps"], "additionalProperties": False,
+                    "properties": {"state": {"type": "string"}, "mean_s": _NONNEG, "median_s": _NONNEG,
+                                   "gaps": {"type": "integer", "minimum": 0}}}},
+                "from_start_s": _NONNEG,
+                "to_goal_s": {"type": "object", "additionalProperties": _NONNEG},
+            },
+        },
+        "removal_effects": {
+            "type": "object",
+            "required": ["exact", "states"],
+            "additionalProperties": False,
+            "properties": {
+                "exact": {"type": "boolean"},
+                "states": {"type": "array", "items": {
+                    "type": "object",
+                    "required": ["state", "effect", "share", "conversion_without", "visit_probability"],
+                    "additionalProperties": False,
+                    "properties": {"state": {"type": "string"}, "effect": _PROB, "share": _PROB,
+                                   "conversion_without": _PROB, "visit_probability": _PROB}}},
+            },
+        },
+        "most_likely_paths": {"type": "array", "items": {
+            "type": "object", "required": ["goal", "states", "probability"], "additionalProperties": False,
+            "properties": {"goal": {"type": "string"}, "states": {"type": "array", "items": {"type": "string"}},
+                           "probability": _PROB}}},
+        "stationary": {"oneOf": [{"type": "null"}, {
+            "type": "object", "required": ["distribution", "entropy_rate_bits", "period"], "additionalProperties": False,
+            "properties": {
+                "distribution": {"type": "array", "items": {
+                    "type": "object", "required": ["state", "probability", "recurrence_time"],
+                    "additionalProperties": False,
+                    "properties": {"state": {"type": "string"}, "probability": _PROB, "recurrence_time": _NONNEG}}},
+                "entropy_rate_bits": _NONNEG,
+                "period": {"type": ["integer", "null"], "minimum": 1},
+            }}]},
+        "intervals": {
+            "type": "object",
+            "required": ["method", "level", "draws", "seed", "prior", "conversion", "expected_steps"],
+            "additionalProperties": False,
+            "properties": {
+                "method": {"const": "dirichlet"},
+                "level": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
+                "draws": {"type": "integer", "minimum": 0},
+                "seed": {"type": "integer"},
+                "prior": _NONNEG,
+                "conversion": _INTERVAL,
+                "expected_steps": _INTERVAL,
+            },
+        },
+        "common_paths": {"type": "array", "items": {
+            "type": "object", "required": ["states", "sessions", "share", "converted", "conversion_share"],
+            "additionalProperties": False,
+            "properties": {"states": {"type": "array", "items": {"type": "string"}},
+                           "sessions": {"type": "integer", "minimum": 0}, "share": _PROB,
+                           "converted": {"type": "boolean"}, "conversion_share": _PROB}}},
+        "least_likely_sessions": {"type": "array", "items": {
+            "type": "object", "required": ["session", "log_likelihood_per_step", "steps", "improbable"],
+            "additionalProperties": False,
+            "properties": {
+                "session": {"type": "string"},
+                "log_likelihood_per_step": {"type": ["number", "null"], "maximum": 0},
+                "steps": {"type": "integer", "minimum": 0},
+                "improbable": {"type": "array", "items": {
+                    "type": "object", "required": ["from", "to", "probability"], "additionalProperties": False,
+                    "properties": {"from": {"type": "string"}, "to": {"type": "string"}, "probability": _PROB}}},
+            }}},
+        "notes": {"type": "array", "items": {"type": "string"}},
+    },
+}
+
+
+# -- terminal -----------------------------------------------------------------------------
+def _fmt(x, pct: bool = False, digits: int = 2) -> str:
+    if x is None:
+        return "n/a"
+    return f"{100 * x:.1f}%" if pct else f"{x:.{digits}f}"
+
+
+def _duration(s: float | None) -> str:
+    if s is None:
+        return "n/a"
+    if s < 120:
+        return f"{s:.1f} s"
+    if s < 7200:
+        return f"{s / 60:.1f} min"
+    return f"{s / 3600:.1f} h"
+
+
+def extended_lines(ext: ExtendedAnalysis, max_rows: int = 10) -> list[str]:
+    """Terminal lines for the extended analysis (state names escaped)."""
+    from ..report.text import safe_text
+
+    out: list[str] = []
+    pct = int(round(100 * ext.level))
+    if ext.conversion_interval is not None or ext.steps_interval is not None:
+        out.append(f"Intervals ({pct}%, Dirichlet posterior, {ext.draws} draws)")
+        for name, iv, is_p in (("conversion from the start", ext.conversion_interval, True),
+                               ("expected steps from the start", ext.steps_interval, False)):
+            if iv is not None:
+                out.append(f"  {name}: {_fmt(iv.estimate, is_p)} [{_fmt(iv.low, is_p)}, {_fmt(iv.high, is_p)}]")
+        out.append("")
+    if ext.time_from_start is not None or ext.time_to_goal:
+        out.append("Time")
+        out.append(f"  expected time from the first to the last event: {_duration(ext.time_from_start)}")
+        for g, t in ext.time_to_goal.items():
+            out.append(f"  expected time to {safe_text(g)} (sessions that reach it): {_duration(t)}")
+        slow = sorted((d for d in ext.dwell if d.mean_s is not None), key=lambda d: -d.mean_s)[:max_rows]
+        if slow:
+            out.append("  longest mean dwell: " + ", ".join(f"{safe_text(d.state)} {_duration(d.mean_s)}" for d in slow[:5]))
+        out.append("")
+    if ext.removal:
+        out.append("Removal effects (share of conversion each state carries)")
+        w = max(len(safe_text(r.state)) for r in ext.removal[:max_rows])
+        for r in ext.removal[:max_rows]:
+            out.append(f"  {safe_text(r.state).ljust(w)}  effect {_fmt(r.effect, True):>6}  share {_fmt(r.share, True):>6}")
+        out.append("")
+    if ext.likely_paths:
+        out.append("Most likely path to each goal")
+        for p in ext.likely_paths:
+            route = " → ".join(safe_text(s, 30) for s in p.states) if p.states else "(unreachable)"
+            out.append(f"  {safe_text(p.goal)}: {route} (p = {_fmt(p.probability, digits=4)})")
+        out.append("")
+    if ext.stationary is not None:
+        out.append("Long run (no absorbing state)")
+        out.append("  " + ", ".join(f"{safe_text(s.state)} {_fmt(s.probability, True)}" for s in ext.stationary[:max_rows]))
+        out.append(f"  entropy rate: {_fmt(ext.entropy_rate_bits, digits=3)} bits per step")
+        out.append("")
+    for n in ext.notes:
+        out.append(f"note: {n}")
+    return out

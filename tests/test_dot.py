@@ -196,7 +196,8 @@ def test_hidden_states_are_stated():
     # Home (90 visits) and Paid (30) stay; the nine pages have 10 visits each, so two stay and
     # seven are hidden, each with two edges: Home -> page (10) and page -> Paid or end (10).
     # Drawable transitions: start -> Home 90, Home -> pages 90, pages -> Paid/end 90 = 270.
-    m = re.search(r"(?:^|\\n)7 least-visited states hidden \(diagram limited to 4 states\), with their "
+    # (wording changed with the path-based selection: hidden states are no longer simply the least visited)
+    m = re.search(r"(?:^|\\n)7 states hidden \(diagram limited to 4 states[^)]*\), with their "
                   r"(\d+) edges carrying (\d+\.\d)% of all transitions", g["label"])
     assert m, g["label"]
     assert int(m.group(1)) == 14

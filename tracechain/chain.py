@@ -250,6 +250,20 @@ class Chain:
         ng = len(self.goals)
         return f"Chain({self.n} states, {self.P.nnz} edges, {ng} goal{'s' if ng != 1 else ''})"
 
+    # -- notebook display (IPython / Jupyter call these; names are escaped, no script) -------
+    def _repr_svg_(self) -> str | None:
+        from .report.html import notebook_svg
+
+        return notebook_svg(self)
+
+    def _repr_html_(self) -> str | None:
+        return self._repr_mimebundle_(include={"text/html"}).get("text/html")
+
+    def _repr_mimebundle_(self, include=None, exclude=None) -> dict:
+        from .report.html import notebook_bundle
+
+        return notebook_bundle(self, include, exclude)
+
 
 def _free_label(base: str, taken: set) -> str:
     """``base`` (``[start]``/``[end]``), or ``[start 2]``, ``[start 3]`` ... if a data state already

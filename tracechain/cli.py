@@ -138,6 +138,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .check.command import register as _register_check
 
     _register_extended(sub)
+    from .report.commands import register as _register_report
+
+    _register_report(sub)
 
     _register_check(sub)
     return parser

@@ -138,6 +138,20 @@ class Analysis:
             ))
         return rows
 
+    # -- notebook display (IPython / Jupyter call these; names are escaped, no script) -------
+    def _repr_svg_(self) -> str | None:
+        from ..report.html import notebook_svg
+
+        return notebook_svg(self)
+
+    def _repr_html_(self) -> str | None:
+        return self._repr_mimebundle_(include={"text/html"}).get("text/html")
+
+    def _repr_mimebundle_(self, include=None, exclude=None) -> dict:
+        from ..report.html import notebook_bundle
+
+        return notebook_bundle(self, include, exclude)
+
 
 def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, settings: dict | None = None) -> Analysis:
     """Run the standard analyses of ``chain``."""

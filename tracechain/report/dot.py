@@ -7,44 +7,70 @@ are tints of the Okabe & Ito palette, "Color Universal Design", 2008):
 =============  =====================================================================
 start          small circle labelled "start"
 goal           rounded box with a double outline, bold, green tint, "★ goal"
+terminal       square-cornered box with one bold outline, grey tint, "■ finished"
 dead end       rounded box with a dashed outline, orange tint, "⊘ dead end"
 sink           rounded box with a dotted outline ("no observed exit")
 other state    rounded box
 end            plain box with a dashed outline, labelled "end"
+focus          (``focus=``) the focused state has a thick outline and "◎ focus"
 closed loop    a dashed, thick frame around a closed class with no way out
+group          a thin solid frame around the states of one group of the mapping file
+               (``groups=``), labelled with the group's name; without groups, in a diagram
+               of up to 20 states, around each open class of several states when there
+               are two or more
 edge           width grows with the number of transitions; label: probability
-               (and count); edges into a goal are solid green, into the end dashed grey
+               (and count); edges into a goal are solid green with a ★ before the
+               label, into the end dashed grey
 =============  =====================================================================
 
-Rare edges (a share of all transitions below ``min_edge_share``) are pruned and the
-pruned share is stated in the diagram's caption. "All transitions" are the exits of
-non-absorbing states (start and end edges included), the flow the diagram can show: the
-end edges recorded after a goal or terminal state are not drawn and not counted. Edges of
-states hidden by ``max_states`` are stated on their own line, not as rare edges. State names
-are untrusted: they only ever appear inside double-quoted, escaped labels; node ids are our
-own (``n0``, ``n1``).
+Layout: columns run from the start; above 20 states, states are placed in columns by
+their distance (in drawn edges) from the start, the end in the last column. Rare edges (a share of all transitions below
+``min_edge_share``) are pruned and the pruned share is stated in the diagram's caption.
+"All transitions" are the exits of non-absorbing states (start and end edges included),
+the flow the diagram can show: the end edges recorded after a goal or terminal state are
+not drawn and not counted. A chain with more than ``max_states`` states is summarised:
+goals stay, then the states on the most likely paths from the start to a goal (ranked by
+the probability of the most likely such path through the state), then the most visited;
+the states and edges left out are stated on their own line, not as rare edges. State
+and group names are untrusted: they only ever appear inside double-quoted, escaped
+labels; node ids are our own (``n0``, ``n1``).
+
+:func:`render_diff_dot` draws a comparison of two chains (see
+:mod:`tracechain.analyze.compare`) in the same vocabulary: a significant increase is a
+thick solid blue edge with ▲, a significant decrease a thick dashed vermillion edge with
+▼, a transition seen on one side only is dotted (◆ new, ◇ gone), and the rest are thin
+and grey.
 """
 
 from __future__ import annotations
 
 import math
 import unicodedata
+from collections import deque
+from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
 
 from ..analyze.summary import Analysis
-from ..errors import RenderError
+from ..errors import AnalysisError, RenderError
 
-__all__ = ["render_dot", "render_image", "dot_quote", "FORMATS"]
+__all__ = ["render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
+           "resolve_state", "FORMATS"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
 
 _GOAL_FILL = "#d2f0e6"  # tint of bluish green #009E73
 _GOAL_LINE = "#007a5a"
 _DEAD_FILL = "#fbe3c0"  # tint of orange #E69F00
+_TERM_FILL = "#e4e4e4"  # neutral grey
 _TRAP_LINE = "#D55E00"  # vermillion
+_UP = "#0072B2"  # blue
+_DOWN = "#D55E00"  # vermillion
+_MUTED = "#b3b3b3"
 _EDGE = "#4d4d4d"
 _END_EDGE = "#8c8c8c"
+_GROUP_LINE = "#9a9a9a"
 _MAX_LABEL = 48
 
 
@@ -96,35 +122,171 @@ def _label(*lines: str, limit: int = _MAX_LABEL) -> _Raw:
     return _Raw(f'"{inner}"')
 
 
-def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
-               min_edge_prob: float = 0.1) -> str:
-    """The diagram as DOT text.
+@dataclass(frozen=True)
+class Diagram:
+    """A diagram's DOT text and what it left out (for captions elsewhere, e.g. the HTML report).
+
+    ``notes`` are the caption lines about pruning, hiding and focus, in plain text.
+    """
+
+    dot: str
+    notes: tuple[str, ...]
+    shown: tuple[int, ...]
+    pruned_edges: int
+    pruned_share: float
+    hidden_states: int
+    hidden_share: float
+    focus: str | None = None
+
+
+def resolve_state(chain, name: str) -> int:
+    """Chain index of the state labelled ``name`` (a label, as reports show it)."""
+    import difflib
+
+    for i in range(chain.n):
+        if chain.label(i) == name or chain.states[i] == name:
+            return i
+    labels = [chain.label(i) for i in range(chain.n)]
+    hint = difflib.get_close_matches(str(name), labels, n=3)
+    more = f"; did you mean {', '.join(repr(h) for h in hint)}?" if hint else ""
+    raise AnalysisError(f"state {name!r} does not occur in the chain ({len(labels)} states){more}")
+
+
+def _neighbourhood(W: sp.csr_array, centre: int, radius: int) -> set[int]:
+    """States within ``radius`` edges of ``centre``, following edges either way."""
+    U = (W + W.T).tocsr()
+    seen = {centre}
+    frontier = [centre]
+    for _ in range(radius):
+        nxt = []
+        for u in frontier:
+            for v in U.indices[U.indptr[u]:U.indptr[u + 1]]:
+                v = int(v)
+                if v not in seen:
+                    seen.add(v)
+                    nxt.append(v)
+        frontier = nxt
+    return seen
+
+
+def _path_scores(ch, targets: list[int]) -> np.ndarray:
+    """Per state: the probability of the most likely path start → state → a target.
+
+    Two shortest-path searches with weights −log P (one from the start, one towards the
+    targets on the reversed graph); exits of absorbing states are not followed. Every state
+    on the single most likely path gets that path's probability, so ranking by this score
+    keeps whole paths together.
+    """
+    n = ch.n
+    if ch.start is None or not targets:
+        return np.zeros(n)
+    from scipy.sparse import csgraph
+
+    P = ch.P.tocoo()
+    keep = (~ch.absorbing_mask[P.row]) & (P.data > 0) & (P.row != P.col)
+    w = -np.log(P.data[keep]) + 1e-12  # +tiny: an edge of probability 1 must not look like "no edge"
+    G = sp.csr_array((w, (P.row[keep], P.col[keep])), shape=(n, n))
+    d_from = csgraph.dijkstra(G, directed=True, indices=ch.start)
+    d_to = csgraph.dijkstra(G.T.tocsr(), directed=True, indices=targets)
+    d_to = np.min(np.atleast_2d(d_to), axis=0)
+    total = d_from + d_to
+    with np.errstate(over="ignore"):
+        score = np.where(np.isfinite(total), np.exp(-total), 0.0)
+    return score
+
+
+def _bfs_levels(n: int, start: int | None, edges: list[tuple[int, int, float]], drawn: set[int]) -> dict[int, int]:
+    if start is None or start not in drawn:
+        return {}
+    adj: dict[int, list[int]] = {}
+    for i, j, _ in edges:
+        adj.setdefault(i, []).append(j)
+    level = {start: 0}
+    q = deque([start])
+    while q:
+        u = q.popleft()
+        for v in adj.get(u, ()):
+            if v not in level:
+                level[v] = level[u] + 1
+                q.append(v)
+    return level
+
+
+def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
+                  min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
+                  radius: int = 1, rank_by_distance: bool | str = "auto", max_edges: int | None = None,
+                  end_edges: str = "auto") -> Diagram:
+    """The diagram of an analysis, with what it left out.
 
     An edge is *rare*, and hidden, when it carries less than ``min_edge_share`` of all
     transitions and also less than ``min_edge_prob`` of its source state's exits (so a small
     but typical loop, like a retry, stays visible). Exits of absorbing states are not drawn.
+
+    ``groups`` maps state labels to group names (``Mapping.groups``); grouped states are
+    framed together. Without it (``None``), open communicating classes of several states are
+    framed when there are two or more of them and at most 20 states are drawn; ``{}``
+    frames nothing. ``focus`` names one state: only the states within ``radius`` (1 or 2)
+    edges of it, in either direction, are drawn.
+
+    ``rank_by_distance``: True puts the states in columns by their distance (in drawn edges)
+    from the start, the end in the last column; False leaves the columns to Graphviz, whose
+    layering also runs from the start (the start has no edge in) but spreads a chain over
+    as many columns as its longest path; ``"auto"`` (default) fixes the columns above 20
+    drawn states, where that keeps a big chain in a few readable columns, and leaves small
+    diagrams, whose tightly linked states would share a column, to Graphviz.
+
+    ``max_edges`` caps the edges drawn (default: 80 or two per drawn state, whichever is
+    more): beyond it the weakest edges go, but every state keeps its strongest exit; what
+    went is stated. ``end_edges`` is ``"edges"`` (draw the exits into the end),
+    ``"labels"`` (write each state's share of sessions ending there into its label
+    instead, which saves many long edges in a big diagram) or ``"auto"`` (edges up to 20
+    drawn states, labels above).
     """
+    if end_edges not in ("auto", "edges", "labels"):
+        raise AnalysisError(f"end_edges must be 'auto', 'edges' or 'labels', not {end_edges!r}")
     ch = a.chain
-    W = ch.weights.tocoo()
+    if radius not in (1, 2):
+        raise AnalysisError(f"the focus radius must be 1 or 2, not {radius!r}")
+    has_counts = ch.counts is not None
+    Wm = ch.weights
+    W = Wm.tocoo()
     drawable = ~ch.absorbing_mask[W.row]
     total = float(W.data[drawable].sum()) or 1.0
-    visits = np.asarray(ch.weights.sum(axis=1)).ravel()
+    visits = np.asarray(Wm.sum(axis=1)).ravel()
+    opened = np.zeros(ch.n, dtype=np.int64)
+    if has_counts:
+        off = 1 if ch.start is not None else 0
+        opened[off: off + ch.counts.n_states] = ch.counts.open
     roles = ch.roles
     dead = {d.state for d in a.dead_ends}
-    trap_of: dict[int, int] = {}
-    for k, cl in enumerate(a.classes.traps):
-        for s in cl.states:
-            trap_of[s] = k
+    goals = [int(g) for g in ch.goals]
     # which states are drawn
     keep = np.ones(ch.n, dtype=bool)
     hidden_states = 0
+    selection = None
+    focus_idx = None
     observed = [i for i in range(ch.n) if roles[i] not in ("start", "end")]
-    if len(observed) > max_states:
-        ranked = sorted(observed, key=lambda i: -visits[i])
-        drop = set(ranked[max_states:]) - set(int(g) for g in ch.goals)
-        for i in drop:
-            keep[i] = False
-        hidden_states = len(drop)
+    if focus is not None:
+        focus_idx = resolve_state(ch, focus)
+        near = _neighbourhood(Wm, focus_idx, radius)
+        keep[:] = False
+        keep[list(near)] = True
+        hidden_states = sum(1 for i in observed if not keep[i])
+        selection = "focus"
+    elif len(observed) > max_states:
+        targets = goals or [i for i in range(ch.n) if ch.absorbing_mask[i] and roles[i] != "start"]
+        score = _path_scores(ch, targets)
+        chosen = [g for g in goals][:max_states]
+        rest = [i for i in observed if i not in set(chosen)]
+        rest.sort(key=lambda i: (-score[i], -visits[i], i))
+        chosen += rest[: max(0, max_states - len(chosen))]
+        keep[:] = False
+        keep[chosen] = True
+        for i in range(ch.n):
+            if roles[i] in ("start", "end"):
+                keep[i] = True
+        hidden_states = sum(1 for i in observed if not keep[i])
+        selection = "top"
     # which edges are drawn
     edges = []
     pruned_n, pruned_w = 0, 0.0
@@ -141,7 +303,66 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
             pruned_w += w
             continue
         edges.append((int(i), int(j), float(w)))
+    n_drawn = sum(1 for i in observed if keep[i])
+    fold_ends = ch.end is not None and (end_edges == "labels" or (end_edges == "auto" and n_drawn > 20))
+    ends_of: dict[int, tuple[float, float]] = {}
+    if fold_ends:
+        for i, j, w in edges:
+            if j == ch.end:
+                ends_of[i] = (w, float(ch.P[i, j]))
+        edges = [e for e in edges if e[1] != ch.end]
+        keep[ch.end] = False
+    # where sessions start is written into the states' labels: the start's fan of edges keeps its
+    # widths but carries no text, which would crowd the first column
+    starts_of: dict[int, tuple[float, float]] = {}
+    if ch.start is not None:
+        for i, j, w in zip(W.row, W.col, W.data):
+            if i == ch.start and w > 0 and keep[j]:
+                starts_of[int(j)] = (float(w), float(ch.P[i, j]))
+    limit = max_edges if max_edges is not None else max(80, 2 * n_drawn)
+    capped_n, capped_w = 0, 0.0
+    if len(edges) > limit:
+        best: dict[int, tuple[int, int, float]] = {}
+        for e in edges:
+            if e[0] not in best or e[2] > best[e[0]][2]:
+                best[e[0]] = e
+        protected = set(best.values())
+        others = sorted((e for e in edges if e not in protected), key=lambda e: -e[2])
+        room = max(0, limit - len(protected))
+        dropped = others[room:]
+        capped_n, capped_w = len(dropped), sum(e[2] for e in dropped)
+        gone = set(dropped)
+        edges = [e for e in edges if e not in gone]
     wmax = max((w for _, _, w in edges), default=1.0)
+
+    notes: list[str] = []
+    if selection == "focus":
+        notes.append(
+            f"neighbourhood of {_short(ch.label(focus_idx))} (radius {radius}, edges in either direction): "
+            f"{sum(1 for i in observed if keep[i])} of {len(observed)} states drawn; the other {hidden_states}, "
+            f"with their {hidden_n} edge{'s' if hidden_n != 1 else ''}, carry {100 * hidden_w / total:.1f}% "
+            "of all transitions"
+        )
+    if pruned_n:
+        notes.append(
+            f"{pruned_n} rare edge{'s' if pruned_n != 1 else ''} hidden (under {100 * min_edge_share:g}% of all "
+            f"transitions and under {100 * min_edge_prob:g}% of their state's exits), "
+            f"carrying {100 * pruned_w / total:.1f}% of all transitions"
+        )
+    if capped_n:
+        notes.append(
+            f"{capped_n} weaker edge{'s' if capped_n != 1 else ''} hidden to keep the diagram readable (at most "
+            f"{limit} edges, each state keeping its strongest exit), carrying {100 * capped_w / total:.1f}% of all "
+            "transitions"
+        )
+    if fold_ends:
+        notes.append("sessions ending in a state are shown in its label (⤓ share of its exits), not as edges to the end")
+    if selection == "top" and hidden_states:
+        notes.append(
+            f"{hidden_states} states hidden (diagram limited to {max_states} states, chosen along the most likely "
+            f"paths from the start to a goal, then by visits), with their "
+            f"{hidden_n} edge{'s' if hidden_n != 1 else ''} carrying {100 * hidden_w / total:.1f}% of all transitions"
+        )
 
     out = ["digraph tracechain {"]
     cap = []
@@ -150,93 +371,366 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
     conv = a.conversion_total()
     if conv is not None:
         cap.append(f"conversion from start: {100 * conv:.1f}%")
-    if pruned_n:
-        cap.append(
-            f"{pruned_n} rare edge{'s' if pruned_n != 1 else ''} hidden (under {100 * min_edge_share:g}% of all "
-            f"transitions and under {100 * min_edge_prob:g}% of their state's exits), "
-            f"carrying {100 * pruned_w / total:.1f}% of all transitions"
-        )
-    if hidden_states:
-        cap.append(
-            f"{hidden_states} least-visited states hidden (diagram limited to {max_states} states), with their "
-            f"{hidden_n} edge{'s' if hidden_n != 1 else ''} carrying {100 * hidden_w / total:.1f}% of all transitions"
-        )
+    cap.extend(notes)
     out.append(
         "  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t", nojustify="true",
-                            label=_label(*cap, limit=200) if cap else None, newrank="true")
+                            label=_label(*cap, limit=200) if cap else None, newrank="true", ranksep=0.55,
+                            nodesep=0.5, forcelabels="true")
         + ";"
     )
     out.append("  node " + _attrs(fontname="Helvetica", fontsize=10, shape="box", style="rounded") + ";")
     out.append("  edge " + _attrs(fontname="Helvetica", fontsize=9, color=_EDGE, arrowsize=0.7) + ";")
 
+    present: set[str] = set()
+
     def node_line(i: int) -> str:
         role = roles[i]
         name = ch.label(i)
-        v = int(visits[i])
+        v = int(visits[i] + opened[i])
+        extra = f"{v:,} visits" if has_counts else None
+        if has_counts and opened[i]:
+            extra += f" · {int(opened[i]):,} still open"
+        foc = dict(penwidth=3) if i == focus_idx else {}
+        tag = (["◎ focus"] if i == focus_idx else [])
+        if i in starts_of and starts_of[i][1] >= 0.01:  # under 1% of starts: the edge's width says enough
+            w_st, p_st = starts_of[i]
+            tag.append(f"↦ {100 * p_st:.0f}% of starts ({int(w_st):,})" if has_counts else f"↦ {100 * p_st:.0f}% of starts")
+        if i in ends_of:
+            w_end, p_end = ends_of[i]
+            tag.append(f"⤓ {100 * p_end:.0f}% end here ({int(w_end):,})" if has_counts else f"⤓ {100 * p_end:.0f}% end")
         if role == "start":
+            present.add("start")
             return f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true", style="solid") + ";"
         if role == "end":
+            present.add("end")
             return f"  n{i} " + _attrs(shape="box", style="dashed", label="end") + ";"
+        lines = [name] + tag
         if role == "goal":
+            present.add("goal")
             return f"  n{i} " + _attrs(
-                label=_label(name, "★ goal"), peripheries=2, style="rounded,filled,bold", fillcolor=_GOAL_FILL,
-                color=_GOAL_LINE) + ";"
+                label=_label(*lines, "★ goal"), peripheries=2, style="rounded,filled,bold", fillcolor=_GOAL_FILL,
+                color=_GOAL_LINE, **foc) + ";"
         if role == "terminal":
-            return f"  n{i} " + _attrs(label=_label(name, "terminal"), peripheries=2, style="rounded") + ";"
+            present.add("terminal")
+            return f"  n{i} " + _attrs(label=_label(*lines, "■ finished"), shape="box", style="filled,bold",
+                                       fillcolor=_TERM_FILL, **foc) + ";"
         if role == "sink":
-            return f"  n{i} " + _attrs(label=_label(name, "no observed exit"), style="rounded,dotted") + ";"
+            present.add("sink")
+            return f"  n{i} " + _attrs(label=_label(*lines, "no observed exit"), style="rounded,dotted", **foc) + ";"
         if i in dead:
-            return f"  n{i} " + _attrs(label=_label(name, f"⊘ dead end · {v:,} visits"), style="rounded,filled,dashed",
-                                       fillcolor=_DEAD_FILL) + ";"
-        return f"  n{i} " + _attrs(label=_label(name, f"{v:,} visits")) + ";"
+            present.add("dead")
+            more = f" · {v:,} visits" if has_counts else ""
+            return f"  n{i} " + _attrs(label=_label(*lines, f"⊘ dead end{more}"), style="rounded,filled,dashed",
+                                       fillcolor=_DEAD_FILL, **foc) + ";"
+        present.add("state")
+        return f"  n{i} " + _attrs(label=_label(*lines, *([extra] if extra else [])), **foc) + ";"
 
     drawn = [i for i in range(ch.n) if keep[i]]
-    in_clusters = set()
+    drawn_set = set(drawn)
+    placed: set[int] = set()
+    trap_blocks: list[tuple[int, list[int]]] = []
     for k, cl in enumerate(a.classes.traps):
         members = [s for s in cl.states if keep[s]]
-        if not members:
-            continue
-        out.append(f"  subgraph cluster_trap{k} {{")
-        out.append("    graph " + _attrs(label="closed loop: no way out", style="dashed", penwidth=2.5,
-                                         color=_TRAP_LINE, fontcolor="#000000") + ";")
+        if members:
+            trap_blocks.append((k, members))
+            present.add("trap")
+
+    def trap_cluster(k: int, members: list[int], indent: str) -> list[str]:
+        lines = [f"{indent}subgraph cluster_trap{k} {{",
+                 f"{indent}  graph " + _attrs(label="closed loop: no way out", style="dashed", penwidth=2.5,
+                                              color=_TRAP_LINE, fontcolor="#000000") + ";"]
         for s in members:
-            out.append("  " + node_line(s))
-            in_clusters.add(s)
+            lines.append(indent + "  " + node_line(s).lstrip())
+            placed.add(s)
+        lines.append(f"{indent}}}")
+        return lines
+
+    group_of: dict[int, str] = {}
+    if groups:
+        for i in drawn:
+            if roles[i] in ("start", "end"):
+                continue
+            g = groups.get(ch.label(i))
+            if g is None and not isinstance(ch.states[i], str) and ch.states[i]:
+                g = groups.get(str(ch.states[i][-1]))  # higher order: the window's newest state
+            if g is not None:
+                group_of[i] = str(g)
+    elif groups is None and n_drawn <= 20:
+        # no groups given: frame the open classes of several states (states that reach each other),
+        # when there are at least two of them (one class holding most states would frame nothing useful);
+        # not in a big diagram, whose columns by distance such frames would tangle
+        multi = [cl for cl in a.classes.classes if cl.kind == "open" and cl.size > 1]
+        if len(multi) >= 2:
+            for k, cl in enumerate(multi):
+                for s_ in cl.states:
+                    if keep[s_]:
+                        group_of[s_] = f"loop {k + 1}: {cl.size} states that reach each other"
+    group_names = list(dict.fromkeys(group_of[i] for i in drawn if i in group_of))
+    if group_names:
+        present.add("group")
+    for gk, gname in enumerate(group_names):
+        out.append(f"  subgraph cluster_group{gk} {{")
+        out.append("    graph " + _attrs(label=_label(gname, limit=40), style="rounded", color=_GROUP_LINE,
+                                         fontcolor="#333333", penwidth=1) + ";")
+        for k, members in trap_blocks:
+            if members and all(group_of.get(s) == gname for s in members):
+                out.extend(trap_cluster(k, members, "    "))
+        for i in drawn:
+            if group_of.get(i) == gname and i not in placed:
+                out.append("  " + node_line(i))
+                placed.add(i)
         out.append("  }")
+    for k, members in trap_blocks:
+        if not any(s in placed for s in members):
+            out.extend(trap_cluster(k, [s for s in members if s not in placed], "  "))
     for i in drawn:
-        if i not in in_clusters:
+        if i not in placed:
             out.append(node_line(i))
+    if rank_by_distance == "auto":
+        rank_by_distance = n_drawn > 20
+    level = _bfs_levels(ch.n, ch.start, edges, drawn_set) if rank_by_distance else {}
     for i, j, w in edges:
         p = float(ch.P[i, j])
-        width = 1.0 + 7.0 * math.sqrt(w / wmax)
-        kw = dict(penwidth=round(width, 2), label=f"{100 * p:.0f}% ({int(w):,})" if p < 0.995 else f"{int(w):,}")
+        width = 1.0 + (7.0 if n_drawn <= 20 else 3.5) * math.sqrt(w / wmax)
+        if has_counts:
+            text = f"{100 * p:.0f}% ({int(w):,})" if p < 0.995 else f"{int(w):,}"
+        else:
+            text = f"{100 * p:.0f}%"
+        kw = dict(penwidth=round(width, 2), label=text)
+        if i == ch.start:
+            kw["label"] = None
+            kw["tooltip"] = f"{text} of sessions start here"
         if roles[j] == "goal":
-            kw.update(color=_GOAL_LINE, fontcolor=_GOAL_LINE, style="solid")
+            kw.update(color=_GOAL_LINE, fontcolor=_GOAL_LINE, style="solid", label="★ " + text)
+            present.add("goal_edge")
         elif roles[j] == "end":
             kw.update(color=_END_EDGE, style="dashed", fontcolor="#555555")
+            present.add("end_edge")
+        if kw.get("label") and i in level and level.get(j) == level[i] and i != j:
+            # an edge within one column: dot places its label badly; an external label avoids the overlap
+            kw["xlabel"] = kw.pop("label")
         out.append(f"  n{i} -> n{j} " + _attrs(**kw) + ";")
-    out.extend(_legend())
+    if rank_by_distance:
+        by_level: dict[int, list[int]] = {}
+        for i, lv in level.items():
+            if roles[i] != "end":
+                by_level.setdefault(lv, []).append(i)
+        for lv in sorted(by_level):
+            members = " ".join(f"n{i};" for i in sorted(by_level[lv]))
+            out.append(f"  {{ rank=same; {members} }}")
+        if ch.end is not None and keep[ch.end]:
+            out.append(f"  {{ rank=max; n{ch.end}; }}")
+    out.extend(_legend(present))
+    out.append("}")
+    return Diagram(
+        dot="\n".join(out) + "\n", notes=tuple(notes), shown=tuple(drawn), pruned_edges=pruned_n,
+        pruned_share=pruned_w / total, hidden_states=hidden_states, hidden_share=hidden_w / total,
+        focus=ch.label(focus_idx) if focus_idx is not None else None,
+    )
+
+
+def _short(name: str, limit: int = 40) -> str:
+    return name if len(name) <= limit else name[: limit - 1] + "…"
+
+
+def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
+               min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
+               radius: int = 1) -> str:
+    """The diagram as DOT text (see :func:`build_diagram`)."""
+    return build_diagram(a, min_edge_share=min_edge_share, max_states=max_states, title=title,
+                         min_edge_prob=min_edge_prob, groups=groups, focus=focus, radius=radius).dot
+
+
+def _legend(present: set[str]) -> list[str]:
+    """A compact legend of what the diagram shows (only the kinds of node and edge that appear).
+
+    One node with a Graphviz HTML-like table (our own fixed text only, never a state name):
+    each row shows a sample outline or a line drawn with box-drawing glyphs, then its meaning.
+    """
+    rows = []
+    if "goal" in present:
+        rows.append(_cell_double("goal", _GOAL_LINE, _GOAL_FILL) + _desc("★ goal: double outline"))
+    if "terminal" in present:
+        rows.append(_cell("finished", border=2, fill=_TERM_FILL) + _desc("■ terminal: square corners, bold"))
+    if "dead" in present:
+        rows.append(_cell("dead end", style="dashed", fill=_DEAD_FILL) + _desc("⊘ dead end: dashed outline"))
+    if "sink" in present:
+        rows.append(_cell("no exit", style="dotted") + _desc("no observed exit: dotted outline"))
+    rows.append(_cell("state", style="rounded") + _desc("state, with its visits"))
+    if "end" in present:
+        rows.append(_cell("end", style="dashed") + _desc("end of a session"))
+    if "trap" in present:
+        rows.append(_cell("loop", style="dashed", border=2, color=_TRAP_LINE) + _desc("closed loop, no way out: dashed frame"))
+    if "group" in present:
+        rows.append(_cell("group", style="rounded", color=_GROUP_LINE) + _desc("group, or states that reach each other: thin frame"))
+    rows.append(_line("━━━▶", _EDGE) + _desc("probability (count); width = flow"))
+    if "goal_edge" in present:
+        rows.append(_line("━━━▶", _GOAL_LINE) + _desc("★ into a goal: solid green"))
+    if "end_edge" in present:
+        rows.append(_line("╍╍╍▶", _END_EDGE) + _desc("into the end: dashed grey"))
+    return [_legend_node(rows)]
+
+
+def _legend_node(rows: list[str]) -> str:
+    body = "".join(f"<TR>{r}</TR>" for r in rows)
+    table = ('<TABLE BORDER="1" STYLE="rounded" COLOR="#bbbbbb" CELLBORDER="0" CELLSPACING="3" CELLPADDING="2">'
+             '<TR><TD COLSPAN="2"><B>legend</B></TD></TR>' + body + "</TABLE>")
+    return f"  lg_legend [shape=plaintext, fontname=\"Helvetica\", fontsize=9, margin=0, label=<{table}>];"
+
+
+def _cell(text: str, style: str | None = None, border: int = 1, fill: str | None = None,
+          color: str = "#000000") -> str:
+    st = f' STYLE="{style}"' if style else ""
+    bg = f' BGCOLOR="{fill}"' if fill else ""
+    return f'<TD BORDER="{border}"{st}{bg} COLOR="{color}">{text}</TD>'
+
+
+def _cell_double(text: str, color: str, fill: str) -> str:
+    return (f'<TD><TABLE BORDER="1" STYLE="rounded" COLOR="{color}" CELLBORDER="1" CELLSPACING="2" '
+            f'BGCOLOR="{fill}"><TR><TD STYLE="rounded" COLOR="{color}"><B>{text}</B></TD></TR></TABLE></TD>')
+
+
+def _line(glyphs: str, color: str) -> str:
+    return f'<TD><FONT COLOR="{color}">{glyphs}</FONT></TD>'
+
+
+def _desc(text: str) -> str:
+    return f'<TD ALIGN="LEFT">{text}</TD>'
+
+
+# -- comparison diagram ---------------------------------------------------------------------
+def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) -> str:
+    """A diagram of a :class:`~tracechain.analyze.compare.Comparison`.
+
+    Every state of either side is drawn once; an edge is drawn for every transition seen
+    on either side. Edges in a state whose exits changed significantly (after the
+    Benjamini–Hochberg step) are styled by the direction of the cell's adjusted residual;
+    transitions of one side only are dotted; the rest are muted. Edge labels give the
+    transition probability on each side, ``A → B``. Edges carrying less than
+    ``min_edge_share`` of all transitions on both sides are not drawn (and counted in the
+    caption) unless they are styled as significant.
+    """
+    labels = cmp.labels
+    n = len(cmp.states)
+    out = ["digraph tracechain_diff {"]
+    cap = []
+    if title:
+        cap.append(title)
+    cap.append(f"{cmp.names[0]} → {cmp.names[1]}: exits compared per state ({cmp.test_name}), "
+               f"Benjamini–Hochberg at q = {cmp.fdr:g}")
+    edges = cmp.edges
+    tot_a = sum(e.count_a for e in edges) or 1
+    tot_b = sum(e.count_b for e in edges) or 1
+    shown_edges = []
+    skipped = 0
+    for e in edges:
+        if e.change in ("up", "down"):
+            shown_edges.append(e)
+        elif max(e.count_a / tot_a, e.count_b / tot_b) >= min_edge_share:
+            shown_edges.append(e)
+        else:
+            skipped += 1
+    if skipped:
+        cap.append(f"{skipped} rare transition{'s' if skipped != 1 else ''} not drawn "
+                   f"(under {100 * min_edge_share:g}% of all transitions on both sides)")
+    out.append("  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t",
+                                   label=_label(*cap, limit=200), newrank="true", ranksep=0.55) + ";")
+    out.append("  node " + _attrs(fontname="Helvetica", fontsize=10, shape="box", style="rounded",
+                                  color="#666666") + ";")
+    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=9, color=_MUTED, fontcolor="#777777",
+                                  arrowsize=0.7) + ";")
+    tests = {t.state: t for t in cmp.tests}
+    present = set()
+    for i in range(n):
+        role = cmp.roles[i]
+        name = labels[i]
+        if role == "start":
+            out.append(f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true",
+                                           style="solid") + ";")
+            continue
+        if role == "end":
+            out.append(f"  n{i} " + _attrs(shape="box", style="dashed", label="end") + ";")
+            continue
+        kw: dict = {}
+        lines = [name]
+        if role == "goal":
+            lines.append("★ goal")
+            kw.update(peripheries=2, style="rounded,filled,bold", fillcolor=_GOAL_FILL, color=_GOAL_LINE)
+        elif role == "terminal":
+            lines.append("■ finished")
+            kw.update(shape="box", style="filled,bold", fillcolor=_TERM_FILL)
+        va, vb = cmp.visits_a[i], cmp.visits_b[i]
+        if va == 0 and vb > 0:
+            lines.append("◆ new state")
+            kw.update(style=(kw.get("style", "rounded") + ",dotted"))
+            present.add("new_state")
+        elif vb == 0 and va > 0:
+            lines.append("◇ gone")
+            kw.update(style=(kw.get("style", "rounded") + ",dotted"))
+            present.add("gone_state")
+        t = tests.get(i)
+        if t is not None and t.significant:
+            lines.append(f"Δ exits changed (q = {t.q_value:.2g})")
+            kw.update(penwidth=2.5, color="#000000")
+            present.add("changed")
+        lines.append(f"{va:,} → {vb:,} visits")
+        out.append(f"  n{i} " + _attrs(label=_label(*lines), **kw) + ";")
+    for e in shown_edges:
+        pa_, pb_ = e.p_a, e.p_b
+        text = f"{_p(pa_)} → {_p(pb_)}"
+        kw: dict = {"label": text}
+        if e.change == "up":
+            kw.update(color=_UP, fontcolor=_UP, style="solid", penwidth=3.5, label="▲ " + text)
+            present.add("up")
+        elif e.change == "down":
+            kw.update(color=_DOWN, fontcolor=_DOWN, style="dashed", penwidth=3.5, label="▼ " + text)
+            present.add("down")
+        elif e.change == "new":
+            kw.update(style="dotted", penwidth=2, color="#333333", fontcolor="#333333", label="◆ " + text)
+            present.add("new")
+        elif e.change == "gone":
+            kw.update(style="dotted", penwidth=1.5, label="◇ " + text)
+            present.add("gone")
+        else:
+            kw.update(penwidth=1)
+        out.append(f"  n{e.source} -> n{e.target} " + _attrs(**kw) + ";")
+    # columns by distance from the start over the union of edges, for a big diagram (as in build_diagram)
+    start = next((i for i in range(n) if cmp.roles[i] == "start"), None)
+    big = sum(1 for r in cmp.roles if r not in ("start", "end")) > 20
+    level = _bfs_levels(n, start, [(e.source, e.target, 1.0) for e in shown_edges], set(range(n))) if big else {}
+    by_level: dict[int, list[int]] = {}
+    for i, lv in level.items():
+        if cmp.roles[i] != "end":
+            by_level.setdefault(lv, []).append(i)
+    for lv in sorted(by_level):
+        out.append("  { rank=same; " + " ".join(f"n{i};" for i in sorted(by_level[lv])) + " }")
+    end = next((i for i in range(n) if cmp.roles[i] == "end"), None)
+    if end is not None and big:
+        out.append(f"  {{ rank=max; n{end}; }}")
+    out.extend(_diff_legend(present))
     out.append("}")
     return "\n".join(out) + "\n"
 
 
-def _legend() -> list[str]:
-    return [
-        "  subgraph cluster_legend {",
-        "    graph " + _attrs(label="legend", style="rounded", color="#bbbbbb", fontsize=10) + ";",
-        "    node " + _attrs(fontsize=9, width=0.3, height=0.25) + ";",
-        "    lg_goal " + _attrs(label=_label("goal", "★ double outline"), peripheries=2,
-                                style="rounded,filled,bold", fillcolor=_GOAL_FILL, color=_GOAL_LINE) + ";",
-        "    lg_dead " + _attrs(label=_label("dead end", "⊘ dashed outline"), style="rounded,filled,dashed",
-                                fillcolor=_DEAD_FILL) + ";",
-        "    lg_state " + _attrs(label=_label("state", "visits")) + ";",
-        "    lg_end " + _attrs(shape="box", style="dashed", label="end") + ";",
-        "    lg_a " + _attrs(shape="point", width=0.05) + ";",
-        "    lg_b " + _attrs(shape="point", width=0.05) + ";",
-        "    lg_a -> lg_b " + _attrs(label="probability (count); width = flow", penwidth=3) + ";",
-        "    lg_goal -> lg_dead -> lg_state -> lg_end " + _attrs(style="invis") + ";",
-        "  }",
-    ]
+def _p(x: float | None) -> str:
+    return "–" if x is None else f"{100 * x:.0f}%"
+
+
+def _diff_legend(present: set[str]) -> list[str]:
+    rows = [_line("───▶", _MUTED) + _desc("P(A) → P(B), no significant change")]
+    if "up" in present:
+        rows.append(_line("━━━▶", _UP) + _desc("▲ significant increase: thick solid blue"))
+    if "down" in present:
+        rows.append(_line("╍╍╍▶", _DOWN) + _desc("▼ significant decrease: thick dashed vermillion"))
+    if "new" in present:
+        rows.append(_line("┈┈┈▶", "#333333") + _desc("◆ seen only in B: dotted dark"))
+    if "gone" in present:
+        rows.append(_line("┈┈┈▶", _MUTED) + _desc("◇ seen only in A: dotted grey"))
+    if "changed" in present:
+        rows.append(_cell("state", style="rounded", border=3) + _desc("Δ exits changed: thick outline"))
+    if "new_state" in present or "gone_state" in present:
+        rows.append(_cell("state", style="dotted") + _desc("◆ new / ◇ gone state: dotted outline"))
+    return [_legend_node(rows)]
 
 
 def render_image(dot_text: str, fmt: str) -> bytes:

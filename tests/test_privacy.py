@@ -1,0 +1,103 @@
+"""Pseudonymised session keys: the keyed hash is HMAC-SHA256 (checked against a published test
+vector), stable under one salt and different under another; reports show pseudonyms unless raw
+keys are asked for, say which, state the salt, and carry the data-protection caution.
+"""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+
+from tracechain.privacy import DATA_PROTECTION_CAUTION, PSEUDONYM_DIGITS, Pseudonymizer
+from tracechain.report.commands import main as commands_main
+
+from conftest import write_jsonl
+
+
+def test_hmac_sha256_test_vector():
+    # RFC 4231, test case 2 (from memory): HMAC-SHA-256 with key "Jefe" of
+    # "what do ya want for nothing?"
+    expected = "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
+    p = Pseudonymizer(salt="Jefe")
+    assert p("what do ya want for nothing?") == "k:" + expected[:PSEUDONYM_DIGITS]
+    assert PSEUDONYM_DIGITS == 16
+
+
+def test_stable_per_salt_and_different_across_salts():
+    a1, a2, b = Pseudonymizer(salt="s1"), Pseudonymizer(salt="s1"), Pseudonymizer(salt="s2")
+    keys = [f"visitor-{k}" for k in range(500)] + ["", "ü", "a\nb"]
+    pa = [a1(k) for k in keys]
+    assert pa == [a2(k) for k in keys]
+    assert len(set(pa)) == len(keys)  # no collisions among these keys
+    assert all(x != y for x, y in zip(pa, (b(k) for k in keys)))
+    assert all(re.fullmatch(r"k:[0-9a-f]{16}", x) for x in pa)
+    assert not any(k and k in x for k, x in zip(keys, pa))
+
+
+def test_generated_salt_is_random_and_stated():
+    p, q = Pseudonymizer(), Pseudonymizer()
+    assert p.generated and q.generated
+    assert re.fullmatch(r"[0-9a-f]{32}", p.salt) and p.salt != q.salt
+    assert p.salt in p.statement() and "secrets" in p.statement()
+    given = Pseudonymizer(salt="team-salt")
+    assert not given.generated and "--salt" in given.statement() and "team-salt" in given.statement()
+
+
+def test_raw_mode_passes_keys_and_says_so():
+    r = Pseudonymizer(raw=True)
+    assert r("alice@example.org") == "alice@example.org"
+    assert r.mode == "raw" and "--raw-keys" in r.statement()
+
+
+@pytest.fixture
+def personal_log(tmp_path):
+    # invented visits keyed by made-up e-mail addresses; "Returns" is a dead end, so the report
+    # shows an example session for it
+    rows = []
+    t = 1_700_000_000
+    for k in range(6):
+        key = f"person{k}@example.org"
+        events = ["Home", "Item", "Paid"] if k % 2 else ["Home", "Returns"]
+        for j, ev in enumerate(events):
+            rows.append({"session_id": key, "timestamp": t + 100 * k + j, "event": ev})
+    return write_jsonl(tmp_path / "visits.jsonl", rows)
+
+
+def _run(*argv) -> int:
+    return commands_main([str(a) for a in argv])
+
+
+def test_reports_pseudonymise_keys_by_default(personal_log, tmp_path, capsys):
+    html, md, csv = tmp_path / "r.html", tmp_path / "r.md", tmp_path / "r.csv"
+    assert _run("report", personal_log, "--goal", "Paid", "--html", html, "--markdown", md, "--csv", csv,
+                "--salt", "fixed-salt", "--no-diagram") == 0
+    capsys.readouterr()
+    p = Pseudonymizer(salt="fixed-salt")
+    for path in (html, md, csv):
+        text = path.read_text(encoding="utf-8")
+        assert "@example" not in text and "person0" not in text, path
+    h = html.read_text(encoding="utf-8")
+    # the dead end's example session is the first visit that ended at Returns: person0
+    assert p("person0@example.org") in h
+    assert "pseudonymised" in h and "fixed-salt" in h
+    assert DATA_PROTECTION_CAUTION.split(",")[0] in h
+    m = md.read_text(encoding="utf-8")
+    assert "pseudonymised" in m and "data\\-protection" not in m  # '-' is not escaped mid-line
+    assert "data-protection law" in m
+
+
+def test_raw_keys_on_request(personal_log, tmp_path, capsys):
+    html = tmp_path / "r.html"
+    assert _run("report", personal_log, "--goal", "Paid", "--html", html, "--raw-keys", "--no-diagram") == 0
+    capsys.readouterr()
+    h = html.read_text(encoding="utf-8")
+    assert "person0@example.org" in h
+    assert "Session keys: raw" in h and "--raw-keys" in h
+
+
+def test_salt_and_raw_keys_exclude_each_other(personal_log, tmp_path, capsys):
+    with pytest.raises(SystemExit) as err:
+        _run("report", personal_log, "--html", tmp_path / "r.html", "--raw-keys", "--salt", "x")
+    assert err.value.code == 2
+    assert "not allowed with" in capsys.readouterr().err

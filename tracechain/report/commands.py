@@ -1,0 +1,392 @@
+"""The ``report`` and ``compare`` commands.
+
+:func:`register` adds both to the command line's sub-parsers (``tracechain.cli`` calls it);
+the handlers reuse the input options and chain building of :mod:`tracechain.cli`, imported
+lazily to avoid an import cycle. :func:`main` runs a command line with these commands
+registered, with the same error handling as ``tracechain.cli.main`` (useful before the
+commands are wired into it, and in tests).
+
+``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE]``
+    the analysis as a self-contained HTML report, a Markdown summary, per-state CSV.
+
+``tracechain compare A B`` or ``tracechain compare PATH --split-at TIME`` or
+``tracechain compare PATH --split-field NAME --split-values X,Y``
+    per-state tests of the exits, Benjamini–Hochberg, the change in conversion and expected
+    steps with intervals; a text summary, and ``--html``/``--markdown``/``--svg``/``--dot``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Sequence
+
+__all__ = ["register", "main", "cmd_report", "cmd_compare"]
+
+
+def _subparsers_action(parser: argparse.ArgumentParser):
+    for action in parser._actions:  # argparse keeps the sub-parsers action among the actions
+        if isinstance(action, argparse._SubParsersAction):
+            return action
+    raise RuntimeError("the parser has no sub-commands")
+
+
+def _privacy_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("session keys (personal data)")
+    k = g.add_mutually_exclusive_group()
+    k.add_argument("--salt", metavar="TEXT",
+                   help="salt of the keyed hash that pseudonymises session keys (default: a new random salt, "
+                        "stated in the report)")
+    k.add_argument("--raw-keys", action="store_true", help="show session keys as they are (not pseudonymised)")
+
+
+def _diagram_options(p: argparse.ArgumentParser) -> None:
+    from ..cli import _share
+
+    d = p.add_argument_group("diagram")
+    d.add_argument("--min-edge-share", type=_share, default=0.005, metavar="SHARE",
+                   help="hide edges carrying less than this share of transitions (default 0.005 = 0.5%%)")
+    d.add_argument("--max-states", type=int, default=60, metavar="N",
+                   help="draw at most N states: goals, then the states on the most likely paths to a goal (default 60)")
+    d.add_argument("--focus", metavar="STATE", help="draw only the neighbourhood of this state")
+    d.add_argument("--focus-radius", type=int, choices=(1, 2), default=1, metavar="R",
+                   help="how many steps around --focus (1 or 2; default 1)")
+    d.add_argument("--no-diagram", action="store_true", help="leave the diagram out of the report")
+
+
+def register(subparsers) -> None:
+    """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
+    from ..cli import _add_input_options
+
+    r = subparsers.add_parser(
+        "report", help="write an HTML report and a Markdown summary of the analysis",
+        description="Analyse event logs and write a self-contained HTML report (no network, no script), a "
+                    "Markdown summary for a review document and per-state CSV.")
+    _add_input_options(r)
+    o = r.add_argument_group("output")
+    o.add_argument("--html", metavar="FILE", help="write the HTML report")
+    o.add_argument("--markdown", "--md", dest="markdown", metavar="FILE", help="write the Markdown summary")
+    o.add_argument("--csv", metavar="FILE", help="write per-state figures as CSV")
+    o.add_argument("--svg", metavar="FILE", help="also write the diagram as SVG")
+    o.add_argument("--title", metavar="TEXT", help="title of the report")
+    o.add_argument("--top", type=int, default=15, metavar="N", help="rows in the loss tables (default 15)")
+    o.add_argument("--seed", type=int, default=0, help="seed of the interval draws (default 0)")
+    o.add_argument("--order-test", action="store_true",
+                   help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
+                        "memory) and state the result among the assumptions")
+    _diagram_options(r)
+    _privacy_options(r)
+    r.set_defaults(handler=cmd_report)
+
+    c = subparsers.add_parser(
+        "compare", help="compare two sets of sessions: which states' exits changed",
+        description="Compare two inputs (two paths), or one input split at a time or by a field: per-state tests "
+                    "of the exits with Benjamini-Hochberg, and the change in conversion and expected steps with "
+                    "intervals.")
+    _add_input_options(c)
+    s = c.add_argument_group("what to compare")
+    s.add_argument("--split-at", metavar="ISO_TIME", help="one input: events before this time are A, the rest B")
+    s.add_argument("--split-field", metavar="NAME", help="one input: sessions by the value of this field")
+    s.add_argument("--split-values", metavar="X,Y", help="the two values of --split-field (A, then B)")
+    s.add_argument("--names", metavar="A,B", help="names of the two sides in the output (default: from the input)")
+    t = c.add_argument_group("statistics")
+    t.add_argument("--fdr", type=float, default=0.05, metavar="Q", help="false discovery rate (default 0.05)")
+    t.add_argument("--min-expected", type=float, default=5.0, metavar="N",
+                   help="pool successors with an expected count below N (default 5)")
+    t.add_argument("--level", type=float, default=0.95, help="interval level (default 0.95)")
+    t.add_argument("--draws", type=int, default=1000, help="Dirichlet draws per side (default 1000)")
+    t.add_argument("--seed", type=int, default=0, help="seed of the draws (default 0)")
+    o = c.add_argument_group("output")
+    o.add_argument("--html", metavar="FILE", help="write the comparison as an HTML report")
+    o.add_argument("--markdown", "--md", dest="markdown", metavar="FILE", help="write it as Markdown")
+    o.add_argument("--dot", metavar="FILE", help="write the comparison diagram as Graphviz DOT")
+    o.add_argument("--svg", metavar="FILE", help="write the comparison diagram as SVG")
+    o.add_argument("--title", metavar="TEXT", help="title of the report")
+    o.add_argument("--min-edge-share", type=float, default=0.0, metavar="SHARE",
+                   help="leave out unchanged transitions under this share on both sides (default 0: draw all)")
+    o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
+    _privacy_options(c)
+    c.set_defaults(handler=cmd_compare)
+
+
+# -- report ---------------------------------------------------------------------------------
+def _pseudonymizer(args):
+    from ..privacy import Pseudonymizer
+
+    return Pseudonymizer(salt=args.salt, raw=args.raw_keys)
+
+
+def _diagram(result, args, groups):
+    """(Diagram, svg bytes or None, why missing)"""
+    from ..errors import RenderError
+    from .dot import build_diagram, render_image
+
+    d = build_diagram(result, min_edge_share=args.min_edge_share, max_states=args.max_states, groups=groups,
+                      focus=args.focus, radius=args.focus_radius)
+    try:
+        return d, render_image(d.dot, "svg"), None
+    except RenderError as err:
+        return d, None, str(err)
+
+
+def _order_test(args):
+    """The order table of the input's sessions (orders 0-2), or None with a warning."""
+    from ..analyze.order import order_table, session_sequences
+    from ..cli import shape_from_args
+    from ..errors import TracechainError
+    from ..ingest.base import ReadOptions
+    from ..pipeline import read_events
+
+    shape, fields, goals, _ = shape_from_args(args)
+    try:
+        sessions = session_sequences(read_events(args.paths, format=args.format,
+                                                 options=ReadOptions(fields=fields, strict=args.strict)), shape)
+        return order_table(sessions, 2, goals=tuple(goals)) if len(sessions) else None
+    except TracechainError as err:
+        print(f"tracechain: warning: no order test: {err}", file=sys.stderr)
+        return None
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from ..analyze.summary import analyze
+    from ..cli import EXIT_OK, build_chain
+    from ..errors import UsageError
+    from ..shape.mapping import load_mapping
+    from .csv_report import render_csv
+    from .html import build_report, render_html
+    from .markdown import render_markdown
+    from .writer import write_output
+
+    if not (args.html or args.markdown or args.csv or args.svg):
+        raise UsageError("name at least one output: --html FILE, --markdown FILE, --csv FILE or --svg FILE")
+    if args.top < 1:
+        raise UsageError("--top must be at least 1")
+    if args.max_states < 1:
+        raise UsageError("--max-states must be at least 1")
+    outs = [x for x in (args.html, args.markdown, args.csv, args.svg) if x]
+    if outs.count("-") > 1:
+        raise UsageError("only one output can go to standard output ('-')")
+    chain, report, settings = build_chain(args)
+    result = analyze(chain, report, top=max(args.top, 10), settings=settings)
+    groups = (load_mapping(args.mapping).groups or None) if args.mapping else None
+    pseudo = _pseudonymizer(args)
+    diagram = svg = missing = None
+    if not args.no_diagram or args.svg:
+        diagram, svg, missing = _diagram(result, args, groups)
+        if svg is None and args.svg:
+            from ..errors import RenderError
+
+            raise RenderError(missing)
+        if missing:
+            print(f"tracechain: warning: no diagram in the report: {missing}", file=sys.stderr)
+    order_table = _order_test(args) if args.order_test and (args.html or args.markdown) else None
+    written = []
+    if args.svg:
+        written.append(write_output(args.svg, svg))
+    if args.html or args.markdown:
+        doc = build_report(result, title=args.title, svg=None if args.no_diagram else svg,
+                           diagram=None if args.no_diagram else diagram,
+                           diagram_missing=None if args.no_diagram else missing, pseudonymizer=pseudo,
+                           top=args.top, seed=args.seed, order_test=order_table)
+        if args.html:
+            written.append(write_output(args.html, render_html(doc)))
+        if args.markdown:
+            ref = args.html or args.svg
+            written.append(write_output(args.markdown, render_markdown(doc, figure_ref=ref if ref != "-" else None)))
+    if args.csv:
+        written.append(write_output(args.csv, render_csv(result)))
+    for w in written:
+        if w != "-":
+            print(f"wrote {w}", file=sys.stderr)
+    return EXIT_OK
+
+
+# -- compare --------------------------------------------------------------------------------
+def _side_names(args, default: tuple[str, str]) -> tuple[str, str]:
+    from ..errors import UsageError
+
+    if not args.names:
+        return default
+    parts = [p.strip() for p in args.names.split(",")]
+    if len(parts) != 2 or not all(parts) or parts[0] == parts[1]:
+        raise UsageError("--names needs two different names, e.g. --names before,after")
+    return parts[0], parts[1]
+
+
+def _counts_for_compare(args):
+    """(counts_a, counts_b, report_a, report_b, default names, how)"""
+    import os
+
+    from ..analyze.compare import count_split_at, count_split_by_field, parse_time
+    from ..cli import shape_from_args
+    from ..errors import UsageError
+    from ..pipeline import count_sources
+
+    shape, fields, goals, terminal = shape_from_args(args)
+    split = args.split_at is not None or args.split_field is not None
+    if args.split_at is not None and args.split_field is not None:
+        raise UsageError("use either --split-at or --split-field, not both")
+    if args.split_values is not None and args.split_field is None:
+        raise UsageError("--split-values goes with --split-field")
+    kw = dict(format=args.format, fields=fields, shape=shape, strict=args.strict)
+    if not split:
+        if len(args.paths) != 2:
+            raise UsageError(f"compare needs two inputs (A B), or one with --split-at or --split-field; "
+                             f"got {len(args.paths)}")
+        a, ra = count_sources([args.paths[0]], **kw)
+        b, rb = count_sources([args.paths[1]], **kw)
+        names = tuple(os.path.basename(p.rstrip("/")) or p for p in args.paths)
+        if names[0] == names[1]:
+            names = ("A", "B")
+        return a, b, ra, rb, names, goals, terminal, f"two inputs: {args.paths[0]} (A) and {args.paths[1]} (B)"
+    if args.split_at is not None:
+        at = parse_time(args.split_at)
+        a, b, rep = count_split_at(args.paths, at, **kw)
+        return a, b, rep, rep, ("before", "after"), goals, terminal, f"one input split at {args.split_at}"
+    if not args.split_values:
+        raise UsageError("--split-field needs --split-values X,Y")
+    vals = tuple(v.strip() for v in args.split_values.split(","))
+    if len(vals) != 2 or not all(vals):
+        raise UsageError("--split-values needs two values, e.g. --split-values mobile,desktop")
+    a, b, rep = count_split_by_field(args.paths, args.split_field, vals, **kw)
+    return a, b, rep, rep, vals, goals, terminal, f"one input split by {args.split_field}"
+
+
+def _side_analysis(counts, report, goals, terminal, settings):
+    from ..analyze.summary import analyze
+    from ..chain import Chain
+
+    if counts.n_states == 0:
+        return None
+    known = set(counts.states)
+    ch = Chain.from_counts(counts, goals=[g for g in goals if g in known],
+                           terminal=[t for t in terminal if t in known])
+    return analyze(ch, report, settings=settings)
+
+
+def _compare_text(cmp) -> str:
+    from .text import safe_text
+
+    A, B = (safe_text(x, 30) for x in cmp.names)
+    lines = [f"tracechain compare: {A} ({cmp.sessions_a:,} sessions) vs {B} ({cmp.sessions_b:,} sessions)"]
+    lvl = f"{100 * cmp.level:.0f}%"
+    for fc, pct in ((cmp.conversion, True), (cmp.steps, False)):
+        if fc is None:
+            continue
+        f = (lambda v: "n/a" if v is None else f"{100 * v:.1f}%") if pct else (lambda v: "inf" if v is None else f"{v:.2f}")
+        d = (lambda v: "n/a" if v is None else f"{100 * v:+.1f} pts") if pct else (lambda v: "n/a" if v is None else f"{v:+.2f}")
+        lines.append(f"  {fc.name}: {A} {f(fc.a)} [{f(fc.a_low)}, {f(fc.a_high)}], {B} {f(fc.b)} "
+                     f"[{f(fc.b_low)}, {f(fc.b_high)}]; change {d(fc.diff)} [{d(fc.diff_low)}, {d(fc.diff_high)}] "
+                     f"({lvl})")
+    sig = cmp.significant
+    lines.append(f"  states with changed exits (Benjamini-Hochberg q <= {cmp.fdr:g}): {len(sig)} of {len(cmp.tested)} tested")
+    for t in sig[:15]:
+        lines.append(f"    {safe_text(t.label, 40)}: X2 = {t.statistic:.1f}, df {t.df}, p = {t.p_value:.2g}, "
+                     f"q = {t.q_value:.2g}, exits moved {100 * (t.tvd or 0):.1f}%")
+    for kind, idx in (("appeared", cmp.appeared_states), ("vanished", cmp.vanished_states)):
+        if idx:
+            lines.append(f"  states that {kind}: " + ", ".join(safe_text(cmp.labels[i], 30) for i in idx[:10])
+                         + (" ..." if len(idx) > 10 else ""))
+    for n in cmp.notes:
+        lines.append(f"note: {n}")
+    return "\n".join(lines) + "\n"
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from ..analyze.compare import compare_counts
+    from ..cli import EXIT_OK
+    from ..errors import RenderError, UsageError
+    from .dot import render_diff_dot, render_image
+    from .html import build_compare_report, render_html
+    from .markdown import render_markdown
+    from .writer import write_output
+
+    if not 0 < args.fdr < 1:
+        raise UsageError("--fdr must be between 0 and 1")
+    if not 0 < args.level < 1:
+        raise UsageError("--level must be between 0 and 1")
+    if args.draws < 1:
+        raise UsageError("--draws must be at least 1")
+    a, b, ra, rb, names, goals, terminal, how = _counts_for_compare(args)
+    names = _side_names(args, tuple(names))
+    settings = {"goals": goals, "terminal": terminal, "truncate_at_goal": not args.keep_after_goal,
+                "gap_seconds": args.gap, "order": args.order, "mapping": args.mapping, "compare": how}
+    cmp = compare_counts(a, b, goals, terminal, names=names, fdr=args.fdr, min_expected=args.min_expected,
+                         level=args.level, draws=args.draws, seed=args.seed)
+    pseudo = _pseudonymizer(args)
+    written = []
+    dot_text = None
+    svg = missing = None
+    if args.dot or args.svg or args.html or args.markdown:
+        dot_text = render_diff_dot(cmp, title=args.title, min_edge_share=args.min_edge_share)
+        if args.dot:
+            written.append(write_output(args.dot, dot_text))
+        try:
+            svg = render_image(dot_text, "svg")
+        except RenderError as err:
+            if args.svg:
+                raise
+            missing = str(err)
+        if args.svg:
+            written.append(write_output(args.svg, svg))
+    if args.html or args.markdown:
+        sides = (_side_analysis(a, ra, goals, terminal, settings), _side_analysis(b, rb, goals, terminal, settings))
+        doc = build_compare_report(cmp, sides, diff_svg=svg, diff_missing=missing, pseudonymizer=pseudo,
+                                   title=args.title)
+        if args.html:
+            written.append(write_output(args.html, render_html(doc)))
+        if args.markdown:
+            ref = args.html or args.svg
+            written.append(write_output(args.markdown, render_markdown(doc, figure_ref=ref if ref != "-" else None)))
+    if not args.quiet and "-" not in (args.html, args.markdown, args.dot, args.svg):
+        sys.stdout.write(_compare_text(cmp))
+        sys.stdout.flush()
+    for w in written:
+        if w != "-":
+            print(f"wrote {w}", file=sys.stderr)
+    return EXIT_OK
+
+
+# -- running --------------------------------------------------------------------------------
+def build_parser() -> argparse.ArgumentParser:
+    """``tracechain.cli.build_parser()`` with these commands registered (once)."""
+    from ..cli import build_parser as base
+
+    parser = base()
+    sub = _subparsers_action(parser)
+    if "report" not in sub.choices:
+        register(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Like ``tracechain.cli.main``, with ``report`` and ``compare`` available."""
+    import warnings
+
+    from ..cli import EXIT_ERROR, EXIT_INTERRUPTED, EXIT_OK
+    from ..errors import TracechainError
+    from ..ingest.sources import cleanup_spooled
+
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "handler", None):
+        parser.print_help(sys.stderr)
+        return EXIT_ERROR
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            return args.handler(args)
+    except TracechainError as err:
+        print(f"tracechain: error: {err}", file=sys.stderr)
+        return err.exit_status
+    except KeyboardInterrupt:
+        print("tracechain: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        return EXIT_OK
+    finally:
+        cleanup_spooled()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,62 @@
+"""Per-state figures as CSV, safe to open in a spreadsheet.
+
+One row per state of the data (plus the start): role, visits, sessions lost, whether it is a
+dead end, sessions still open, the probability of reaching each goal, expected steps (empty
+when infinite or undefined), and the mean time to the next event in seconds.
+
+State names are untrusted. Written with :mod:`csv` (RFC 4180 quoting: a cell with a comma,
+quote or line break is quoted, quotes doubled), and every text cell that begins with
+``=``, ``+``, ``-``, ``@``, a tab or a carriage return gets a leading apostrophe, so a
+spreadsheet shows it as text instead of running it as a formula (OWASP, "CSV Injection";
+from memory). Numbers are written by us and never start with such a character except a
+minus sign, and no figure here is negative.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+
+from ..analyze.summary import Analysis
+from .html import _dwell
+
+__all__ = ["render_csv", "csv_cell"]
+
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def csv_cell(text) -> str:
+    """A text cell neutralised against formula injection."""
+    s = str(text)
+    return "'" + s if s.startswith(_FORMULA_START) else s
+
+
+def _f(x, digits: int = 6) -> str:
+    return "" if x is None else f"{x:.{digits}g}"
+
+
+def render_csv(a: Analysis) -> str:
+    ch = a.chain
+    goals = a.goal_labels
+    dead = {d.state for d in a.dead_ends}
+    dwell = _dwell(a)
+    opened = {}
+    if ch.counts is not None:
+        off = 1 if ch.start is not None else 0
+        opened = {k + off: int(v) for k, v in enumerate(ch.counts.open) if v}
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\r\n")
+    header = ["state", "role", "visits", "sessions_lost", "dead_end", "still_open"]
+    header += [f"p_reach:{g}" for g in goals]
+    header += ["p_any_goal", "expected_steps", "steps_sd", "mean_seconds_to_next_event"]
+    w.writerow([csv_cell(h) for h in header])
+    for r in a.state_rows():
+        if r.role == "end":
+            continue
+        d = dwell.get(r.index)
+        row = [csv_cell(r.state), r.role, str(r.visits), str(r.sessions_lost), "yes" if r.index in dead else "no",
+               str(opened.get(r.index, 0))]
+        row += [_f(r.p_goal.get(g)) for g in goals]
+        row += [_f(r.p_any_goal), _f(r.steps), _f(r.steps_sd), _f(d[0]) if d else ""]
+        w.writerow(row)
+    return buf.getvalue()

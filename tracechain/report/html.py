@@ -731,7 +731,7 @@ def _block_html(b) -> str:
         if b.svg is None:
             return (f'<figure><div class="missing">No diagram: {_e(b.missing or "not drawn")}</div>'
                     f"<figcaption>{cap}</figcaption></figure>")
-        mode = "fit" if _svg_width_px(b.svg) <= 1800 else "full"
+        mode = "fit" if _svg_width_px(b.svg) <= 3200 else "full"
         other = "full size (scroll to move around)" if mode == "fit" else "fit to the page width"
         return (f'<input type="checkbox" id="diagram-toggle"> <label class="switch" for="diagram-toggle">show the '
                 f'diagram {other}</label>'

@@ -17,6 +17,7 @@ from ..chain import Chain
 from ..events import ParseReport
 from .absorbing import AbsorbingResult, absorbing_analysis
 from .classes import ClassesResult, communicating_classes
+from .stuck import OpenCases, open_cases
 from .dead_ends import DeadEnd, ExitState, dead_ends, exit_states, goal_unreachable
 
 __all__ = ["Analysis", "StateRow", "GoalConversion", "analyze"]
@@ -71,6 +72,7 @@ class Analysis:
     report: ParseReport | None = None
     notes: tuple[str, ...] = ()
     settings: dict = field(default_factory=dict)
+    open_cases: OpenCases | None = None
 
     # -- headline figures -------------------------------------------------------------
     @property
@@ -181,8 +183,14 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
     sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink"]
     if sinks:
         notes.append(f"{len(sinks)} state(s) have no observed exit and are treated as absorbing: {', '.join(sinks[:5])}")
+    oc = open_cases(chain.counts) if chain.counts is not None else None
+    if oc is not None and oc.open_total:
+        notes.append(
+            f"{oc.open_total} open case(s) are counted as stuck in their last state, not as exits"
+            + (f"; {oc.in_flight} recent unfinished case(s) are in flight (neither)" if oc.in_flight else "")
+        )
     return Analysis(
         chain=chain, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
         exits=exit_states(chain, top), unreachable=goal_unreachable(chain), report=report,
-        notes=tuple(notes), settings=dict(settings or {}),
+        notes=tuple(notes), settings=dict(settings or {}), open_cases=oc,
     )

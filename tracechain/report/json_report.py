@@ -8,6 +8,8 @@ The schema is ``tracechain/schemas/analysis-1.schema.json`` (JSON Schema draft
 from __future__ import annotations
 
 import json
+import math
+from datetime import datetime, timezone
 from importlib import resources
 from typing import Any
 
@@ -73,6 +75,7 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
             }
             for r in a.state_rows()
         ],
+        "open_cases": _open_cases(a),
         "notes": list(a.notes),
     }
     if extended is not None:
@@ -80,6 +83,27 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
 
         doc["extended"] = extended_document(extended)
     return doc
+
+
+def _open_cases(a: Analysis) -> dict[str, Any] | None:
+    oc = a.open_cases
+    if oc is None:
+        return None
+    return {
+        "as_of": _iso(oc.as_of), "stale_after_s": oc.stale_after_s, "terminal": list(oc.terminal),
+        "open": oc.open_total, "in_flight": oc.in_flight, "finished": oc.finished, "share_open": oc.share_open,
+        "states": [
+            {"state": r.state, "open_cases": r.open_cases, "median_age_s": r.median_age_s,
+             "p90_age_s": r.p90_age_s, "mean_dwell_s": r.mean_dwell_s}
+            for r in oc.states
+        ],
+    }
+
+
+def _iso(t: float | None) -> str | None:
+    if t is None or not math.isfinite(t):
+        return None
+    return datetime.fromtimestamp(t, tz=timezone.utc).isoformat().replace("+00:00", "Z")
 
 
 def dumps(doc: dict[str, Any]) -> str:

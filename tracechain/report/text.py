@@ -42,6 +42,15 @@ def _num(x: float | None, digits: int = 2) -> str:
     return "inf" if x is None else f"{x:.{digits}f}"
 
 
+def _dur(s: float | None) -> str:
+    if s is None:
+        return "-"
+    for unit, size in (("d", 86400.0), ("h", 3600.0), ("min", 60.0)):
+        if s >= size:
+            return f"{s / size:.1f} {unit}"
+    return f"{s:.0f} s"
+
+
 def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> list[str]:
     right = right if right is not None else set(range(1, len(headers)))
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
@@ -110,6 +119,20 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         un = [i for i in a.unreachable_any() if ch.roles[i] != "start"]
         lines.append("Goal-unreachable states (no path to any goal)")
         lines.append("  " + (", ".join(lab(i) for i in un[:30]) + (" ..." if len(un) > 30 else "") if un else "none"))
+        lines.append("")
+
+    oc = a.open_cases
+    if oc is not None:
+        lines.append("Stuck states (open cases: last state not terminal, last event older than the stale limit)")
+        if oc.states:
+            lines += _table(
+                ["state", "open cases", "median age", "90% age", "mean dwell of those that left"],
+                [[safe_text(r.state), f"{r.open_cases:,}", _dur(r.median_age_s), _dur(r.p90_age_s),
+                  _dur(r.mean_dwell_s)] for r in oc.states],
+            )
+        else:
+            lines.append("  none")
+        lines.append(f"  {oc.open_total:,} open, {oc.in_flight:,} in flight, {oc.finished:,} finished")
         lines.append("")
 
     lines.append("Communicating classes")

@@ -160,7 +160,10 @@ def test_inactivity_gap_splits_a_client_into_sessions(tmp_path):
     counts, _ = count_sources([str(path)], format="access", shape=ShapeOptions(gap=1800.0))
     assert counts.sessions == 2
     assert counts.to_edges() == {("[start]", "/a"): 2, ("/a", "/b"): 1, ("/b", "[end]"): 1, ("/a", "[end]"): 1}
-    counts, _ = count_sources([str(path)], format="access")  # no gap: one session
+    counts, report = count_sources([str(path)], format="access")  # web logs default to the 30-minute gap
+    assert counts.sessions == 2
+    assert any("30 minutes" in n for n in report.notes)
+    counts, _ = count_sources([str(path)], format="access", shape=ShapeOptions(gap=float("inf")))  # no gap
     assert counts.sessions == 1
 
 

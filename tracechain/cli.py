@@ -29,6 +29,7 @@ from .report.dot import render_dot, render_image
 from .report.json_report import analysis_document, dumps
 from .report.text import render_text
 from .report.writer import write_output
+from .shape.cases import CasePolicy
 from .shape.mapping import load_mapping
 
 __all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
@@ -48,6 +49,19 @@ def parse_duration(text: str) -> float:
     if not m:
         raise argparse.ArgumentTypeError(f"not a duration: {text!r} (use e.g. 90s, 30m, 1h, 2d)")
     return float(m.group(1)) * _UNIT_S[m.group(2).lower() if m.group(2) else None]
+
+
+def _timestamp(text: str) -> float:
+    from datetime import datetime, timezone
+
+    try:
+        t = text.strip()
+        dt = datetime.fromisoformat(t[:-1] + "+00:00" if t.endswith(("Z", "z")) else t)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not an ISO 8601 time: {text!r}") from None
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=timezone.utc)
+    return dt.timestamp()
 
 
 def _share(text: str) -> float:
@@ -105,6 +119,14 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     s.add_argument("--gap", type=parse_duration, metavar="DURATION",
                    help="start a new session after this much inactivity (e.g. 30m)")
     s.add_argument("--order", type=int, default=1, metavar="K", help="chain order: states are the last K events")
+    c = p.add_argument_group("workflows with open cases")
+    c.add_argument("--terminal", action="append", default=[], metavar="STATE",
+                   help="a state in which a case is finished; repeat for several (also 'terminal:' in the mapping)")
+    c.add_argument("--stale-after", type=parse_duration, metavar="DURATION",
+                   help="an unfinished case is open (stuck) when its last event is older than this (default: "
+                        "every unfinished case); more recent ones are in flight")
+    c.add_argument("--as-of", type=_timestamp, metavar="TIME",
+                   help="the time ages are measured from, ISO 8601 (default: the latest time in the data)")
     s.add_argument("--smoothing", type=float, default=0.0, metavar="ALPHA",
                    help="additive smoothing of transition probabilities (default 0)")
 
@@ -154,9 +176,18 @@ def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, 
         raise UsageError("--order must be at least 1")
     if not math.isfinite(args.smoothing) or args.smoothing < 0:
         raise UsageError("--smoothing must be a finite non-negative number")
+    terminal += [t for t in (getattr(args, "terminal", None) or []) if t not in terminal]
+    cases = None
+    stale_after = getattr(args, "stale_after", None)
+    as_of = getattr(args, "as_of", None)
+    if terminal:
+        cases = CasePolicy(frozenset(terminal), stale_after, as_of)
+    elif stale_after is not None or as_of is not None:
+        raise UsageError("--stale-after and --as-of need terminal states (--terminal STATE or 'terminal:' in the "
+                         "mapping file)")
     shape = ShapeOptions(
         mapping=mapping, goals=tuple(goals), truncate_at_goal=not args.keep_after_goal,
-        collapse_repeats=args.collapse, gap=args.gap, order=args.order,
+        collapse_repeats=args.collapse, gap=args.gap, order=args.order, cases=cases,
     )
     fields = FieldSpec(session=args.session_field, time=args.time_field, event=args.event_field,
                        time_unit=args.time_unit, time_format=args.time_format)
@@ -206,8 +237,9 @@ def build_chain(args: argparse.Namespace):
     chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
     settings = {
         "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,
-        "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": shape.gap, "order": shape.order,
+        "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": counts.meta.get("inactivity_gap_s", shape.gap), "order": shape.order,
         "smoothing": args.smoothing, "mapping": args.mapping,
+        "stale_after_seconds": shape.cases.stale_after if shape.cases else None,
     }
     return chain, report, settings
 

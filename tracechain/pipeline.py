@@ -11,8 +11,10 @@ either way; the report notes it.
 
 from __future__ import annotations
 
+import queue
+import threading
 from collections.abc import Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, BinaryIO
 
 from .counts import TransitionCounts
@@ -22,6 +24,7 @@ from .ingest.base import ReadOptions
 from .ingest.fields import FieldSpec
 from .ingest.registry import detect_parser, get_parser
 from .ingest.sources import Source, expand_sources
+from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
 
@@ -39,6 +42,8 @@ class ShapeOptions:
     gap: float | None = None
     order: int = 1
     extra: dict[str, Any] = field(default_factory=dict)
+    #: how unfinished workflow cases are counted at the end (None: every session ends)
+    cases: CasePolicy | None = None
 
     def counter(self, sort: bool = False) -> SessionCounter:
         collapse = self.collapse_repeats
@@ -87,7 +92,72 @@ def count_chunks(chunks: Iterable[EventChunk], shape: ShapeOptions | None = None
         counter = shape.counter(sort=True)
         for c in chunks:
             counter.add(c)
-    return counter.finish(finish_session)
+    return counter.finish(finish_session, cases=shape.cases)
+
+
+def _read_ahead(chunks: Iterable[EventChunk]) -> Iterator[EventChunk]:
+    """The chunks of ``chunks``, each read in a background thread while the one
+    before it is counted.
+
+    Arrow parses with the GIL released, so reading the next block overlaps with
+    counting the current one. The reader starts on a chunk only once the previous one
+    has been taken, so at most two chunks are in memory. Chunks and errors arrive in
+    the order the parser yields or raises them. When the consumer stops early (an
+    error, or a session out of time order), the reader is stopped and closed before
+    this returns.
+    """
+    it = iter(chunks)
+    q: queue.Queue = queue.Queue(maxsize=1)
+    taken = threading.Semaphore(0)
+    stop = threading.Event()
+
+    def hand_over(item: tuple) -> bool:
+        """Put ``item`` in the queue and wait until the consumer has taken it."""
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.05)
+                break
+            except queue.Full:
+                continue
+        else:
+            return False
+        while not stop.is_set():
+            if taken.acquire(timeout=0.05):
+                return True
+        return False
+
+    def work() -> None:
+        try:
+            for chunk in it:
+                if not hand_over((True, chunk)):
+                    return
+                del chunk
+        except BaseException as err:  # handed to the consumer, raised there
+            hand_over((False, err))
+            return
+        hand_over((True, _DONE))
+
+    thread = threading.Thread(target=work, name="tracechain-read-ahead", daemon=True)
+    thread.start()
+    try:
+        while True:
+            ok, item = q.get()
+            taken.release()
+            if not ok:
+                raise item
+            if item is _DONE:
+                return
+            yield item
+            del item
+    finally:
+        stop.set()
+        thread.join()
+        close = getattr(it, "close", None)
+        if close is not None:
+            close()
+
+
+_DONE = object()
 
 
 def count_sources(
@@ -111,6 +181,13 @@ def count_sources(
     options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}))
     sources = _resolve(paths, stdin)
     plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
+    gap_note = None
+    if shape.gap is None:
+        defaults = {getattr(p, "default_gap", None) for _, p in plan} - {None}
+        if defaults:
+            shape = replace(shape, gap=min(defaults))
+            gap_note = (f"sessions cut after {shape.gap / 60:g} minutes of inactivity (the default for "
+                        f"{', '.join(sorted({p.name for _, p in plan if getattr(p, 'default_gap', None)}))} logs)")
 
     def one_pass(sort: bool) -> tuple[TransitionCounts, ParseReport]:
         report = ParseReport()
@@ -122,10 +199,10 @@ def count_sources(
             if parser.kind == "counts":
                 pre = pre + parser.read_counts(src, options, report)
                 continue
-            for chunk in parser.read(src, options, report):
+            for chunk in _read_ahead(parser.read(src, options, report)):
                 any_events = True
                 counter.add(chunk)
-        counts = counter.finish(finish_session) if any_events else TransitionCounts.empty()
+        counts = counter.finish(finish_session, cases=shape.cases) if any_events else TransitionCounts.empty()
         if pre.n_states:
             counts = counts + pre if counts.n_states else pre
         return counts, report
@@ -138,6 +215,8 @@ def count_sources(
             f"events are not in time order within sessions (first at {err.source}:{err.line}); "
             "each session was sorted by time (ties keep file order) before counting"
         )
+    if gap_note:
+        report.notes.append(gap_note)
     dropped = counts.meta.get("events_dropped_by_mapping", 0)
     if dropped:
         report.notes.append(f"{dropped} events dropped by the mapping rules")

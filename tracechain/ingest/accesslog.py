@@ -244,6 +244,9 @@ def _times(m: pa.StructArray) -> tuple[np.ndarray, np.ndarray]:
 
 class AccessLogParser:
     name = "access"
+    #: web logs have no session key: sessions are cut after 30 minutes of inactivity unless
+    #: --gap says otherwise (common practice; Catledge & Pitkow 1995 measured 25.5 minutes)
+    default_gap = 1800.0
     kind = "events"
     description = "NCSA Common/Combined access logs (Apache httpd, nginx); session = client address + user agent"
 

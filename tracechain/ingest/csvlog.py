@@ -21,7 +21,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
-from .sources import BLOCK_BYTES, Source, iter_line_blocks, peek
+from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, peek
 from .tabular import table_to_chunk
 
 __all__ = ["CsvParser", "read_header"]
@@ -70,26 +70,61 @@ class CsvParser:
         wanted = [n for n in names if n is not None]
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         report.lines_read += 1  # the header
-        for block, first_line in iter_line_blocks(source, block_bytes, skip_lines=1):
-            nlines = block.count(b"\n") + (0 if block.endswith(b"\n") else 1)
+        time_type: pa.DataType | None = None  # the time column's type, once Arrow has inferred it
+        for block, first_line, newlines in iter_line_blocks_counted(source, block_bytes, skip_lines=1):
+            nlines = newlines + (0 if block.endswith(b"\n") else 1)
             report.lines_read += nlines
-            table = _fast_parse(block, header, delim, wanted, names)
+            table = None
+            if time_type is not None or names[1] is None:
+                # all types known: Arrow may parse the block in pieces on its threads
+                table = _fast_parse(block, header, delim, wanted, names, time_type, pieces=True)
+            if table is None:
+                table = _fast_parse(block, header, delim, wanted, names)
+                if table is not None and names[1] is not None and time_type is None:
+                    time_type = _known_type(table.schema.field(names[1]).type)
             if table is not None and table.num_rows == nlines:
                 cols = {c: table.column(c) for c in wanted}
                 lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
             else:
                 cols, lines = _slow_parse(block, first_line, header, delim, wanted, source.name, report, options.strict)
             chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
+            del block, table, cols, lines  # not kept alive while the chunk is counted
             if chunk is not None:
                 yield chunk
+            del chunk
 
 
-def _fast_parse(block: bytes, header: list[str], delim: str, wanted: list[str], names) -> pa.Table | None:
+def _known_type(typ: pa.DataType) -> pa.DataType | None:
+    """A type inferred for the time column that later blocks may be read with directly.
+
+    Reading a later block with it gives the values that inferring again would give;
+    when the block does not fit it, Arrow refuses and the block is read inferring again.
+    """
+    if pa.types.is_integer(typ) or pa.types.is_floating(typ):
+        return typ
+    return None  # (text may hold timestamps, which inference would read as such)
+
+
+#: With all column types known, Arrow parses a block in one piece per CPU (none smaller
+#: than this); inferring the time column's type, in one piece, so that one type is
+#: inferred from all of the block as before.
+_PIECE_BYTES = 1 << 21
+
+
+def _fast_parse(
+    block: bytes, header: list[str], delim: str, wanted: list[str], names,
+    time_type: pa.DataType | None = None, pieces: bool = False,
+) -> pa.Table | None:
     types = {names[0]: pa.string(), names[2]: pa.string()}
+    if time_type is not None:
+        types[names[1]] = time_type
+    size = len(block) + 1
+    if pieces:
+        size = min(size, max(_PIECE_BYTES, len(block) // max(1, pa.cpu_count()) + 1))
     try:
         return pcsv.read_csv(
-            io.BytesIO(block),
-            read_options=pcsv.ReadOptions(column_names=header, block_size=len(block) + 1),
+            pa.BufferReader(block),
+            read_options=pcsv.ReadOptions(column_names=header, block_size=size),
             parse_options=pcsv.ParseOptions(delimiter=delim, newlines_in_values=False),
             convert_options=pcsv.ConvertOptions(
                 include_columns=wanted, column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False

@@ -9,25 +9,49 @@ Blank lines are invalid by the JSON Lines specification: they are counted and sk
 
 from __future__ import annotations
 
-import io
 import json
 import re
 from collections.abc import Iterator
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.json as pj
 
 from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
-from .sources import BLOCK_BYTES, Source, iter_line_blocks, text_lines
+from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, text_lines
 from .tabular import table_to_chunk
 
 __all__ = ["JsonLinesParser"]
 
-_BLANK = re.compile(rb"(?:^|\n)[ \t\r]*(?:\n|$)")
+_ODD_LINE = re.compile(rb"(?:^|\n)[ \t\r]*(?:[^{ \t\r\n]|\n)")
+_BRACE_AFTER_NL = 0x7B0A  # the bytes b"\n{" read as one little-endian uint16
+
+
+def _lines_are_objects(block: bytes, newlines: int) -> bool:
+    """Whether every line of ``block`` can go to Arrow's reader.
+
+    Arrow skips blank lines, takes several objects on one line as several rows (so row
+    counts could match the line count by accident), and mis-reads a ``null`` line (as
+    a row without fields; as the first value of its input it even crashes). So a block
+    goes to Arrow only if no line is empty or whitespace-only and every line starts,
+    after optional whitespace, with ``{``. The common case, every line starting with
+    ``{`` right away, is found by counting ``\n{`` pairs with numpy.
+    """
+    if block[:1] == b"{":
+        u8 = np.frombuffer(block, dtype=np.uint8)
+        even = u8[: len(u8) // 2 * 2].view(np.uint16)
+        odd = u8[1 : 1 + (len(u8) - 1) // 2 * 2].view(np.uint16)
+        pairs = int(np.count_nonzero(even == _BRACE_AFTER_NL)) + int(np.count_nonzero(odd == _BRACE_AFTER_NL))
+        if pairs == newlines - (1 if block.endswith(b"\n") else 0):
+            return True
+    if _ODD_LINE.search(block):
+        return False
+    tail = block[block.rfind(b"\n") + 1 :]
+    return not tail or bool(tail.strip(b" \t\r"))
 
 
 class JsonLinesParser:
@@ -53,11 +77,11 @@ class JsonLinesParser:
         names: tuple[str, str | None, str] | None = None
         schema: pa.Schema | None = None
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
-        for block, first_line in iter_line_blocks(source, block_bytes):
-            nlines = block.count(b"\n") + (0 if block.endswith(b"\n") else 1)
+        for block, first_line, newlines in iter_line_blocks_counted(source, block_bytes):
+            nlines = newlines + (0 if block.endswith(b"\n") else 1)
             report.lines_read += nlines
             table = None
-            if not _BLANK.search(block):
+            if _lines_are_objects(block, newlines):
                 table = _fast_parse(block, schema)
                 if table is None and schema is not None:
                     table = _fast_parse(block, None)
@@ -66,6 +90,9 @@ class JsonLinesParser:
             if table is not None:
                 if names is None:
                     names = resolve_fields(options.fields, table.column_names, source.name)
+                table = _text_keys(block, table, names, nlines)
+            if table is not None:
+                if schema is None:
                     schema = _narrow_schema(table.schema, names)
                 cols = {c: table.column(c) for c in names if c is not None and c in table.column_names}
                 lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
@@ -76,8 +103,10 @@ class JsonLinesParser:
                         continue
                     names = resolve_fields(options.fields, keys, source.name)
             chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
+            del block, table, cols, lines  # not kept alive while the chunk is counted
             if chunk is not None:
                 yield chunk
+            del chunk
         if names is not None:
             report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
 
@@ -89,14 +118,55 @@ def _narrow_schema(schema: pa.Schema, names: tuple[str, str | None, str]) -> pa.
     return pa.schema(fields)
 
 
-def _fast_parse(block: bytes, schema: pa.Schema | None) -> pa.Table | None:
-    read = pj.ReadOptions(block_size=len(block) + 1, use_threads=True)
+def _text_keys(block: bytes, table: pa.Table, names: tuple[str, str | None, str], nlines: int) -> pa.Table | None:
+    """Arrow reads ISO-looking strings as timestamps; session keys and event names must
+    stay the text the log holds, so such a column is read again as strings."""
+    temporal = [
+        n for n in (names[0], names[2])
+        if n in table.column_names and pa.types.is_temporal(table.schema.field(n).type)
+    ]
+    if temporal:
+        table = _fast_parse(block, pa.schema([(n, pa.string()) for n in temporal]), unexpected="infer")
+        if table is None or table.num_rows != nlines:
+            return None
+    return table if _plain(table, names) else None
+
+
+def _plain(table: pa.Table, names: tuple[str, str | None, str]) -> bool:
+    """Whether the needed columns hold what the line-by-line parser would read the same
+    way: no nested values (reported per line there) and no integers beyond 64 bits
+    (which Arrow reads as imprecise floats)."""
+    for n in names:
+        if n is None or n not in table.column_names:
+            continue
+        typ = table.schema.field(n).type
+        if pa.types.is_nested(typ):
+            return False
+        if pa.types.is_floating(typ):
+            top = pc.max(pc.abs(table.column(n))).as_py()
+            if top is not None and not top < 2.0**63:
+                return False
+    return True
+
+
+#: With the types known, Arrow parses a block in one piece per CPU (none smaller than
+#: this) on its threads; inferring types, it reads the block as one piece so that one
+#: type is inferred from all of it.
+_PIECE_BYTES = 1 << 21
+
+
+def _fast_parse(block: bytes, schema: pa.Schema | None, unexpected: str = "ignore") -> pa.Table | None:
+    if schema is not None and unexpected == "ignore":
+        piece = min(len(block) + 1, max(_PIECE_BYTES, len(block) // max(1, pa.cpu_count()) + 1))
+        read = pj.ReadOptions(block_size=piece, use_threads=True)
+    else:
+        read = pj.ReadOptions(block_size=len(block) + 1, use_threads=True)
     if schema is not None:
-        parse = pj.ParseOptions(explicit_schema=schema, unexpected_field_behavior="ignore")
+        parse = pj.ParseOptions(explicit_schema=schema, unexpected_field_behavior=unexpected)
     else:
         parse = pj.ParseOptions(unexpected_field_behavior="infer")
     try:
-        return pj.read_json(io.BytesIO(block), read_options=read, parse_options=parse)
+        return pj.read_json(pa.BufferReader(block), read_options=read, parse_options=parse)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):
         return None
 

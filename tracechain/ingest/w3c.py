@@ -107,6 +107,9 @@ class _Layout:
 
 class W3CExtendedParser:
     name = "w3c"
+    #: web logs have no session key: sessions are cut after 30 minutes of inactivity unless
+    #: --gap says otherwise (common practice; Catledge & Pitkow 1995 measured 25.5 minutes)
+    default_gap = 1800.0
     kind = "events"
     description = "W3C Extended Log File Format (IIS and others): #Fields directive, c-ip, cs-uri-stem"
 

@@ -21,20 +21,212 @@ plain names since they absorb). Pseudo-states mark where sessions start and end.
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Callable, Iterable
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..counts import END, START, Location, State, TransitionCounts, _csr
+from ..counts import END, START, Location, State, TransitionCounts, _csr, state_label
 from ..events import EventChunk
+from .cases import CasePolicy
 from .mapping import Mapping
 
 __all__ = ["SessionCounter", "OutOfOrder"]
 
 _S, _E = 0, 1  # internal codes of the pseudo-states
 _M = np.int64(1) << np.int64(31)
+#: Edge totals live in dense K×K tables while there are at most this many state codes
+#: (plus the two pseudo-states); beyond it, in sorted sparse arrays.
+_DENSE_MAX = 1024
+
+_FNV_OFFSET = np.uint64(0xCBF29CE484222325)
+_FNV_PRIME = np.uint64(0x100000001B3)
+_VEC_BYTES = 64  # keys up to this long are hashed byte-column by byte-column in numpy
+
+
+def _string_buffers(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """(offsets as int64, length n+1, into data; data as uint8) of a string array."""
+    if pa.types.is_large_string(arr.type):
+        width, otype = 8, np.int64
+    else:
+        if not pa.types.is_string(arr.type):
+            arr = pc.cast(arr, pa.string())
+        width, otype = 4, np.int32
+    bufs = arr.buffers()
+    offs = np.frombuffer(bufs[1], dtype=otype, count=len(arr) + 1, offset=arr.offset * width).astype(np.int64)
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None and len(bufs[2]) else np.zeros(0, np.uint8)
+    return offs, data
+
+
+def _hash_strings(offs: np.ndarray, data: np.ndarray) -> np.ndarray:
+    """A 64-bit hash per string (FNV-1a, then the length and a final mix).
+
+    Only ever compared with hashes made by this function, so any deterministic
+    function of the bytes would do; equal hashes are checked byte by byte anyway.
+    """
+    lens = np.diff(offs)
+    n = len(lens)
+    h = np.full(n, _FNV_OFFSET, dtype=np.uint64)
+    short = np.flatnonzero(lens <= _VEC_BYTES)
+    if len(short):
+        by_len = short[np.argsort(-lens[short], kind="stable")]  # longest first
+        ls = lens[by_len]
+        starts = offs[by_len]
+        hs = h[by_len]
+        top = int(ls[0]) if len(ls) else 0
+        active = len(ls) - np.searchsorted(ls[::-1], np.arange(top), side="right")
+        for j in range(top):
+            k = int(active[j])
+            hs[:k] = (hs[:k] ^ data[starts[:k] + j].astype(np.uint64)) * _FNV_PRIME
+        h[by_len] = hs
+    for i in np.flatnonzero(lens > _VEC_BYTES).tolist():
+        digest = hashlib.blake2b(data[offs[i]:offs[i + 1]].tobytes(), digest_size=8).digest()
+        h[i] = np.uint64(int.from_bytes(digest, "little"))
+    h ^= lens.astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+    h ^= h >> np.uint64(33)
+    h *= np.uint64(0xFF51AFD7ED558CCD)
+    h ^= h >> np.uint64(33)
+    h *= np.uint64(0xC4CEB9FE1A85EC53)
+    h ^= h >> np.uint64(33)
+    return h
+
+
+class _KeyIndex:
+    """Session keys to dense codes (0, 1, ... in order of first appearance).
+
+    An open-addressing hash table in numpy arrays; the keys' bytes are kept
+    contiguously and every hash match is confirmed byte by byte, so two keys never
+    share a code. Per key it needs a few dozen bytes, against well over a hundred for
+    a dict of Python strings, and it works on whole chunks at a time.
+    """
+
+    def __init__(self) -> None:
+        self.n = 0
+        self._data = np.zeros(1 << 16, dtype=np.uint8)
+        self._off = np.zeros(1025, dtype=np.int64)  # n + 1 used
+        self._hash = np.zeros(1024, dtype=np.uint64)
+        self._slots = np.zeros(1 << 12, dtype=np.int32)  # code + 1; 0: empty
+
+    def __len__(self) -> int:
+        return self.n
+
+    def key(self, code: int) -> str:
+        return self._data[self._off[code]:self._off[code + 1]].tobytes().decode("utf-8", errors="surrogateescape")
+
+    def codes(self, strings: pa.Array) -> np.ndarray:
+        """Codes of distinct ``strings``; unknown ones get the next codes, in order."""
+        offs, data = _string_buffers(strings)
+        h = _hash_strings(offs, data)
+        out = self._find(h, offs, data)
+        fresh = np.flatnonzero(out < 0)
+        if len(fresh):
+            out[fresh] = self._add(fresh, h, offs, data)
+        return out
+
+    def _find(self, h, offs, data) -> np.ndarray:
+        out = np.full(len(h), -1, dtype=np.int64)
+        mask = np.uint64(len(self._slots) - 1)
+        pos = (h & mask).astype(np.int64)
+        todo = np.arange(len(h))
+        while len(todo):
+            c = self._slots[pos[todo]].astype(np.int64) - 1
+            taken = c >= 0
+            todo, c = todo[taken], c[taken]  # an empty slot: not there
+            same = self._hash[c] == h[todo]
+            if same.any():
+                eq = np.zeros(len(todo), dtype=bool)
+                eq[same] = self._equal(todo[same], c[same], offs, data)
+                out[todo[eq]] = c[eq]
+                todo = todo[~eq]
+            pos[todo] = (pos[todo] + 1) & (len(self._slots) - 1)
+        return out
+
+    def _equal(self, q, c, offs, data) -> np.ndarray:
+        """Whether query string ``q[i]`` has the bytes of stored key ``c[i]``."""
+        qlen = offs[q + 1] - offs[q]
+        ok = qlen == (self._off[c + 1] - self._off[c])
+        idx = np.flatnonzero(ok & (qlen > 0))
+        if len(idx):
+            lens = qlen[idx]
+            total = int(lens.sum())
+            pair = np.repeat(np.arange(len(idx)), lens)
+            ramp = np.arange(total) - np.repeat(np.cumsum(lens) - lens, lens)
+            diff = data[np.repeat(offs[q[idx]], lens) + ramp] != self._data[np.repeat(self._off[c[idx]], lens) + ramp]
+            bad = np.bincount(pair[diff], minlength=len(idx)) > 0
+            ok[idx[bad]] = False
+        return ok
+
+    def _add(self, rows, h, offs, data) -> np.ndarray:
+        f = len(rows)
+        codes = np.arange(self.n, self.n + f, dtype=np.int64)
+        lens = offs[rows + 1] - offs[rows]
+        total = int(lens.sum())
+        end = int(self._off[self.n])
+        if end + total > len(self._data):
+            self._data = _grown(self._data, end + total)
+        if self.n + f + 1 > len(self._off):
+            self._off = _grown(self._off, self.n + f + 1)
+            self._hash = _grown(self._hash, self.n + f + 1)
+        if total:
+            ramp = np.arange(total) - np.repeat(np.cumsum(lens) - lens, lens)
+            self._data[end:end + total] = data[np.repeat(offs[rows], lens) + ramp]
+        self._off[self.n + 1:self.n + f + 1] = end + np.cumsum(lens)
+        self._hash[self.n:self.n + f] = h[rows]
+        self.n += f
+        if 4 * self.n > len(self._slots):  # at most a quarter full: short probe runs
+            size = len(self._slots)
+            while 4 * self.n > size:
+                size *= 2
+            self._slots = np.zeros(size, dtype=np.int32)
+            self._place(np.arange(self.n, dtype=np.int64))
+        else:
+            self._place(codes)
+        return codes
+
+    def _place(self, codes: np.ndarray) -> None:
+        mask = len(self._slots) - 1
+        pos = (self._hash[codes] & np.uint64(mask)).astype(np.int64)
+        todo = np.arange(len(codes))
+        tags = (codes + 1).astype(np.int32)
+        while len(todo):
+            p = pos[todo]
+            free = self._slots[p] == 0
+            # several keys may aim at one free slot: one of them lands there (the last
+            # write), which reading the slot back tells; the others probe on
+            tf, pf = todo[free], p[free]
+            self._slots[pf] = tags[tf]
+            landed = np.zeros(len(todo), dtype=bool)
+            landed[np.flatnonzero(free)[self._slots[pf] == tags[tf]]] = True
+            todo = todo[~landed]
+            pos[todo] = (pos[todo] + 1) & mask
+
+
+def _grown(a: np.ndarray, n: int) -> np.ndarray:
+    b = np.zeros(max(n, 2 * len(a)), dtype=a.dtype)
+    b[: len(a)] = a
+    return b
+
+
+def _stable_order(lut: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """``np.argsort(lut[idx], kind="stable")`` for distinct ``lut`` values, faster.
+
+    The values are replaced by their ranks, which sort the same way and fit in 16 bits
+    (one radix pass) or 32 bits (two stable radix passes, low half first).
+    """
+    d = len(lut)
+    if d <= 1:
+        return np.arange(len(idx))
+    rank = np.empty(d, dtype=np.int64)
+    rank[np.argsort(lut)] = np.arange(d, dtype=np.int64)
+    r = rank[idx]
+    if d <= 1 << 16:
+        return np.argsort(r.astype(np.uint16), kind="stable")
+    if d <= 1 << 32:
+        low = np.argsort((r & 0xFFFF).astype(np.uint16), kind="stable")
+        return low[np.argsort((r[low] >> 16).astype(np.uint16), kind="stable")]
+    return np.argsort(r, kind="stable")
 
 
 class OutOfOrder(Exception):
@@ -99,21 +291,28 @@ class SessionCounter:
         self._win_code: dict[tuple, int] = {}
         self._win_list: list[tuple] = [(), ()]
         # sessions
-        self._sess_code: dict[str, int] = {}
-        self._sess_keys: list[str] = []
+        self._keys = _KeyIndex()
+        # per session key; rows past ``_c_init`` are allocated but not yet written, so
+        # they take no memory until sessions arrive
         cap = 1024
-        self._c_state = np.full(cap, -1, dtype=np.int64)  # current (window) state, -1: none
-        self._c_hist = np.full((cap, max(order - 1, 1)), -1, dtype=np.int64)  # last k-1 base codes
-        self._c_ktime = np.full(cap, np.nan)  # time of the current state's first event
-        self._c_rtime = np.full(cap, np.nan)  # time of the last event (for gaps and order checks)
-        self._c_done = np.zeros(cap, dtype=bool)
-        self._c_line = np.zeros(cap, dtype=np.int64)
-        self._c_src = np.zeros(cap, dtype=np.int64)
+        self._c_init = 0
+        self._c_state = np.empty(cap, dtype=np.int32)  # current (window) state, -1: none
+        self._c_hist = np.empty((cap, max(order - 1, 1)), dtype=np.int32)  # last k-1 base codes
+        self._c_ktime = np.empty(cap)  # time of the current state's first event
+        self._c_rtime = np.empty(cap)  # time of the last event (for gaps and order checks)
+        self._c_done = np.empty(cap, dtype=bool)
+        self._c_line = np.empty(cap, dtype=np.int64)
+        self._c_src = np.empty(cap, dtype=np.int32)
         # accumulated edges (internal codes)
         self._codes = np.zeros(0, dtype=np.int64)
         self._cnt = np.zeros(0, dtype=np.int64)
         self._gsum = np.zeros(0, dtype=np.float64)
         self._gn = np.zeros(0, dtype=np.int64)
+        self._dense_k = 0  # side of the dense tables (0: none yet)
+        self._d_cnt = np.zeros(0, dtype=np.int64)
+        self._d_gsum = np.zeros(0, dtype=np.float64)
+        self._d_gn = np.zeros(0, dtype=np.int64)
+        self._sparse = False  # True once the totals are kept in _codes/_cnt/_gsum/_gn
         self._first: dict[int, tuple[int, int, int]] = {}
         self._sources: list[str] = []
         self._src_code: dict[str, int] = {}
@@ -145,39 +344,44 @@ class SessionCounter:
             out[i] = c
         return out
 
-    def _session_codes(self, arr: pa.Array) -> np.ndarray:
+    def _session_codes(self, arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+        """(code per distinct key, index into those per event); new keys get the next
+        codes in order of first appearance in the chunk."""
         enc = pc.dictionary_encode(arr)
-        idx = enc.indices.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
-        table = self._sess_code
-        keys = self._sess_keys
-        lut = np.empty(len(enc.dictionary), dtype=np.int64)
-        for i, k in enumerate(enc.dictionary.to_pylist()):
-            c = table.get(k)
-            if c is None:
-                c = len(keys)
-                table[k] = c
-                keys.append(k)
-            lut[i] = c
-        self._grow(len(keys))
-        return lut[idx]
+        idx = enc.indices.to_numpy(zero_copy_only=False)
+        lut = self._keys.codes(enc.dictionary)
+        self._grow(len(self._keys))
+        return lut, idx
 
     def _grow(self, n: int) -> None:
-        cap = len(self._c_state)
-        if n <= cap:
+        """Make rows ``[0, n)`` of the per-session arrays exist and hold their defaults."""
+        init = self._c_init
+        if n <= init:
             return
-        new = max(n, 2 * cap)
-        def g(a, fill):
-            shape = (new,) + a.shape[1:]
-            b = np.full(shape, fill, dtype=a.dtype)
-            b[:cap] = a
-            return b
-        self._c_state = g(self._c_state, -1)
-        self._c_hist = g(self._c_hist, -1)
-        self._c_ktime = g(self._c_ktime, np.nan)
-        self._c_rtime = g(self._c_rtime, np.nan)
-        self._c_done = g(self._c_done, False)
-        self._c_line = g(self._c_line, 0)
-        self._c_src = g(self._c_src, 0)
+        cap = len(self._c_state)
+        if n > cap:
+            new = max(n, 2 * cap)
+
+            def g(a):
+                b = np.empty((new,) + a.shape[1:], dtype=a.dtype)
+                b[:init] = a[:init]
+                return b
+
+            self._c_state = g(self._c_state)
+            self._c_hist = g(self._c_hist)
+            self._c_ktime = g(self._c_ktime)
+            self._c_rtime = g(self._c_rtime)
+            self._c_done = g(self._c_done)
+            self._c_line = g(self._c_line)
+            self._c_src = g(self._c_src)
+        self._c_state[init:n] = -1
+        self._c_hist[init:n] = -1
+        self._c_ktime[init:n] = np.nan
+        self._c_rtime[init:n] = np.nan
+        self._c_done[init:n] = False
+        self._c_line[init:n] = 0
+        self._c_src[init:n] = 0
+        self._c_init = n
 
     # -- public -----------------------------------------------------------------------
     def add(self, chunk: EventChunk) -> None:
@@ -189,46 +393,118 @@ class SessionCounter:
             self._sources.append(chunk.source)
         enc = pc.dictionary_encode(chunk.event)
         lut = self._map_dictionary(enc.dictionary.to_pylist())
-        base = lut[enc.indices.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)]
-        sess = self._session_codes(chunk.session)
-        keep = base >= 0
-        ndrop = int(len(base) - keep.sum())
-        self.dropped += ndrop
+        ev_idx = enc.indices.to_numpy(zero_copy_only=False)
+        del enc
+        lut_s, idx_s = self._session_codes(chunk.session)
         t = chunk.time
         line = chunk.line
-        if ndrop:
-            base, sess, t, line = base[keep], sess[keep], t[keep], line[keep]
-        if len(base) == 0:
+        ndrop = 0
+        if (lut < 0).any():  # the mapping drops some events
+            keep = lut[ev_idx] >= 0
+            ndrop = int(len(keep) - np.count_nonzero(keep))
+            if ndrop:
+                ev_idx, idx_s, t, line = ev_idx[keep], idx_s[keep], t[keep], line[keep]
+            del keep
+        self.dropped += ndrop
+        if len(ev_idx) == 0:
             return
-        srcs = np.full(len(base), src, dtype=np.int64)
         if self.sort:
-            self._pending.append((sess, t, base, line, srcs))
+            # compact: codes fit in 32 bits (_M is 2**31); the source is one per chunk
+            self._pending.append((lut_s[idx_s].astype(np.int32), t, lut[ev_idx].astype(np.int32), line, src))
             return
-        order = np.argsort(sess, kind="stable")
-        self._process(sess[order], t[order], base[order], line[order], srcs[order], check_order=True)
+        order = _stable_order(lut_s, idx_s)
+        s = lut_s[idx_s[order]]
+        del idx_s
+        x = lut[ev_idx[order]]
+        del ev_idx
+        srcs = np.broadcast_to(np.int64(src), (len(order),))  # one source per chunk
+        self._process(s, t[order], x, line[order], srcs, check_order=True)
 
-    def finish(self, finish_session: Callable[[State, float], bool] | None = None) -> TransitionCounts:
-        """Close all sessions and return the counts."""
+    def finish(self, finish_session: Callable[[State, float], bool] | None = None,
+               cases: CasePolicy | None = None) -> TransitionCounts:
+        """Close all sessions and return the counts.
+
+        ``finish_session(label, time)`` returning False counts a session as open; a
+        :class:`~tracechain.shape.cases.CasePolicy` classifies unfinished workflow cases as
+        open (stuck) or in flight, and records their ages in ``meta["open_cases"]``.
+        """
         if self.sort and self._pending:
-            sess, t, base, line, srcs = (np.concatenate(c) for c in zip(*self._pending))
-            self._pending = []
-            tkey = np.where(np.isnan(t), -np.inf, t)
-            order = np.lexsort((tkey, sess))
-            self._process(sess[order], t[order], base[order], line[order], srcs[order], check_order=False)
-        nsess = len(self._sess_keys)
+            self._process_sorted()
+        nsess = len(self._keys)
         live = np.flatnonzero(self._c_state[:nsess] >= 0)
         states = self._c_state[live]
         open_mask = np.zeros(len(live), dtype=bool)
+        flight_mask = np.zeros(len(live), dtype=bool)
+        info = None
         if finish_session is not None and len(live):
             labels = self._labels()
             for k, (s, tm) in enumerate(zip(states, self._c_ktime[live])):
                 open_mask[k] = not finish_session(labels[s - 2], float(tm))
-        ended = live[~open_mask]
+        elif cases is not None:
+            labels = self._labels()
+            last_names = [lab[-1] if isinstance(lab, tuple) else lab for lab in (labels[c - 2] for c in states)]
+            rt = self._c_rtime[live]
+            latest = float(np.nanmax(self._c_rtime[:nsess])) if nsess and np.isfinite(self._c_rtime[:nsess]).any() \
+                else None
+            finished, open_mask, flight_mask, as_of = cases.classify(last_names, rt, self.goals, latest)
+            ages: dict[str, list[float]] = {}
+            for c, a in zip(states[open_mask], (as_of - rt[open_mask]) if as_of is not None else
+                            np.full(int(open_mask.sum()), np.nan)):
+                ages.setdefault(state_label(labels[c - 2]), []).append(float(a))
+            info = {"as_of": as_of, "stale_after_s": cases.stale_after, "terminal": sorted(cases.terminal),
+                    "in_flight": int(flight_mask.sum()), "finished": int(finished.sum()), "ages": ages}
+        ended = live[~open_mask & ~flight_mask]
         self._emit(self._c_state[ended], np.full(len(ended), _E), np.full(len(ended), np.nan),
                    self._c_line[ended], self._c_src[ended], ended)
         open_states = self._c_state[live[open_mask]]
         self._c_state[live] = -1
-        return self._build(open_states)
+        counts = self._build(open_states)
+        if info is not None:
+            counts.meta["open_cases"] = info
+        return counts
+
+    def _process_sorted(self, slice_events: int = 1 << 20) -> None:
+        """Count what was kept in sorting mode: each session ordered by time, ties in
+        file order (as ``np.lexsort((time, session))`` orders them), then counted in
+        slices that each hold whole sessions, as one call over everything would."""
+        pending, self._pending = self._pending, []
+        sizes = np.array([len(p[0]) for p in pending], dtype=np.int64)
+        srcs = np.repeat(np.array([p[4] for p in pending], dtype=np.int32), sizes)
+        fields = []
+        for k in range(4):
+            fields.append(np.concatenate([p[k] for p in pending]))
+            for i in range(len(pending)):  # free each chunk's copy once joined
+                pending[i] = pending[i][:k] + (None,) + pending[i][k + 1:]
+        del pending
+        sess, t, base, line = fields
+        del fields
+        # by session (stable: file order), then by time within the sessions not in order
+        order = _stable_order(np.arange(len(self._keys), dtype=np.int64), sess)
+        s_sorted = sess[order]
+        del sess
+        tkey = t[order]
+        np.copyto(tkey, -np.inf, where=np.isnan(tkey))
+        back = np.flatnonzero((tkey[1:] < tkey[:-1]) & (s_sorted[1:] == s_sorted[:-1]))
+        if len(back):
+            bad = np.zeros(len(self._keys), dtype=bool)
+            bad[s_sorted[back]] = True
+            rows = np.flatnonzero(bad[s_sorted])
+            order[rows] = order[rows][np.lexsort((tkey[rows], s_sorted[rows]))]  # sessions stay put
+        del tkey
+        t, base, line, srcs = t[order], base[order], line[order], srcs[order]
+        del order
+        n = len(s_sorted)
+        # slice ends at session boundaries
+        lo = 0
+        while lo < n:
+            hi = lo + slice_events
+            if hi < n:  # on to the end of the session holding row hi - 1
+                hi = int(np.searchsorted(s_sorted, s_sorted[hi - 1], side="right"))
+            hi = min(hi, n)
+            sl = slice(lo, hi)
+            self._process(s_sorted[sl].astype(np.int64), t[sl], base[sl].astype(np.int64), line[sl],
+                          srcs[sl].astype(np.int64), check_order=False)
+            lo = hi
 
     # -- the per-chunk work -----------------------------------------------------------
     def _process(self, s, t, x, line, srcs, check_order: bool) -> None:
@@ -237,10 +513,13 @@ class SessionCounter:
         first = np.empty(n, dtype=bool)
         first[0] = True
         np.not_equal(s[1:], s[:-1], out=first[1:])
-        prev_rt = np.empty(n)
-        prev_rt[0] = np.nan
-        prev_rt[1:] = t[:-1]
-        prev_rt[first] = self._c_rtime[s[first]]
+        fi = np.flatnonzero(first)  # rows that begin a session's run in this chunk
+        sf = s[fi]
+        if check_order or self.gap is not None:
+            prev_rt = np.empty(n)
+            prev_rt[0] = np.nan
+            prev_rt[1:] = t[:-1]
+            prev_rt[fi] = self._c_rtime[sf]
         if check_order:
             with np.errstate(invalid="ignore"):
                 back = t < prev_rt
@@ -248,27 +527,25 @@ class SessionCounter:
                 i = int(np.argmax(back))
                 raise OutOfOrder(self._sources[srcs[i]], int(line[i]))
         # last raw time per session (before any dropping)
-        last = np.empty(n, dtype=bool)
-        last[-1] = True
-        np.not_equal(s[1:], s[:-1], out=last[:-1])
-        self._c_rtime[s[last]] = t[last]
+        li = np.empty(len(fi), dtype=np.int64)
+        li[:-1] = fi[1:] - 1
+        li[-1] = n - 1
+        self._c_rtime[s[li]] = t[li]
         # session breaks: a new key, or a gap of inactivity
-        carried = self._c_state[s] >= 0
-        brk = first & ~carried
+        carried_f = self._c_state[sf] >= 0
+        brk = np.zeros(n, dtype=bool)
+        brk[fi[~carried_f]] = True
         if self.gap is not None:
             with np.errstate(invalid="ignore"):
                 brk |= (t - prev_rt) > self.gap
-        # a gap break at the first element of a carried session ends the carried session
-        close = first & carried & brk
-        if close.any():
-            cs = s[close]
-            self._emit(self._c_state[cs], np.full(len(cs), _E), np.full(len(cs), np.nan),
-                       self._c_line[cs], self._c_src[cs], cs)
-            self._c_state[cs] = -1
-            self._c_done[cs] = False
-            self._c_hist[cs] = -1
-        seg_start = first | brk
-        keep = np.ones(n, dtype=bool)
+        # (a gap break ends a session carried from an earlier chunk; that is emitted after
+        # filtering, since the break may fall on an event that only becomes the session's first
+        # in this chunk once a repeat or a post-goal event before it is dropped; a break event
+        # itself is never dropped)
+        filtering = (self.truncate and bool(self.goals)) or self.collapse
+        if filtering:
+            seg_start = first | brk
+            keep = np.ones(n, dtype=bool)
         # truncation after the first goal of each segment
         if self.truncate and self.goals:
             g = self._goal_flag[x]
@@ -292,7 +569,7 @@ class SessionCounter:
                 prev[fk] = hist_last
                 rep = ~bk & (xs == prev)
                 keep[kx[rep]] = False
-        if not keep.all():
+        if filtering and not keep.all():
             s, t, x, line, srcs, brk = s[keep], t[keep], x[keep], line[keep], srcs[keep], brk[keep]
             n = len(s)
             if n == 0:
@@ -300,6 +577,7 @@ class SessionCounter:
             first = np.empty(n, dtype=bool)
             first[0] = True
             np.not_equal(s[1:], s[:-1], out=first[1:])
+            fi = np.flatnonzero(first)
         # window states
         w = self._windows(s, x, first, brk) if self.order > 1 else x
         # predecessors
@@ -309,28 +587,35 @@ class SessionCounter:
         prev_kt = np.empty(n)
         prev_kt[0] = np.nan
         prev_kt[1:] = t[:-1]
-        cont = first & ~brk
-        prev[cont] = self._c_state[s[cont]]
-        prev_kt[cont] = self._c_ktime[s[cont]]
+        cont = fi[~brk[fi]]
+        sc = s[cont]
+        prev[cont] = self._c_state[sc]
+        prev_kt[cont] = self._c_ktime[sc]
+        bi = np.flatnonzero(brk)
+        # a break at a session's first kept event ends the session carried from an earlier chunk
+        cf = fi[brk[fi]]
+        cs = s[cf][self._c_state[s[cf]] >= 0]
+        if len(cs):
+            self._emit(self._c_state[cs], np.full(len(cs), _E), np.full(len(cs), np.nan),
+                       self._c_line[cs], self._c_src[cs], cs)
         # a segment break inside the chunk ends the previous segment
-        inner_brk = brk & ~first
-        if inner_brk.any():
-            j = np.flatnonzero(inner_brk) - 1
+        j = bi[~first[bi]] - 1
+        if len(j):
             self._emit(w[j], np.full(len(j), _E), np.full(len(j), np.nan), line[j], srcs[j], s[j])
-        prev[brk] = _S
+        prev[bi] = _S
         gaps = t - prev_kt
-        gaps[brk] = np.nan
+        gaps[bi] = np.nan
         self._emit(prev, w, gaps, line, srcs, s)
         # carry
-        last = np.empty(n, dtype=bool)
-        last[-1] = True
-        np.not_equal(s[1:], s[:-1], out=last[:-1])
-        ls = s[last]
-        self._c_state[ls] = w[last]
-        self._c_ktime[ls] = t[last]
-        self._c_line[ls] = line[last]
-        self._c_src[ls] = srcs[last]
-        self._c_done[ls] = self._goal_flag[x[last]] if (self.truncate and self.goals) else False
+        li = np.empty(len(fi), dtype=np.int64)
+        li[:-1] = fi[1:] - 1
+        li[-1] = n - 1
+        ls = s[li]
+        self._c_state[ls] = w[li]
+        self._c_ktime[ls] = t[li]
+        self._c_line[ls] = line[li]
+        self._c_src[ls] = srcs[li]
+        self._c_done[ls] = self._goal_flag[x[li]] if (self.truncate and self.goals) else False
 
     def _c_state_base(self, ss: np.ndarray) -> np.ndarray:
         st = self._c_state[ss]
@@ -388,6 +673,12 @@ class SessionCounter:
     def _emit(self, a, b, gaps, line, srcs, sess) -> None:
         if len(a) == 0:
             return
+        if not self._sparse:
+            k = len(self._win_list)
+            if k <= _DENSE_MAX:
+                self._emit_dense(k, a, b, gaps, line, srcs, sess)
+                return
+            self._to_sparse()
         codes = a.astype(np.int64) * _M + b.astype(np.int64)
         uniq, first_idx, inv = np.unique(codes, return_index=True, return_inverse=True)
         cnt = np.bincount(inv, minlength=len(uniq)).astype(np.int64)
@@ -404,6 +695,73 @@ class SessionCounter:
         self._gn = np.bincount(inv2, weights=np.concatenate([self._gn, gn]), minlength=len(u2)).astype(np.int64)
         self._codes = u2
 
+    def _emit_dense(self, k, a, b, gaps, line, srcs, sess) -> None:
+        """As the sparse path, on K×K tables: the same totals and first locations."""
+        if k > self._dense_k:
+            side = max(64, 1 << (k - 1).bit_length())
+            old = self._dense_k
+            def grow(v):
+                out = np.zeros((side, side), dtype=v.dtype)
+                out[:old, :old] = v.reshape(old, old)
+                return out.ravel()
+            self._d_cnt, self._d_gsum, self._d_gn = grow(self._d_cnt), grow(self._d_gsum), grow(self._d_gn)
+            self._dense_k = side
+        side = self._dense_k
+        size = side * side
+        codes = a.astype(np.int64) * side + b.astype(np.int64)
+        fin = np.isfinite(gaps)
+        all_fin = bool(fin.all())
+        dense = len(codes) * 8 >= size
+        if dense:
+            cnt = np.bincount(codes, minlength=size)
+            new = np.flatnonzero((cnt > 0) & (self._d_cnt == 0))
+        else:
+            uniq, inv = np.unique(codes, return_inverse=True)
+            cnt = np.bincount(inv, minlength=len(uniq))
+            new = uniq[self._d_cnt[uniq] == 0]
+        if len(new):
+            # first row of each new edge (in this call's order), as the sparse path keeps
+            if len(new) <= 4:
+                rows = [int(np.argmax(codes == u)) for u in new.tolist()]
+            else:
+                first_row = np.full(size, len(codes), dtype=np.int64)
+                fresh = np.zeros(size, dtype=bool)
+                fresh[new] = True
+                cand = np.flatnonzero(fresh[codes])
+                np.minimum.at(first_row, codes[cand], cand)
+                rows = first_row[new].tolist()
+            m = int(_M)
+            for u, i in zip(new.tolist(), rows):
+                ca, cb = divmod(u, side)
+                self._first[ca * m + cb] = (int(srcs[i]), int(line[i]), int(sess[i]))
+        # a gap that is not finite adds 0.0 to the sum (which leaves it as it is) and
+        # is not counted
+        weights = gaps if all_fin else np.where(fin, gaps, 0.0)
+        if dense:
+            self._d_cnt += cnt
+            self._d_gsum += np.bincount(codes, weights=weights, minlength=size)
+            self._d_gn += cnt if all_fin else cnt - np.bincount(codes[~fin], minlength=size)
+        else:
+            self._d_cnt[uniq] += cnt
+            self._d_gsum[uniq] += np.bincount(inv, weights=weights, minlength=len(uniq))
+            self._d_gn[uniq] += cnt if all_fin else cnt - np.bincount(inv[~fin], minlength=len(uniq))
+
+    def _to_sparse(self) -> None:
+        """Move the totals from the dense tables to the sorted sparse arrays."""
+        if self._sparse:
+            return
+        self._sparse = True
+        if self._dense_k:
+            nz = np.flatnonzero(self._d_cnt)
+            self._codes = (nz // self._dense_k) * _M + nz % self._dense_k
+            self._cnt = self._d_cnt[nz]
+            self._gsum = self._d_gsum[nz]
+            self._gn = self._d_gn[nz]
+        self._dense_k = 0
+        self._d_cnt = np.zeros(0, dtype=np.int64)
+        self._d_gsum = np.zeros(0, dtype=np.float64)
+        self._d_gn = np.zeros(0, dtype=np.int64)
+
     # -- result -----------------------------------------------------------------------
     def _labels(self) -> list[State]:
         if self.order == 1:
@@ -415,6 +773,7 @@ class SessionCounter:
         return out
 
     def _build(self, open_states: np.ndarray) -> TransitionCounts:
+        self._to_sparse()
         labels = self._labels()
         used = np.zeros(len(labels) + 2, dtype=bool)
         a = self._codes // _M
@@ -446,7 +805,7 @@ class SessionCounter:
             ca, cb = divmod(code, int(_M))
             ka = START if ca == _S else (END if ca == _E else int(remap[ca]))
             kb = START if cb == _S else (END if cb == _E else int(remap[cb]))
-            first_seen[(ka, kb)] = Location(self._sources[src], ln, self._sess_keys[sc])
+            first_seen[(ka, kb)] = Location(self._sources[src], ln, self._keys.key(sc))
         meta = {
             "order": self.order,
             "goals": sorted(self.goals),
@@ -454,7 +813,7 @@ class SessionCounter:
             "collapse_repeats": self.collapse,
             "inactivity_gap_s": self.gap,
             "events_dropped_by_mapping": self.dropped,
-            "session_keys": len(self._sess_keys),
+            "session_keys": len(self._keys),
         }
         return TransitionCounts(
             states, counts, starts, ends, opened, gap_sum, gap_n,

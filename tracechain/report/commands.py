@@ -360,32 +360,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Like ``tracechain.cli.main``, with ``report`` and ``compare`` available."""
-    import warnings
+    """The command line (``report`` and ``compare`` are wired into ``tracechain.cli``)."""
+    from ..cli import main as cli_main
 
-    from ..cli import EXIT_ERROR, EXIT_INTERRUPTED, EXIT_OK
-    from ..errors import TracechainError
-    from ..ingest.sources import cleanup_spooled
-
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if not getattr(args, "handler", None):
-        parser.print_help(sys.stderr)
-        return EXIT_ERROR
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("default")
-            return args.handler(args)
-    except TracechainError as err:
-        print(f"tracechain: error: {err}", file=sys.stderr)
-        return err.exit_status
-    except KeyboardInterrupt:
-        print("tracechain: interrupted", file=sys.stderr)
-        return EXIT_INTERRUPTED
-    except BrokenPipeError:
-        return EXIT_OK
-    finally:
-        cleanup_spooled()
+    return cli_main(argv)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -15,10 +15,14 @@ own memory does not leak into the children's figures.
 What is measured, per process:
 
 * seconds: wall time inside the child from just before reading to the finished counts
-  (interpreter start-up and imports excluded; both tools are timed the same way);
-  ``wall`` in the table is the whole process for reference;
+  (interpreter start-up and imports excluded, on both sides; everything the call does,
+  such as loading parser plugins, included); ``wall s`` in the table is the whole
+  process and ``cpu s`` its user + system CPU time, for reference;
 * peak MB: the child's peak resident set size, from ``os.wait4`` on that child
   (``ru_maxrss`` of exactly that process, not the maximum over all children).
+
+The file is read once before every measured run, so both tools find it in the page
+cache. ``--repeat N`` keeps the fastest of N runs (and the largest peak).
 
 Cases:
 

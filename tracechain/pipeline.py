@@ -11,8 +11,6 @@ either way; the report notes it.
 
 from __future__ import annotations
 
-import queue
-import threading
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field, replace
 from typing import Any, BinaryIO
@@ -23,7 +21,7 @@ from .events import EventChunk, ParseReport
 from .ingest.base import ReadOptions
 from .ingest.fields import FieldSpec
 from .ingest.registry import detect_parser, get_parser
-from .ingest.sources import Source, expand_sources
+from .ingest.sources import Source, expand_sources, read_ahead
 from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
@@ -95,69 +93,6 @@ def count_chunks(chunks: Iterable[EventChunk], shape: ShapeOptions | None = None
     return counter.finish(finish_session, cases=shape.cases)
 
 
-def _read_ahead(chunks: Iterable[EventChunk]) -> Iterator[EventChunk]:
-    """The chunks of ``chunks``, each read in a background thread while the one
-    before it is counted.
-
-    Arrow parses with the GIL released, so reading the next block overlaps with
-    counting the current one. The reader starts on a chunk only once the previous one
-    has been taken, so at most two chunks are in memory. Chunks and errors arrive in
-    the order the parser yields or raises them. When the consumer stops early (an
-    error, or a session out of time order), the reader is stopped and closed before
-    this returns.
-    """
-    it = iter(chunks)
-    q: queue.Queue = queue.Queue(maxsize=1)
-    taken = threading.Semaphore(0)
-    stop = threading.Event()
-
-    def hand_over(item: tuple) -> bool:
-        """Put ``item`` in the queue and wait until the consumer has taken it."""
-        while not stop.is_set():
-            try:
-                q.put(item, timeout=0.05)
-                break
-            except queue.Full:
-                continue
-        else:
-            return False
-        while not stop.is_set():
-            if taken.acquire(timeout=0.05):
-                return True
-        return False
-
-    def work() -> None:
-        try:
-            for chunk in it:
-                if not hand_over((True, chunk)):
-                    return
-                del chunk
-        except BaseException as err:  # handed to the consumer, raised there
-            hand_over((False, err))
-            return
-        hand_over((True, _DONE))
-
-    thread = threading.Thread(target=work, name="tracechain-read-ahead", daemon=True)
-    thread.start()
-    try:
-        while True:
-            ok, item = q.get()
-            taken.release()
-            if not ok:
-                raise item
-            if item is _DONE:
-                return
-            yield item
-            del item
-    finally:
-        stop.set()
-        thread.join()
-        close = getattr(it, "close", None)
-        if close is not None:
-            close()
-
-
-_DONE = object()
 
 
 def count_sources(
@@ -199,7 +134,7 @@ def count_sources(
             if parser.kind == "counts":
                 pre = pre + parser.read_counts(src, options, report)
                 continue
-            for chunk in _read_ahead(parser.read(src, options, report)):
+            for chunk in read_ahead(parser.read(src, options, report)):
                 any_events = True
                 counter.add(chunk)
         counts = counter.finish(finish_session, cases=shape.cases) if any_events else TransitionCounts.empty()

@@ -21,7 +21,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
-from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, peek
+from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, peek
 from .tabular import table_to_chunk
 
 __all__ = ["CsvParser", "read_header"]
@@ -71,7 +71,7 @@ class CsvParser:
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         report.lines_read += 1  # the header
         time_type: pa.DataType | None = None  # the time column's type, once Arrow has inferred it
-        for block, first_line, newlines in iter_line_blocks_counted(source, block_bytes, skip_lines=1):
+        for block, first_line, newlines in read_ahead(iter_line_blocks_counted(source, block_bytes, skip_lines=1)):
             nlines = newlines + (0 if block.endswith(b"\n") else 1)
             report.lines_read += nlines
             table = None

@@ -22,7 +22,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
-from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, text_lines
+from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, text_lines
 from .tabular import table_to_chunk
 
 __all__ = ["JsonLinesParser"]
@@ -77,7 +77,7 @@ class JsonLinesParser:
         names: tuple[str, str | None, str] | None = None
         schema: pa.Schema | None = None
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
-        for block, first_line, newlines in iter_line_blocks_counted(source, block_bytes):
+        for block, first_line, newlines in read_ahead(iter_line_blocks_counted(source, block_bytes)):
             nlines = newlines + (0 if block.endswith(b"\n") else 1)
             report.lines_read += nlines
             table = None

@@ -14,21 +14,25 @@ import gzip
 import io
 import lzma
 import os
+import queue
 import shutil
 import sys
 import tempfile
-from collections.abc import Iterator
+import threading
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
-from typing import BinaryIO
+from typing import BinaryIO, TypeVar
 
 import numpy as np
 
 from ..errors import IngestError, UsageError
 
-__all__ = ["Source", "expand_sources", "open_binary", "iter_line_blocks", "peek"]
+__all__ = ["Source", "expand_sources", "open_binary", "iter_line_blocks", "peek", "read_ahead"]
 
 #: Bytes read per block; blocks end on a line boundary.
 BLOCK_BYTES = 1 << 24
+
+T = TypeVar("T")
 
 _MAGIC = {
     b"\x1f\x8b": gzip.open,
@@ -131,59 +135,134 @@ def iter_line_blocks(
     dropped (for a header already consumed).
     """
     for block, line_no, _ in iter_line_blocks_counted(source, block_bytes, skip_lines):
-        yield block, line_no
+        yield bytes(block), line_no
 
 
-def count_newlines(block: bytes) -> int:
+def count_newlines(block: bytes | bytearray) -> int:
     """The number of ``\n`` bytes in ``block`` (vectorised; releases the GIL)."""
     return int(np.count_nonzero(np.frombuffer(block, dtype=np.uint8) == 10))
 
 
+def _read_into(f: BinaryIO, view: memoryview) -> int:
+    """Fill ``view`` from ``f`` as ``f.read(len(view))`` would; return the bytes read."""
+    got = 0
+    while got < len(view):
+        n = f.readinto(view[got:])
+        if not n:
+            break
+        got += n
+    return got
+
+
 def iter_line_blocks_counted(
     source: Source, block_bytes: int = BLOCK_BYTES, skip_lines: int = 0
-) -> Iterator[tuple[bytes, int, int]]:
+) -> Iterator[tuple[bytearray, int, int]]:
     """As :func:`iter_line_blocks`, with the number of newlines in each block as well:
-    ``(block, first_line_number, newlines)``."""
+    ``(block, first_line_number, newlines)``; the blocks are the same, as bytearrays
+    read straight from the file (no copy of a whole block is made)."""
     with open_binary(source) as f:
         line_no = 1
         rest = b""
         first = True
         while True:
+            buf = bytearray(len(rest) + block_bytes)
+            buf[: len(rest)] = rest
             try:
-                data = f.read(block_bytes)
+                got = _read_into(f, memoryview(buf)[len(rest):])
             except (OSError, EOFError, lzma.LZMAError) as err:
                 raise IngestError(f"cannot decompress: {err}", source.name, line_no) from err
-            if not data:
+            if not got:
                 break
+            if got < block_bytes:
+                del buf[len(rest) + got :]
             if first:
-                data = rest + data
-                rest = b""
-                if data.startswith(b"\xef\xbb\xbf"):
-                    data = data[3:]
+                if buf.startswith(b"\xef\xbb\xbf"):
+                    del buf[:3]
                 first = False
-                while skip_lines and data:
-                    nl = data.find(b"\n")
+                while skip_lines and buf:
+                    nl = buf.find(b"\n")
                     if nl < 0:
                         break
-                    data = data[nl + 1 :]
+                    del buf[: nl + 1]
                     line_no += 1
                     skip_lines -= 1
-            # ``rest`` holds no newline, so the last one of rest + data is in data
-            cut = data.rfind(b"\n")
+            cut = buf.rfind(b"\n")
             if cut < 0:
-                rest = rest + data
+                rest = bytes(buf)
                 continue
-            if rest or cut + 1 < len(data):
-                block = b"".join((rest, memoryview(data)[: cut + 1]))
-                rest = data[cut + 1 :]
-            else:
-                block = data
-            del data
-            newlines = count_newlines(block)
-            yield block, line_no, newlines
+            rest = bytes(buf[cut + 1 :])
+            del buf[cut + 1 :]
+            newlines = count_newlines(buf)
+            yield buf, line_no, newlines
+            del buf
             line_no += newlines
         if rest:
-            yield rest, line_no, count_newlines(rest)
+            yield bytearray(rest), line_no, count_newlines(rest)
+
+
+def read_ahead(items: Iterable[T]) -> Iterator[T]:
+    """The items of ``items``, each made in a background thread while the consumer
+    works on the one before it.
+
+    Reading, numpy and Arrow release the GIL, so making the next item (a block read
+    from disk, a block parsed into a chunk) overlaps with using the current one. The
+    producer starts on an item only once the previous one has been taken, so at most
+    two are in memory. Items and errors arrive in the order the iterator yields or
+    raises them. When the consumer stops early (an error, or a session out of time
+    order), the producer is stopped, and the iterator closed, before this returns.
+    """
+    it = iter(items)
+    q: queue.Queue = queue.Queue(maxsize=1)
+    taken = threading.Semaphore(0)
+    stop = threading.Event()
+
+    def hand_over(item: tuple) -> bool:
+        """Put ``item`` in the queue and wait until the consumer has taken it."""
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.05)
+                break
+            except queue.Full:
+                continue
+        else:
+            return False
+        while not stop.is_set():
+            if taken.acquire(timeout=0.05):
+                return True
+        return False
+
+    def work() -> None:
+        try:
+            for item in it:
+                if not hand_over((True, item)):
+                    return
+                del item
+        except BaseException as err:  # handed to the consumer, raised there
+            hand_over((False, err))
+            return
+        hand_over((True, _DONE))
+
+    thread = threading.Thread(target=work, name="tracechain-read-ahead", daemon=True)
+    thread.start()
+    try:
+        while True:
+            ok, item = q.get()
+            taken.release()
+            if not ok:
+                raise item
+            if item is _DONE:
+                return
+            yield item
+            del item
+    finally:
+        stop.set()
+        thread.join()
+        close = getattr(it, "close", None)
+        if close is not None:
+            close()
+
+
+_DONE = object()
 
 
 def text_lines(block: bytes) -> list[bytes]:

@@ -476,8 +476,67 @@ class NewTransitionRule(Rule):
                         transition=(a, b), location=loc, properties={"count": n})
 
 
+class RegressionRule(Rule):
+    id = "TC110-significant-regression"
+    kind = "no-regression"
+    short_description = "A significant change against the baseline snapshot."
+    full_description = (
+        "The traces are compared with the baseline snapshot's counts by the compare test "
+        "(tracechain.analyze.compare): a per-state chi-square test of homogeneity of the outgoing "
+        "transitions with Benjamini-Hochberg control of the false discovery rate 'fdr' across states, "
+        "and the change in conversion from the start with a Dirichlet-posterior interval. A state whose "
+        "exits changed significantly is a finding; so is a drop in conversion whose interval lies "
+        "entirely below zero."
+    )
+    help = "Parameters: fdr (default 0.05), level (default 0.95), seed (default 0). Needs --baseline or 'baseline:'."
+    default_severity = "error"
+    needs_baseline = True
+
+    def configure(self, params: Params):
+        return {
+            "fdr": params.number("fdr", 0.05, minimum=1e-9),
+            "level": params.number("level", 0.95, minimum=1e-9),
+            "seed": params.number("seed", 0, minimum=0, integer=True),
+        }
+
+    def evaluate(self, ctx, options):
+        from ..analyze.compare import compare_counts
+        from ..counts import END as _END
+        from ..counts import START as _START
+        from ..counts import TransitionCounts
+
+        edges = {}
+        for (a, b), n in ctx.baseline.counts.items():
+            key = (_START if a == START_NAME else a, _END if b == END_NAME else b)
+            edges[key] = edges.get(key, 0) + int(n)
+        base = TransitionCounts.from_edges(edges, _START, _END)
+        goals = [g for g in ctx.goals if g not in ctx.missing_goals]
+        cmp = compare_counts(base, ctx.counts, goals=goals, names=("baseline", "traces"), fdr=options["fdr"],
+                             level=options["level"], seed=int(options["seed"]), draws=400)
+        for t in cmp.tests:
+            if t.significant:
+                idx = ctx.resolve(t.label)
+                loc = ctx.state_location(idx) if idx is not None and hasattr(ctx, "state_location") else None
+                yield Issue(
+                    f"the exits of {t.label!r} changed significantly against the baseline "
+                    f"(chi-square {t.statistic:.1f}, df {t.df}, q = {t.q_value:.3g}; "
+                    f"{t.n_a} exits in the baseline, {t.n_b} now)",
+                    states=(t.label,), location=loc,
+                    properties={"statistic": t.statistic, "df": t.df, "p_value": t.p_value, "q_value": t.q_value},
+                )
+        c = cmp.conversion
+        if c is not None and c.diff is not None and c.diff_high is not None and c.diff_high < 0:
+            yield Issue(
+                f"conversion from the start fell from {100 * c.a:.1f}% to {100 * c.b:.1f}% "
+                f"(change {100 * c.diff:.1f} points, {100 * options['level']:g}% interval "
+                f"{100 * c.diff_low:.1f} to {100 * c.diff_high:.1f})",
+                states=(START_NAME,), key="conversion-from-start",
+                properties={"baseline": c.a, "now": c.b, "change": c.diff},
+            )
+
+
 _BUILTIN_CLASSES = (DeadEndRule, GoalReachableRule, ConversionFloorRule, StepsCeilingRule, TrapRule,
-                    AllowedTransitionsRule, OpenShareRule, NewStateRule, NewTransitionRule)
+                    AllowedTransitionsRule, OpenShareRule, NewStateRule, NewTransitionRule, RegressionRule)
 
 
 def builtin_rules() -> dict[str, Any]:

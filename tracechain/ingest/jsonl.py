@@ -172,7 +172,13 @@ def _fast_parse(block: bytes, schema: pa.Schema | None, unexpected: str = "ignor
 
 
 def _scalar(v):
-    if v is None or isinstance(v, (str, int, float, bool)):
+    if isinstance(v, str):
+        try:
+            v.encode("utf-8")
+        except UnicodeEncodeError:  # a lone surrogate escaped in the JSON ("\ud800"): not UTF-8 text
+            return v.encode("utf-8", "replace").decode("utf-8")  # shown as "?"
+        return v
+    if v is None or isinstance(v, (int, float, bool)):
         return v
     return _Nested()
 

@@ -566,11 +566,6 @@ def test_jsonl_strict_names_the_earliest_of_two_field_problems(tmp_path):
     assert "unreadable time" in str(info.value)
 
 
-@pytest.mark.xfail(
-    reason="jsonl.py: Arrow's JSON reader reads integers beyond int64 as float64, so distinct "
-    "20-digit ids collapse into one session",
-    strict=True,
-)
 def test_jsonl_distinct_ids_beyond_int64_stay_distinct(tmp_path):
     # RFC 8259 section 6 lets parsers limit number range, but silently merging two
     # visits is worse than keeping the digits as text (common practice, no source).

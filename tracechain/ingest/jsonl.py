@@ -227,7 +227,7 @@ def _slow_parse(
                 out.append(v if text_needed or isinstance(v, str) else v)
         try:
             cols[k] = pa.array(out)
-        except (pa.ArrowInvalid, pa.ArrowTypeError):
+        except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
             cols[k] = pa.array([None if v is None else str(v) for v in out], type=pa.string())
     return cols, np.asarray(line_nos, dtype=np.int64), list(keys)
 

@@ -72,6 +72,13 @@ def run_cli(capsys):
     return run
 
 
+def run_command(argv) -> int:
+    """Run a tracechain subcommand through the command line's ``main`` (its exit status)."""
+    from tracechain.cli import main
+
+    return main([str(a) for a in argv])
+
+
 def absorbing_walk(n_states: int, p: float) -> np.ndarray:
     """Random walk on {0, ..., n_states-1}: up with probability p, down with 1-p; both ends absorbing."""
     P = np.zeros((n_states, n_states))

@@ -11,7 +11,6 @@ All data are invented.
 
 from __future__ import annotations
 
-import argparse
 import bisect
 import math
 from collections import Counter
@@ -20,34 +19,16 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from conftest import sessions_to_rows, write_jsonl
+from conftest import run_command, sessions_to_rows, write_jsonl
 from tracechain.analyze.order import order_table, session_sequences
 from tracechain.chain import Chain
-from tracechain.errors import AnalysisError, TracechainError
+from tracechain.errors import AnalysisError
 from tracechain.events import EventChunk
 from tracechain.pipeline import ShapeOptions, count_chunks
 from tracechain.shape.mapping import Mapping
 
 
 # -- helpers ------------------------------------------------------------------------------
-def run_command(argv):
-    """Run a tracechain subcommand, registering the extended commands if the CLI lacks them."""
-    from tracechain import cli
-    from tracechain.analyze.commands import register
-
-    parser = cli.build_parser()
-    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-    if argv[0] in sub.choices:
-        return cli.main([str(a) for a in argv])
-    register(sub)
-    args = parser.parse_args([str(a) for a in argv])
-    try:
-        return args.handler(args)
-    except TracechainError as err:
-        import sys
-
-        print(f"tracechain: error: {err}", file=sys.stderr)
-        return err.exit_status
 
 
 def chunk_of(sessions: dict[str, list[str]], times: dict[str, list[float]] | None = None) -> EventChunk:

@@ -6,39 +6,20 @@ are checked with Python's own ISO 8601 parser (datetime.fromisoformat). Invented
 
 from __future__ import annotations
 
-import argparse
 import json
 from datetime import datetime
 
 import numpy as np
 import pytest
 
-from conftest import sessions_to_rows, write_jsonl
+from conftest import run_command, sessions_to_rows, write_jsonl
 from tracechain.analyze.simulate import simulate, to_jsonl, write_jsonl as write_sim
 from tracechain.chain import Chain
 from tracechain.counts import END, START, TransitionCounts
-from tracechain.errors import AnalysisError, TracechainError
+from tracechain.errors import AnalysisError
 from tracechain.pipeline import ShapeOptions, count_chunks, count_sources
 
 
-def run_command(argv):
-    """Run a tracechain subcommand, registering the extended commands if the CLI lacks them."""
-    from tracechain import cli
-    from tracechain.analyze.commands import register
-
-    parser = cli.build_parser()
-    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-    if argv[0] in sub.choices:
-        return cli.main([str(a) for a in argv])
-    register(sub)
-    args = parser.parse_args([str(a) for a in argv])
-    try:
-        return args.handler(args)
-    except TracechainError as err:
-        import sys
-
-        print(f"tracechain: error: {err}", file=sys.stderr)
-        return err.exit_status
 
 
 EDGES = {(START, "Home"): 70, (START, "Search"): 30, ("Home", "Search"): 20, ("Home", "Item"): 50, ("Home", END): 30,

@@ -6,37 +6,18 @@ Invented chains and logs.
 
 from __future__ import annotations
 
-import argparse
 
 import numpy as np
 import pytest
 
-from conftest import sessions_to_rows, write_jsonl
+from conftest import run_command, sessions_to_rows, write_jsonl
 from tracechain.analyze.attribution import removal_effects
 from tracechain.analyze.whatif import FixDeadEnd, Redirect, RemoveEdge, RemoveState, apply_edits, what_if
 from tracechain.chain import Chain
 from tracechain.counts import END, START, TransitionCounts
-from tracechain.errors import AnalysisError, TracechainError
+from tracechain.errors import AnalysisError
 
 
-def run_command(argv):
-    """Run a tracechain subcommand, registering the extended commands if the CLI lacks them."""
-    from tracechain import cli
-    from tracechain.analyze.commands import register
-
-    parser = cli.build_parser()
-    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-    if argv[0] in sub.choices:
-        return cli.main([str(a) for a in argv])
-    register(sub)
-    args = parser.parse_args([str(a) for a in argv])
-    try:
-        return args.handler(args)
-    except TracechainError as err:
-        import sys
-
-        print(f"tracechain: error: {err}", file=sys.stderr)
-        return err.exit_status
 
 
 def hand_chain(extra: dict | None = None):

@@ -25,6 +25,7 @@ from pathlib import Path
 
 import pytest
 
+from tracechain.errors import PluginError
 from tracechain.ingest.registry import ENTRY_POINT_GROUP, available_parsers, detect_parser, get_parser
 from tracechain.ingest.sources import Source
 from tracechain.pipeline import count_sources
@@ -233,5 +234,22 @@ def test_a_plugin_that_fails_to_import_is_named_in_a_warning_not_a_traceback(pip
     # naming the broken format itself: an error on one line, exit status 2
     done = run_tracechain([pip_site, broken], "analyze", "visits.log", "--format", "broken", cwd=tmp_path)
     assert done.returncode == 2 and "Traceback" not in done.stderr
-    assert "parser plugin 'broken'" in done.stderr
+    assert "format 'broken' is unavailable: parser plugin 'broken'" in done.stderr
     assert done.stderr.splitlines()[-1].startswith("tracechain: error: ")
+
+
+def test_a_plugin_that_exits_while_imported_is_skipped_with_its_name(site, tmp_path):
+    # a module raising SystemExit on import (as some scripts do when a dependency is missing)
+    install(site, "tracechain-exiting-plugin", "0.2.0", {"exiting": "tracechain_exiting_plugin:Parser"},
+            {"tracechain_exiting_plugin": "raise SystemExit('needs a library that is not installed')\n"})
+    importlib.invalidate_caches()
+    with pytest.warns(UserWarning) as caught:
+        names = set(available_parsers())
+    assert "pipes" in names and "exiting" not in names
+    (text,) = [str(w.message) for w in caught if "exiting" in str(w.message)]
+    assert text == ("parser plugin 'exiting' (tracechain_exiting_plugin:Parser, from the distribution "
+                    "tracechain-exiting-plugin 0.2.0) could not be loaded: "
+                    "SystemExit: needs a library that is not installed")
+    with pytest.warns(UserWarning), pytest.raises(PluginError, match=r"format 'exiting' is unavailable: "
+                                                                      r"parser plugin 'exiting' \("):
+        get_parser("exiting")

@@ -7,7 +7,9 @@ A distribution adds a format by declaring, in its ``pyproject.toml``::
 
 The object named may be a parser instance or a class taking no arguments; it must
 follow :mod:`tracechain.ingest.base`. A plugin that cannot be loaded or does not
-follow the contract is skipped with a warning, never fatal. Built-in parsers are
+follow the contract is skipped with a warning naming it and its distribution, never
+fatal (also when its import raises ``SystemExit``); asking for its format with
+``--format`` is then an error saying why it is unavailable. Built-in parsers are
 registered in the same group by tracechain's own ``pyproject.toml``; they are also
 known without installation metadata so a source checkout works.
 """
@@ -72,9 +74,19 @@ def _valid(obj: Any) -> bool:
     return False
 
 
-def available_parsers() -> dict[str, Any]:
-    """All parsers by name: built-ins, then plugins (a plugin may not replace a built-in)."""
+def _origin(ep: Any) -> str:
+    """``module:attr`` of an entry point and, where known, the distribution declaring it."""
+    try:
+        dist = ep.dist
+        return f"{ep.value}, from the distribution {dist.metadata['Name']} {dist.version}"
+    except Exception:  # no or incomplete metadata: the entry point alone still names it
+        return ep.value
+
+
+def _discover() -> tuple[dict[str, Any], dict[str, str]]:
+    """Parsers by name, and why each plugin entry point that failed to load did."""
     found = _builtins()
+    failed: dict[str, str] = {}
     for ep in entry_points(group=ENTRY_POINT_GROUP):
         if ep.value.startswith("tracechain.") and (
             ep.name in found or any(ep.value.startswith(m + ":") for m, _ in OPTIONAL_BUILTINS)
@@ -84,23 +96,33 @@ def available_parsers() -> dict[str, Any]:
             obj = ep.load()
             if isinstance(obj, type):
                 obj = obj()
-        except Exception as err:  # a broken plugin must not stop the tool
-            warnings.warn(f"parser plugin {ep.name!r} ({ep.value}) could not be loaded: {err}", stacklevel=2)
+        except (Exception, SystemExit) as err:  # a broken plugin must not stop the tool
+            reason = f"{type(err).__name__}: {err}" if str(err) else type(err).__name__
+            failed[ep.name] = f"parser plugin {ep.name!r} ({_origin(ep)}) could not be loaded: {reason}"
+            warnings.warn(failed[ep.name], stacklevel=3)
             continue
         if not _valid(obj):
-            warnings.warn(f"parser plugin {ep.name!r} ({ep.value}) does not follow the parser contract; skipped",
-                          stacklevel=2)
+            failed[ep.name] = f"parser plugin {ep.name!r} ({_origin(ep)}) does not follow the parser contract"
+            warnings.warn(failed[ep.name] + "; skipped", stacklevel=3)
             continue
         if obj.name in found:
-            warnings.warn(f"parser plugin {ep.name!r} uses the taken name {obj.name!r}; skipped", stacklevel=2)
+            warnings.warn(f"parser plugin {ep.name!r} ({_origin(ep)}) uses the taken name {obj.name!r}; skipped",
+                          stacklevel=3)
             continue
         found[obj.name] = obj
-    return found
+    return found, failed
+
+
+def available_parsers() -> dict[str, Any]:
+    """All parsers by name: built-ins, then plugins (a plugin may not replace a built-in)."""
+    return _discover()[0]
 
 
 def get_parser(name: str) -> Any:
-    parsers = available_parsers()
+    parsers, failed = _discover()
     if name not in parsers:
+        if name in failed:
+            raise PluginError(f"format {name!r} is unavailable: {failed[name]}")
         raise UsageError(f"unknown format {name!r}; known formats: {', '.join(sorted(parsers))}")
     return parsers[name]
 

@@ -132,7 +132,8 @@ def iter_line_blocks(
     """Yield ``(block, first_line_number)`` with each block ending on a newline.
 
     The final block may lack a trailing newline. ``skip_lines`` leading lines are
-    dropped (for a header already consumed).
+    dropped (for a header already consumed), whatever the block size; the line
+    numbers count them. A UTF-8 byte order mark at the start is dropped.
     """
     for block, line_no, _ in iter_line_blocks_counted(source, block_bytes, skip_lines):
         yield bytes(block), line_no
@@ -163,7 +164,7 @@ def iter_line_blocks_counted(
     with open_binary(source) as f:
         line_no = 1
         rest = b""
-        first = True
+        bom_pending = True  # a byte order mark may still be split over the first reads
         while True:
             buf = bytearray(len(rest) + block_bytes)
             buf[: len(rest)] = rest
@@ -173,19 +174,24 @@ def iter_line_blocks_counted(
                 raise IngestError(f"cannot decompress: {err}", source.name, line_no) from err
             if not got:
                 break
-            if got < block_bytes:
+            at_end = got < block_bytes  # _read_into stops short only at the end of the stream
+            if at_end:
                 del buf[len(rest) + got :]
-            if first:
-                if buf.startswith(b"\xef\xbb\xbf"):
-                    del buf[:3]
-                first = False
-                while skip_lines and buf:
-                    nl = buf.find(b"\n")
-                    if nl < 0:
-                        break
-                    del buf[: nl + 1]
-                    line_no += 1
-                    skip_lines -= 1
+            if bom_pending:
+                if not at_end and len(buf) < len(_BOM) and _BOM.startswith(buf):
+                    rest = bytes(buf)  # too few bytes yet to tell
+                    continue
+                if buf.startswith(_BOM):
+                    del buf[: len(_BOM)]
+                bom_pending = False
+            # the skipped lines are the first complete lines, however many reads they span
+            while skip_lines and buf:
+                nl = buf.find(b"\n")
+                if nl < 0:
+                    break
+                del buf[: nl + 1]
+                line_no += 1
+                skip_lines -= 1
             cut = buf.rfind(b"\n")
             if cut < 0:
                 rest = bytes(buf)
@@ -196,8 +202,12 @@ def iter_line_blocks_counted(
             yield buf, line_no, newlines
             del buf
             line_no += newlines
-        if rest:
+        if rest and not skip_lines:
+            # (a last line with no newline that is still to be skipped is dropped too)
             yield bytearray(rest), line_no, count_newlines(rest)
+
+
+_BOM = b"\xef\xbb\xbf"
 
 
 def read_ahead(items: Iterable[T]) -> Iterator[T]:

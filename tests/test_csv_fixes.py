@@ -1,4 +1,5 @@
-"""CSV reading fixes: the header skipped whatever the block size.
+"""CSV reading fixes: the header skipped whatever the block size, strict mode naming
+the earliest problem, nothing lost after a row the csv module refuses.
 
 Every log here is invented. Expected counts and line numbers are worked out by hand
 next to each log; format facts cite RFC 4180 (from memory, no copy kept here) or are
@@ -7,9 +8,12 @@ marked "common practice, no source".
 
 from __future__ import annotations
 
+import csv
+from collections import Counter
+
 import pytest
 
-from tracechain.errors import IngestError
+from tracechain.errors import EmptyInputError, IngestError
 from tracechain.ingest.sources import Source, iter_line_blocks, iter_line_blocks_counted
 from tracechain.pipeline import count_sources
 
@@ -110,8 +114,6 @@ def test_tiny_blocks_in_strict_mode_name_the_same_line(tmp_path, block_bytes):
 @pytest.mark.parametrize("block_bytes", TINY_BLOCKS)
 def test_tiny_blocks_with_a_header_only_file_without_newline(tmp_path, block_bytes):
     # the header is the only line and has no line break: no record is read from it
-    from tracechain.errors import EmptyInputError
-
     path = write(tmp_path / "empty.csv", ["session,time,event"], final_newline=False)
     with pytest.raises(EmptyInputError):
         count_sources([path], extra={"block_bytes": block_bytes})
@@ -153,3 +155,48 @@ def test_line_blocks_number_lines_as_splitting_the_whole_file_does(tmp_path, raw
     assert got == want
     plain = [(first, bytes(b)) for b, first in iter_line_blocks(src, block_bytes, skip_lines=skip)]
     assert all(isinstance(b, bytes) for _, b in plain)
+
+
+# --- strict mode names the earliest problem, whatever its kind ----------------------
+
+
+@pytest.mark.parametrize("block_bytes", [None, 1, 16])
+@pytest.mark.parametrize(
+    "lines,line,needle",
+    [
+        # a field problem (line 3) before a row problem (line 4)
+        (["session,time,event", "s1,0,home", ",1,item", "s1,2,x,y"], 3, "missing session"),
+        # a row problem (line 3) before a field problem (line 4)
+        (["session,time,event", "s1,0,home", "s1,1,x,y", ",2,item"], 3, "wrong number of fields"),
+        # an unreadable time (line 2) before a blank line (line 3)
+        (["session,time,event", "s1,later,home", "", "s1,2,item"], 2, "unreadable time"),
+        # a blank line (line 3) before an unreadable time (line 4)
+        (["session,time,event", "s1,0,home", "", "s1,later,item"], 3, "blank line"),
+    ],
+)
+def test_strict_names_the_earliest_problem_in_line_order(tmp_path, lines, line, needle, block_bytes):
+    path = write(tmp_path / "two-problems.csv", lines)
+    extra = {} if block_bytes is None else {"block_bytes": block_bytes}
+    with pytest.raises(IngestError) as info:
+        count_sources([path], strict=True, extra=extra)
+    assert info.value.line == line
+    assert needle in str(info.value)
+    assert path in str(info.value)
+    # without strict mode both problems are counted and the good rows are kept
+    _, report = count_sources([path], extra=extra)
+    assert sum(report.skipped.values()) == 2
+
+
+def test_nothing_is_lost_after_a_row_the_csv_module_refuses(tmp_path):
+    # a field beyond the csv module's field size limit (line 3) in a block that also
+    # has a row with too many fields (line 5): both are reported, lines 4 and 6 kept
+    big = "x" * (csv.field_size_limit() + 10)
+    lines = ["session,time,event", "s1,0,home", f"s1,1,{big}", "s1,2,item", "s1,3,x,y", "s1,4,buy"]
+    path = write(tmp_path / "huge.csv", lines)
+    counts, report = count_sources([path])
+    assert report.skipped == Counter({"malformed CSV": 1, "wrong number of fields": 1})
+    assert problems(report) == [(3, "malformed CSV"), (5, "wrong number of fields")]
+    assert counts.to_edges() == {("[start]", "home"): 1, ("home", "item"): 1, ("item", "buy"): 1, ("buy", "[end]"): 1}
+    with pytest.raises(IngestError) as info:
+        count_sources([path], strict=True)
+    assert info.value.line == 3

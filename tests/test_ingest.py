@@ -715,11 +715,6 @@ def test_csv_missing_session_value_skipped_with_line(tmp_path):
     assert counts.to_edges() == {("home", "buy"): 1, ("[start]", "home"): 1, ("buy", "[end]"): 1}
 
 
-@pytest.mark.xfail(
-    reason="csvlog.py: strict mode raises for a row with the wrong number of fields (line 4) before "
-    "the field checks of earlier rows (missing session, line 3) run",
-    strict=True,
-)
 def test_csv_strict_names_the_earliest_problem_of_mixed_kinds(tmp_path):
     path = tmp_path / "two-problems.csv"
     path.write_text("session,time,event\ns1,0,home\n,1,item\ns1,2,x,y\n", encoding="utf-8")

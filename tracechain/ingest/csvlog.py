@@ -82,12 +82,17 @@ class CsvParser:
                 table = _fast_parse(block, header, delim, wanted, names)
                 if table is not None and names[1] is not None and time_type is None:
                     time_type = _known_type(table.schema.field(names[1]).type)
+            pending = None  # strict mode: a bad row, raised once the rows before it are checked
             if table is not None and table.num_rows == nlines:
                 cols = {c: table.column(c) for c in wanted}
                 lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
             else:
-                cols, lines = _slow_parse(block, first_line, header, delim, wanted, source.name, report, options.strict)
+                cols, lines, pending = _slow_parse(
+                    block, first_line, header, delim, wanted, source.name, report, options.strict
+                )
             chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
+            if pending is not None:
+                raise pending
             del block, table, cols, lines  # not kept alive while the chunk is counted
             if chunk is not None:
                 yield chunk
@@ -135,32 +140,51 @@ def _fast_parse(
 
 
 def _slow_parse(block, first_line, header, delim, wanted, name, report: ParseReport, strict):
+    """Parse a block row by row; rows that are not records are reported by line.
+
+    Returns the wanted columns of the good rows, their line numbers, and in strict
+    mode the error for the first bad row (None if there is none). That error is not
+    raised here: the good rows before it still go through the field checks, which
+    name an earlier line if one of them fails, so that strict mode always names the
+    earliest problem of the block, whatever its kind. Rows after it are not read.
+    """
     idx = [header.index(w) for w in wanted]
     out: dict[str, list] = {w: [] for w in wanted}
     line_nos: list[int] = []
     text = block.decode("utf-8", errors="replace")
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delim)
     prev_end = 0
-    try:
-        for row in reader:
-            ln = first_line + prev_end
+    pending: IngestError | None = None
+    while True:
+        ln = first_line + prev_end
+        try:
+            row = next(reader)
+        except StopIteration:
+            break
+        except csv.Error as err:
+            # the reader drops the rest of the row and goes on with the next line
+            prev_end = reader.line_num
+            pending = _bad(report, name, ln, "malformed CSV", strict, str(err))
+        else:
             prev_end = reader.line_num
             if not row or all(not c.strip() for c in row):
-                _bad(report, name, ln, "blank line", strict)
-                continue
-            if len(row) != len(header):
-                _bad(report, name, ln, "wrong number of fields", strict, f"{len(row)} fields, header has {len(header)}")
-                continue
-            for w, i in zip(wanted, idx):
-                out[w].append(row[i])
-            line_nos.append(ln)
-    except csv.Error as err:
-        _bad(report, name, first_line + prev_end, "malformed CSV", strict, str(err))
+                pending = _bad(report, name, ln, "blank line", strict)
+            elif len(row) != len(header):
+                detail = f"{len(row)} fields, header has {len(header)}"
+                pending = _bad(report, name, ln, "wrong number of fields", strict, detail)
+            else:
+                for w, i in zip(wanted, idx):
+                    out[w].append(row[i])
+                line_nos.append(ln)
+        if pending is not None:
+            break
     cols = {w: pa.array(v, type=pa.string()) for w, v in out.items()}
-    return cols, np.asarray(line_nos, dtype=np.int64)
+    return cols, np.asarray(line_nos, dtype=np.int64), pending
 
 
-def _bad(report: ParseReport, name: str, line: int, reason: str, strict: bool, detail: str = "") -> None:
+def _bad(report: ParseReport, name: str, line: int, reason: str, strict: bool, detail: str = "") -> IngestError | None:
+    """In strict mode, the error to raise; otherwise the row is counted and reported."""
     if strict:
-        raise IngestError(f"{reason}: {detail}" if detail else reason, name, line)
+        return IngestError(f"{reason}: {detail}" if detail else reason, name, line)
     report.skip(name, line, reason, detail)
+    return None

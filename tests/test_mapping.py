@@ -8,6 +8,7 @@ from memory; no copy of them is kept in this repository.
 from __future__ import annotations
 
 import pytest
+import yaml
 
 from tracechain.errors import ConfigError
 from tracechain.shape.mapping import load_mapping, parse_mapping
@@ -336,3 +337,122 @@ def test_boolean_settings_still_read_as_booleans():
     m = parse_mapping("collapse_repeats: true\nrules:\n  - regex: '^x$'\n    drop: true\n")
     assert m.collapse_repeats is True
     assert m.map("x") is None
+
+
+
+# --- names are the text written, options keep their YAML types ------------------
+#
+# YAML 1.1 resolves plain (unquoted) scalars by their shape: no/yes/on/off in any of the
+# listed capitalisations are booleans (YAML 1.1 type repository, yaml.org/type/bool.html),
+# 0123 is an octal integer, 1_000 and 0x1F integers and 1:30 a base-60 integer
+# (yaml.org/type/int.html), 1.0 and .inf floats (yaml.org/type/float.html), null and ~ the
+# null value (yaml.org/type/null.html) and 2024-01-01 a date (yaml.org/type/timestamp.html);
+# all cited from memory. PyYAML's safe loader implements that, and it is the oracle below that
+# these really are typed. 1e3 stays text in YAML 1.1 (its floats need a '.') but is a float in
+# YAML 1.2's core schema; 2024-13-45 is shaped like a date and PyYAML fails building it.
+TYPED = ["no", "yes", "on", "off", "Yes", "OFF", "1.0", "0123", "1_000", "0x1F", "1:30", ".inf",
+         "2024-01-01", "null", "~"]
+NAMES = [t for t in TYPED if t not in ("null", "~")] + ["1e3", "2024-13-45"]
+
+
+@pytest.mark.parametrize("text", TYPED)
+def test_yaml_1_1_types_these_plain_scalars(text):
+    assert not isinstance(yaml.safe_load(f"k: {text}\n")["k"], str)
+
+
+def test_pyyaml_fails_on_a_date_shaped_plain_scalar_that_is_no_date():
+    with pytest.raises(ValueError):
+        yaml.safe_load("k: 2024-13-45\n")
+
+
+@pytest.mark.parametrize("event", TYPED + ["1e3", "2024-13-45"])
+def test_event_names_are_the_text_written(event):
+    m = parse_mapping(f"rename:\n  {event}: Renamed\n  other: Other\n")
+    assert m.rename == {event: "Renamed", "other": "Other"}
+    assert m.map(event) == "Renamed"
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_state_names_are_the_text_written_everywhere_one_is_read(name):
+    m = parse_mapping(
+        f"""\
+rename:
+  raw: {name}
+rules:
+  - regex: '^r:'
+    state: {name}
+  - path: /p/{{id}}
+    state: {name}
+unmatched: {name}
+goals: [{name}]
+terminal:
+  - {name}
+groups:
+  {name}: {name}
+"""
+    )
+    assert m.rename == {"raw": name}
+    assert [m.map("raw"), m.map("r:1"), m.map("/p/7"), m.map("unlisted")] == [name] * 4
+    assert m.goals == (name,) and m.terminal == (name,)
+    assert m.groups == {name: name}
+    for value in (*m.rename.values(), *m.goals, *m.terminal, *m.groups, *m.groups.values(), m.unmatched):
+        assert type(value) is str
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_regex_and_path_text_are_the_text_written(name):
+    m = parse_mapping(f"rules:\n  - regex: {name}\n    state: Regex\n  - path: {name}\n    state: Path\n")
+    assert m.rules[0].pattern.pattern == name
+    assert m.map(name) == "Regex"  # 0123 is not 83, 1:30 not 90
+    assert parse_mapping(f"rules:\n  - path: {name}\n    state: Path\n").map(name) == "Path"
+
+
+def test_parser_section_values_are_the_text_written():
+    m = parse_mapping("parser:\n  pattern: '^(?P<session>\\S+) (?P<event>\\S+)'\n  time_unit: 1.0\n")
+    assert m.parser["time_unit"] == "1.0"
+
+
+def test_quoted_null_is_the_state_null():
+    m = parse_mapping("rename:\n  a: 'null'\n  b: '~'\ngoals: ['null']\n")
+    assert m.map("a") == "null" and m.map("b") == "~"
+    assert m.goals == ("null",)
+
+
+@pytest.mark.parametrize(
+    "text, line",
+    [
+        ("rename:\n  a: A\n  checkout: null\n", 3),
+        ("rename:\n  checkout: ~\n", 2),
+        ("rename:\n  a: A\n  checkout:\ngoals: [A]\n", 3),  # nothing after the colon
+        ("rules:\n  - regex: a\n    state: A\n  - regex: b\n    state: ~\n", 5),
+        ("rules:\n  - regex: null\n    state: A\n", 2),
+        ("goals: [Paid, null]\n", 1),
+        ("terminal:\n  - Closed\n  - ~\n", 3),
+        ("unmatched: null\n", 1),
+        ("groups:\n  Home: browse\n  Cart: ~\n", 3),
+    ],
+)
+def test_null_where_a_name_is_needed_is_an_error_with_file_and_line(text, line):
+    err = _error(text)
+    assert err.line == line
+    assert str(err).startswith(f"runner.yaml:{line}: ")
+    assert "null" in str(err)
+
+
+def test_a_list_where_a_state_is_needed_is_an_error_with_its_line():
+    err = _error("rename:\n  a: A\n  b: [B, C]\n")
+    assert err.line == 3 and "must be text, not a list" in str(err)
+
+
+def test_empty_top_level_lists_are_not_given():
+    m = parse_mapping("rename:\ngoals:\nterminal: ~\ngroups: null\nrules:\n")
+    assert (m.rename, m.goals, m.terminal, m.groups, m.rules) == ({}, (), (), {}, ())
+
+
+def test_options_keep_their_yaml_types():
+    # yes/no are YAML 1.1 booleans (yaml.org/type/bool.html, from memory) where an option is one
+    m = parse_mapping("version: 1\ncollapse_repeats: yes\nrules:\n  - regex: '^x$'\n    drop: on\n")
+    assert m.collapse_repeats is True
+    assert m.map("x") is None
+    assert parse_mapping("collapse_repeats: no\n").collapse_repeats is False
+    assert "version 2" in str(_error("version: 2\n"))

@@ -20,6 +20,13 @@ The file is a mapping with these optional keys::
 
 Path templates match the path part of a URL (scheme, host, query and fragment are
 removed first) and ignore one trailing slash.
+
+Event names, state names, group names, patterns and templates are read as the text
+written: YAML 1.1 would make a plain ``no``, ``on``, ``1.0``, ``0123`` or ``2024-01-01``
+a boolean, number or date, but here they are names like any other. A plain ``null``,
+``~`` or nothing where a name is needed is an error (quote it, ``'null'``, to mean the
+text). Options keep their YAML types: ``collapse_repeats: true``, ``drop: true``,
+``version: 1``.
 """
 
 from __future__ import annotations
@@ -41,6 +48,31 @@ _STATE_REF = re.compile(r"\{(\w+)\}")
 
 _META = frozenset({"__line__", "__keys__"})
 _TYPED = frozenset(f"tag:yaml.org,2002:{t}" for t in ("bool", "int", "float", "null", "timestamp"))
+
+
+class _Plain(str):
+    """A plain scalar that YAML 1.1 resolves to a boolean, number, null or date.
+
+    It is the text as written (a name where a name is read); :attr:`value` is the typed
+    value (for options such as ``collapse_repeats: true``) and :attr:`line` its line.
+    """
+
+    value: Any
+    line: int
+
+    def __new__(cls, text: str, value: Any, line: int) -> _Plain:
+        self = super().__new__(cls, text)
+        self.value = value
+        self.line = line
+        return self
+
+
+def _construct_plain(loader: yaml.SafeLoader, node: yaml.ScalarNode) -> Any:
+    try:
+        value = yaml.SafeLoader.yaml_constructors[node.tag](loader, node)
+    except ValueError:  # shaped like a date but none (2024-13-45): PyYAML raises; it is text
+        value = node.value
+    return _Plain(node.value, value, node.start_mark.line + 1)
 
 
 class _LineList(list):
@@ -90,6 +122,28 @@ def _construct_seq(loader: _LineLoader, node):
 
 
 _LineLoader.add_constructor("tag:yaml.org,2002:seq", _construct_seq)
+for _tag in _TYPED:
+    _LineLoader.add_constructor(_tag, _construct_plain)
+
+
+def _option(value: Any) -> Any:
+    """An option's YAML-typed value (``true`` is True, ``~`` None)."""
+    return value.value if isinstance(value, _Plain) else value
+
+
+def _text(value: Any, what: str, source: str | None, line: int | None) -> str:
+    """A name, pattern or template exactly as written in the file."""
+    if isinstance(value, _Plain):
+        if value.value is None:
+            shown = f"{str(value)!r}" if value else "empty"
+            quoted = f" (quote it, '{value}', to mean that text)" if value else ""
+            raise ConfigError(f"{what} is {shown}, which YAML reads as null; write a name{quoted}", source,
+                              value.line)
+        return str(value)
+    if isinstance(value, str):
+        return str(value)
+    kind = {dict: "a mapping", _LineList: "a list"}.get(type(value), type(value).__name__)
+    raise ConfigError(f"{what} must be text, not {kind}", source, line)
 
 
 @dataclass(frozen=True)
@@ -214,37 +268,46 @@ def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
     for key in data:
         if key not in allowed and key not in _META:
             raise ConfigError(f"unknown key {key!r}; allowed: {', '.join(sorted(allowed))}", source, at(key))
-    if data.get("version", 1) != 1:
-        raise ConfigError(f"unsupported mapping version {data.get('version')!r} (this release reads 1)", source,
-                          at("version"))
-    rename = data.get("rename") or {}
+    version = _option(data.get("version", 1))
+    if version != 1:
+        raise ConfigError(f"unsupported mapping version {version!r} (this release reads 1)", source, at("version"))
+    rename = _option(data.get("rename")) or {}
     if not isinstance(rename, dict):
         raise ConfigError("'rename' must map raw names to states", source, at("rename"))
-    rename = {str(k): str(v) for k, v in rename.items() if k not in _META}
+    rename = {str(k): _text(v, f"the state for {k!r} in 'rename'", source,
+                            rename["__keys__"].get(k, at("rename")))
+              for k, v in rename.items() if k not in _META}
     rules = []
-    raw_rules = data.get("rules") or []
+    raw_rules = _option(data.get("rules")) or []
     if not isinstance(raw_rules, list):
         raise ConfigError("'rules' must be a list", source, at("rules"))
     item_lines = getattr(raw_rules, "lines", ())
     for i, item in enumerate(raw_rules):
         rules.append(_rule(item, source, item_lines[i] if i < len(item_lines) else None))
     unmatched = data.get("unmatched", "keep")
-    if not isinstance(unmatched, str) or not unmatched:
+    if isinstance(unmatched, (dict, list)):
         raise ConfigError("'unmatched' must be keep, drop or a state name", source, at("unmatched"))
-    collapse = data.get("collapse_repeats", False)
+    unmatched = _text(unmatched, "'unmatched'", source, at("unmatched"))
+    if not unmatched:
+        raise ConfigError("'unmatched' must be keep, drop or a state name", source, at("unmatched"))
+    collapse = _option(data.get("collapse_repeats", False))
     if not isinstance(collapse, bool):
         raise ConfigError(f"'collapse_repeats' must be true or false, not {collapse!r}", source,
                           at("collapse_repeats"))
 
     def names(key: str) -> tuple[str, ...]:
-        v = data.get(key) or []
+        v = data.get(key)
+        if v is None or (isinstance(v, _Plain) and v.value is None):
+            return ()  # not given (or an empty key)
         if isinstance(v, str):
-            v = [v]
+            return (_text(v, f"'{key}'", source, at(key)),)
         if not isinstance(v, list):
             raise ConfigError(f"'{key}' must be a list of state names", source, at(key))
-        return tuple(str(x) for x in v)
+        lines = getattr(v, "lines", ())
+        return tuple(_text(x, f"item {i + 1} of '{key}'", source, lines[i] if i < len(lines) else at(key))
+                     for i, x in enumerate(v))
 
-    groups = data.get("groups") or {}
+    groups = _option(data.get("groups")) or {}
     if not isinstance(groups, dict):
         raise ConfigError("'groups' must map state names to group names", source, at("groups"))
     return Mapping(
@@ -254,8 +317,10 @@ def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
         collapse_repeats=collapse,
         goals=names("goals"),
         terminal=names("terminal"),
-        groups={str(k): str(v) for k, v in groups.items() if k not in _META},
-        parser=_parser_section(data.get("parser"), source, at("parser")),
+        groups={str(k): _text(v, f"the group of {k!r} in 'groups'", source,
+                              groups["__keys__"].get(k, at("groups")))
+                for k, v in groups.items() if k not in _META},
+        parser=_parser_section(_option(data.get("parser")), source, at("parser")),
         source=source,
     )
 
@@ -278,7 +343,7 @@ def _parser_section(value: Any, source: str | None, line: int) -> dict[str, str]
     if "pattern" not in keys:
         raise ConfigError("'parser' needs a 'pattern' (a regular expression with named groups session, event "
                           "and optionally time)", source, line)
-    out = {k: str(value[k]) for k in keys}
+    out = {k: _text(value[k], f"parser {k!r}", source, value["__keys__"].get(k, line)) for k in keys}
     try:
         rx = re.compile(out["pattern"])
     except re.error as err:
@@ -301,15 +366,17 @@ def _rule(item: Any, source: str | None, line: int | None = None) -> Rule:
     if extra:
         raise ConfigError(f"unknown rule key(s): {', '.join(sorted(extra))}", source, line)
     kind = kinds.pop()
-    drop = item.get("drop", False)
+    drop = _option(item.get("drop", False))
     if not isinstance(drop, bool):
         raise ConfigError(f"'drop' must be true or false, not {drop!r}", source, line)
     state = item.get("state")
+    if state is not None:
+        state = _text(state, "the rule's 'state'", source, item["__keys__"].get("state", line))
     if drop and state is not None:
         raise ConfigError("a rule has both 'state' and 'drop: true'; give one of them", source, line)
     if not drop and state is None:
         raise ConfigError("a rule needs either 'state: NAME' or 'drop: true'", source, line)
-    pattern_text = str(item[kind])
+    pattern_text = _text(item[kind], f"the rule's {kind!r}", source, item["__keys__"].get(kind, line))
     if kind == "regex":
         try:
             pattern = re.compile(pattern_text)
@@ -317,4 +384,4 @@ def _rule(item: Any, source: str | None, line: int | None = None) -> Rule:
             raise ConfigError(f"regular expression {pattern_text!r} is not valid: {err}", source, line) from err
     else:
         pattern = _template_regex(pattern_text, line, source)
-    return Rule(kind, pattern, None if drop else str(state), line)
+    return Rule(kind, pattern, None if drop else state, line)

@@ -12,7 +12,14 @@ English and read without the locale. Hosts may be IPv6 addresses or names.
 
 Each block of lines is matched in one call to Arrow's regular-expression kernel, and
 times are computed with numpy, so no Python work is done per line except for the
-lines that hold an escape or a problem.
+lines that hold an escape or a problem. The usual line (Common or Combined, a request
+``METHOD target [protocol]`` without quotes or backslashes, a real time, nothing after
+the user agent) is matched by :data:`FAST_RE`, which has few enough groups and no
+ambiguity for the regular-expression engine to take its quickest route; the time (and,
+for a status filter, the status) is then read from byte positions with numpy. Every
+other line goes the general way (:data:`LINE_RE`, then :data:`REQUEST_RE`), which also
+names the problems. A line matched by :data:`FAST_RE` is one :data:`LINE_RE` and
+:data:`REQUEST_RE` read into the same fields, so both ways give the same events.
 
 Sessions: the session key is ``host + " " + user_agent`` (``-`` when no agent is
 logged). Split a client's visits into sessions with an inactivity gap in the shaping
@@ -65,7 +72,7 @@ from ..errors import UsageError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .regexlog import civil_days, list_option, report_problems
-from .sources import BLOCK_BYTES, Source, iter_line_blocks
+from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted
 
 __all__ = ["AccessLogParser", "HttpOptions", "http_chunk", "unescape"]
 
@@ -79,6 +86,14 @@ LINE_RE = (
     r'(?: "(?P<referer>(?:[^"\\]|\\.)*)" "(?P<agent>(?:[^"\\]|\\.)*)")?(?:\s.*)?$'
 )
 REQUEST_RE = r"^(?P<method>[A-Za-z]+) (?P<target>\S+)(?: (?P<proto>\S+))?$"
+#: The usual line, matched in one pass (at most four groups, every step decided by the
+#: next character). Its language is a subset of LINE_RE's with the request matching
+#: REQUEST_RE, and its groups are the same: host, method, target and (Combined) agent.
+FAST_RE = (
+    r"^(?P<host>\S+) \S+ \S+ \[\d{2}/[A-Za-z]{3}/\d{4}:\d{2}:\d{2}:\d{2} [+-]\d{4}\] "
+    r'"(?P<method>[A-Za-z]+) (?P<target>[^\s"\\]+)(?: [^\s"\\]+)?" (?:\d{3}|-) (?:\d+|-)'
+    r'(?: "(?:[^"\\]|\\.)*" "(?P<agent>(?:[^"\\]|\\.)*)")?$'
+)
 _LINE_PY = re.compile(LINE_RE)
 _MONTHS = pa.array(["Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"])
 _ESC = re.compile(r"\\(x[0-9a-fA-F]{2}|.)", re.S)
@@ -105,9 +120,11 @@ def unescape(text: str) -> str:
 
 def _unescape_column(arr: pa.Array) -> pa.Array:
     """Unescape a string column, in Python only for the distinct values holding a backslash."""
-    if len(arr) == 0 or not pc.any(pc.match_substring(arr, "\\")).as_py():
+    if len(arr) == 0:
         return arr
-    enc = pc.dictionary_encode(arr)
+    enc = pc.dictionary_encode(arr)  # distinct values first: far fewer to search than rows
+    if not pc.any(pc.match_substring(enc.dictionary, "\\")).as_py():
+        return arr
     new = pa.array([unescape(v) for v in enc.dictionary.to_pylist()], type=pa.string())
     return pc.take(new, enc.indices)
 
@@ -201,16 +218,36 @@ def http_chunk(
         mask = pa.array(keep)
         host, agent, method, target = (pc.filter(a, mask) for a in (host, agent, method, target))
         time, lines = time[keep], lines[keep]
-    path = _path_of(target)
+    # paths from the distinct targets (far fewer than rows in a web log)
+    targets = pc.dictionary_encode(target)
+    path = _path_of(targets.dictionary)
     if escaped:
         path = _unescape_column(path)
+    path = pc.take(path, targets.indices)
     event = pc.binary_join_element_wise(method, path, " ") if opts.method_prefix else path
     session = pc.binary_join_element_wise(host, agent, " ")
     report.events += len(lines)
     return EventChunk(source, session, event, np.asarray(time, dtype=np.float64), np.asarray(lines, dtype=np.int64))
 
 
-def _split_lines(block: bytes) -> pa.Array:
+def _split_lines(block: bytes | bytearray) -> pa.Array:
+    """The lines of a block as a string array (no ``\n``; trailing ``\r`` removed)."""
+    if b"\r" not in block and len(block) < 1 << 31:
+        # valid UTF-8 without carriage returns (the usual block): the array is built on
+        # the bytes with the newlines taken out, and the offsets come from numpy
+        nl = np.flatnonzero(np.frombuffer(block, dtype=np.uint8) == 10)
+        ends = nl - np.arange(len(nl))
+        if not block.endswith(b"\n"):
+            ends = np.append(ends, len(block) - len(nl))
+        offsets = np.zeros(len(ends) + 1, dtype=np.int32)
+        offsets[1:] = ends
+        data = block.replace(b"\n", b"")
+        lines = pa.StringArray.from_buffers(len(ends), pa.py_buffer(offsets), pa.py_buffer(data))
+        try:
+            lines.validate(full=True)  # UTF-8: else decode with replacement characters below
+            return lines
+        except pa.ArrowInvalid:
+            pass
     text = block.decode("utf-8", errors="replace")
     if text.endswith("\n"):
         text = text[:-1]
@@ -218,8 +255,21 @@ def _split_lines(block: bytes) -> pa.Array:
     return pc.utf8_rtrim(lines, characters="\r")
 
 
+def _seconds(year, mon, mon_ok, day, hh, mi, ss, tz_sign, tz_h, tz_m) -> tuple[np.ndarray, np.ndarray]:
+    """Seconds since the epoch from the time's parts (int64 arrays), and a mask of impossible times."""
+    days = civil_days(year, mon, day)
+    # a date is real when it survives the round trip through numpy's calendar
+    dt = days.astype("datetime64[D]")
+    back_m = (dt.astype("datetime64[M]").astype(np.int64) % 12) + 1
+    back_d = (dt - dt.astype("datetime64[M]").astype("datetime64[D]")).astype(np.int64) + 1
+    ok = mon_ok & (back_m == mon) & (back_d == day) & (hh <= 23) & (mi <= 59) & (ss <= 60) & (tz_h <= 23)
+    ok &= tz_m <= 59
+    secs = days * 86400 + hh * 3600 + mi * 60 + ss - tz_sign * (tz_h * 3600 + tz_m * 60)
+    return secs.astype(np.float64), ~ok
+
+
 def _times(m: pa.StructArray) -> tuple[np.ndarray, np.ndarray]:
-    """Seconds since the epoch from the time groups, and a mask of impossible times."""
+    """Seconds since the epoch from LINE_RE's time groups, and a mask of impossible times."""
     def ints(name: str) -> np.ndarray:
         return pc.cast(m.field(name), pa.int64()).to_numpy(zero_copy_only=False)
 
@@ -231,15 +281,91 @@ def _times(m: pa.StructArray) -> tuple[np.ndarray, np.ndarray]:
     tz_sign = np.where(pc.starts_with(tzs, "-").to_numpy(zero_copy_only=False), -1, 1)
     tz_h = pc.cast(pc.utf8_slice_codeunits(tzs, 1, 3), pa.int64()).to_numpy(zero_copy_only=False)
     tz_m = pc.cast(pc.utf8_slice_codeunits(tzs, 3, 5), pa.int64()).to_numpy(zero_copy_only=False)
-    days = civil_days(year, mon, day)
-    # a date is real when it survives the round trip through numpy's calendar
-    dt = days.astype("datetime64[D]")
-    back_m = (dt.astype("datetime64[M]").astype(np.int64) % 12) + 1
-    back_d = (dt - dt.astype("datetime64[M]").astype("datetime64[D]")).astype(np.int64) + 1
-    ok = mon_ok & (back_m == mon) & (back_d == day) & (hh <= 23) & (mi <= 59) & (ss <= 60) & (tz_h <= 23)
-    ok &= tz_m <= 59
-    secs = days * 86400 + hh * 3600 + mi * 60 + ss - tz_sign * (tz_h * 3600 + tz_m * 60)
-    return secs.astype(np.float64), ~ok
+    return _seconds(year, mon, mon_ok, day, hh, mi, ss, tz_sign, tz_h, tz_m)
+
+
+_MONTH_CODES = np.array([(ord(a) << 16) | (ord(b) << 8) | ord(c) for a, b, c in _MONTHS.to_pylist()], dtype=np.int64)
+_MONTH_ORDER = np.argsort(_MONTH_CODES)
+
+
+def _buffers(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """(offsets as int64, length n + 1; data as uint8) of a string array."""
+    bufs = arr.buffers()
+    offs = np.frombuffer(bufs[1], dtype=np.int32, count=len(arr) + 1, offset=arr.offset * 4).astype(np.int64)
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
+    return offs, data
+
+
+def _lengths(arr: pa.Array) -> np.ndarray:
+    """Bytes per string of a string array."""
+    return np.diff(_buffers(arr)[0])
+
+
+def _gather(data: np.ndarray, starts: np.ndarray, lens: np.ndarray) -> pa.Array:
+    """A string array of the byte ranges ``data[starts[i]:starts[i] + lens[i]]``."""
+    offs = np.zeros(len(starts) + 1, dtype=np.int64)
+    np.cumsum(lens, out=offs[1:])
+    idx = np.repeat(starts - offs[:-1], lens) + np.arange(int(offs[-1]), dtype=np.int64)
+    return pa.StringArray.from_buffers(len(starts), pa.py_buffer(offs.astype(np.int32)),
+                                       pa.py_buffer(data[idx].tobytes()))
+
+
+def _next_space(data: np.ndarray, pos: np.ndarray) -> np.ndarray:
+    """For every start in ``pos``, the position of the first space at or after it.
+
+    Steps all rows one byte at a time, so it costs the longest distance, not the bytes:
+    meant for short fields (ident, user, protocol), each known to end in a space.
+    """
+    pos = pos.copy()
+    todo = np.flatnonzero(data[pos] != 32)
+    while len(todo):
+        pos[todo] += 1
+        todo = todo[data[pos[todo]] != 32]
+    return pos
+
+
+def _fast_fields(data: np.ndarray, line_start: np.ndarray, host_len: np.ndarray, request_len: np.ndarray,
+                 with_status: bool) -> tuple[np.ndarray, np.ndarray, pa.Array | None]:
+    """Times, a mask of impossible times, and (``with_status``) the status text of lines FAST_RE matched.
+
+    In such a line the host is followed by a space, the ident and the user each end at
+    the next space, the time is the 26 bytes after that space and ``[``, the request
+    opens two bytes after the time and is followed by its closing quote, a space and
+    the status; ``request_len`` is the length of method, space and target, after which
+    comes either the closing quote or a space and the protocol.
+    """
+    user_end = _next_space(data, _next_space(data, line_start + host_len + 1) + 1)
+    b = data[(user_end + 2)[:, None] + np.arange(26)].astype(np.int32) - 48  # dd/Mon/yyyy:HH:MM:SS +hhmm
+
+    def num(*cols: int) -> np.ndarray:
+        v = b[:, cols[0]].astype(np.int64)
+        for c in cols[1:]:
+            v = v * 10 + b[:, c]
+        return v
+
+    code = ((b[:, 3] + 48).astype(np.int64) << 16) | ((b[:, 4] + 48) << 8) | (b[:, 5] + 48)
+    at = np.minimum(np.searchsorted(_MONTH_CODES[_MONTH_ORDER], code), 11)
+    mon_ok = _MONTH_CODES[_MONTH_ORDER][at] == code
+    mon = np.where(mon_ok, _MONTH_ORDER[at], 0) + 1
+    tz_sign = np.where(b[:, 21] == ord("-") - 48, -1, 1)
+    secs, bad = _seconds(num(7, 8, 9, 10), mon, mon_ok, num(0, 1), num(12, 13), num(15, 16), num(18, 19),
+                         tz_sign, num(22, 23), num(24, 25))
+    if not with_status:
+        return secs, bad, None
+    after = user_end + 31 + request_len  # the closing quote, or the space before the protocol
+    proto = np.flatnonzero(data[after] == 32)
+    if len(proto):
+        # the protocol holds no space or quote: its end is the first of either
+        quote = after[proto] + 1
+        todo = np.arange(len(proto))
+        while len(todo):
+            stop = data[quote[todo]]
+            todo = todo[(stop != 34) & (stop != 32)]
+            quote[todo] += 1
+        after[proto] = quote
+    status_at = after + 2
+    status = _gather(data, status_at, np.where(data[status_at] == ord("-"), 1, 3))
+    return secs, bad, status
 
 
 class AccessLogParser:
@@ -265,49 +391,92 @@ class AccessLogParser:
         opts = HttpOptions.from_extra(options.extra)
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         report.fields.update({"session": "host + user agent", "time": "[time]", "event": "request path"})
-        for block, first_line in iter_line_blocks(source, block_bytes):
+        for block, first_line, _ in iter_line_blocks_counted(source, block_bytes):
             lines = _split_lines(block)
             n = len(lines)
             report.lines_read += n
             nums = np.arange(first_line, first_line + n, dtype=np.int64)
-            m = pc.extract_regex(lines, LINE_RE)
-            valid = m.is_valid().to_numpy(zero_copy_only=False)
+            # the usual lines in one pass; the rest (and impossible times) the general way
+            f = pc.extract_regex(lines, FAST_RE)
+            fast = f.is_valid().to_numpy(zero_copy_only=False)
+            if not fast.all():
+                f = pc.filter(f, pa.array(fast))
+            offs, data = _buffers(lines)
+            # the status is only read when a status filter needs it
+            secs, bad, status = _fast_fields(data, offs[:-1][fast], _lengths(f.field("host")),
+                                             _lengths(f.field("method")) + 1 + _lengths(f.field("target")),
+                                             opts.filters_status)
+            if bad.any():
+                fast[np.flatnonzero(fast)[bad]] = False
+                secs = secs[~bad]
+                f = pc.filter(f, pa.array(~bad))
+                if status is not None:
+                    status = pc.filter(status, pa.array(~bad))
+            if status is None:
+                status = pa.nulls(len(f), pa.string())
+            cols = [f.field("host"), f.field("agent"), f.field("method"), f.field("target"), status]
+            nums_f = nums[fast]
             problems: list[tuple[int, str, str]] = []
-            if not valid.all():
-                blank = pc.equal(pc.utf8_length(pc.utf8_trim_whitespace(lines)), 0).to_numpy(zero_copy_only=False)
-                for k in np.flatnonzero(~valid):
-                    if blank[k]:
-                        problems.append((int(nums[k]), "blank line", ""))
-                    else:
-                        problems.append((int(nums[k]), "not an access log line", lines[k].as_py()[:80]))
-                mask = pa.array(valid)
-                m = pc.filter(m, mask)
-                nums = nums[valid]
-            secs, bad_time = _times(m)
-            if bad_time.any():
-                for k in np.flatnonzero(bad_time):
-                    fields = m[int(k)].as_py()
-                    when = f"{fields['day']}/{fields['mon']}/{fields['year']}:{fields['hh']}:{fields['mi']}:" \
-                           f"{fields['ss']} {fields['tz']}"
-                    problems.append((int(nums[k]), "unreadable time", when))
-                good = ~bad_time
-                m = pc.filter(m, pa.array(good))
-                secs, nums = secs[good], nums[good]
+            no_request = 0
+            if not fast.all():
+                rest = np.flatnonzero(~fast)
+                slow, no_request = self._general(pc.take(lines, pa.array(rest)), nums[rest], problems)
+                if slow is not None and len(slow[-1]):
+                    # both kinds of line together, in line order
+                    s_cols, s_secs, s_nums = slow
+                    both = np.concatenate([nums_f, s_nums])
+                    order = pa.array(np.argsort(both, kind="stable"))
+                    cols = [pc.take(pa.concat_arrays([a, b]), order) for a, b in zip(cols, s_cols)]
+                    secs = np.concatenate([secs, s_secs])[order.to_numpy()]
+                    nums_f = both[order.to_numpy()]
             report_problems(report, source.name, problems, options.strict)
-            if len(nums) == 0:
+            if no_request:
+                report.skipped["no HTTP request line"] += no_request
+            if len(nums_f) == 0:
                 continue
-            req = pc.extract_regex(m.field("request"), REQUEST_RE)
-            is_req = req.is_valid().to_numpy(zero_copy_only=False)
-            if not is_req.all():
-                report.skipped["no HTTP request line"] += int((~is_req).sum())
-                mask = pa.array(is_req)
-                m, req = pc.filter(m, mask), pc.filter(req, mask)
-                secs, nums = secs[is_req], nums[is_req]
-                if len(nums) == 0:
-                    continue
-            chunk = http_chunk(
-                source.name, m.field("host"), m.field("agent"), req.field("method"), req.field("target"),
-                m.field("status"), secs, nums, opts, report, escaped=True,
-            )
+            host, agent, method, target, status = cols
+            chunk = http_chunk(source.name, host, agent, method, target, status, secs, nums_f, opts, report,
+                               escaped=True)
             if chunk is not None:
                 yield chunk
+
+    @staticmethod
+    def _general(lines: pa.Array, nums: np.ndarray, problems: list):
+        """LINE_RE and REQUEST_RE on the lines FAST_RE did not take.
+
+        Appends their problems to ``problems``; returns the fields, times and line
+        numbers of the lines that are events (None if none) and the number of lines
+        without an HTTP request.
+        """
+        m = pc.extract_regex(lines, LINE_RE)
+        valid = m.is_valid().to_numpy(zero_copy_only=False)
+        if not valid.all():
+            blank = pc.equal(pc.utf8_length(pc.utf8_trim_whitespace(lines)), 0).to_numpy(zero_copy_only=False)
+            for k in np.flatnonzero(~valid):
+                if blank[k]:
+                    problems.append((int(nums[k]), "blank line", ""))
+                else:
+                    problems.append((int(nums[k]), "not an access log line", lines[int(k)].as_py()[:80]))
+            m = pc.filter(m, pa.array(valid))
+            nums = nums[valid]
+        secs, bad_time = _times(m)
+        if bad_time.any():
+            for k in np.flatnonzero(bad_time):
+                fields = m[int(k)].as_py()
+                when = f"{fields['day']}/{fields['mon']}/{fields['year']}:{fields['hh']}:{fields['mi']}:" \
+                       f"{fields['ss']} {fields['tz']}"
+                problems.append((int(nums[k]), "unreadable time", when))
+            good = ~bad_time
+            m = pc.filter(m, pa.array(good))
+            secs, nums = secs[good], nums[good]
+        if len(nums) == 0:
+            return None, 0
+        req = pc.extract_regex(m.field("request"), REQUEST_RE)
+        is_req = req.is_valid().to_numpy(zero_copy_only=False)
+        no_request = int((~is_req).sum())
+        if no_request:
+            mask = pa.array(is_req)
+            m, req = pc.filter(m, mask), pc.filter(req, mask)
+            secs, nums = secs[is_req], nums[is_req]
+        cols = [m.field("host"), m.field("agent"), req.field("method"), req.field("target"), m.field("status")]
+        return (cols, secs, nums), no_request

@@ -335,21 +335,21 @@ def _fast_fields(data: np.ndarray, line_start: np.ndarray, host_len: np.ndarray,
     comes either the closing quote or a space and the protocol.
     """
     user_end = _next_space(data, _next_space(data, line_start + host_len + 1) + 1)
-    b = data[(user_end + 2)[:, None] + np.arange(26)].astype(np.int32) - 48  # dd/Mon/yyyy:HH:MM:SS +hhmm
+    t = user_end + 2  # dd/Mon/yyyy:HH:MM:SS +hhmm
 
-    def num(*cols: int) -> np.ndarray:
-        v = b[:, cols[0]].astype(np.int64)
-        for c in cols[1:]:
-            v = v * 10 + b[:, c]
-        return v
+    def byte(k: int) -> np.ndarray:
+        return data[t + k].astype(np.int64)
 
-    code = ((b[:, 3] + 48).astype(np.int64) << 16) | ((b[:, 4] + 48) << 8) | (b[:, 5] + 48)
+    def two(k: int) -> np.ndarray:  # the two ASCII digits at k and k + 1
+        return byte(k) * 10 + byte(k + 1) - (48 * 10 + 48)
+
+    code = (byte(3) << 16) | (byte(4) << 8) | byte(5)
     at = np.minimum(np.searchsorted(_MONTH_CODES[_MONTH_ORDER], code), 11)
     mon_ok = _MONTH_CODES[_MONTH_ORDER][at] == code
     mon = np.where(mon_ok, _MONTH_ORDER[at], 0) + 1
-    tz_sign = np.where(b[:, 21] == ord("-") - 48, -1, 1)
-    secs, bad = _seconds(num(7, 8, 9, 10), mon, mon_ok, num(0, 1), num(12, 13), num(15, 16), num(18, 19),
-                         tz_sign, num(22, 23), num(24, 25))
+    tz_sign = np.where(data[t + 21] == ord("-"), -1, 1)
+    secs, bad = _seconds(two(7) * 100 + two(9), mon, mon_ok, two(0), two(12), two(15), two(18),
+                         tz_sign, two(22), two(24))
     if not with_status:
         return secs, bad, None
     after = user_end + 31 + request_len  # the closing quote, or the space before the protocol

@@ -512,11 +512,6 @@ def test_jsonl_bom_with_tiny_blocks(tmp_path):
     assert report.skipped == Counter()
 
 
-@pytest.mark.xfail(
-    reason="jsonl.py resolves the field names from the first block only, so a time field that first "
-    "appears after the first block is ignored for the whole file (results depend on block_bytes)",
-    strict=True,
-)
 def test_jsonl_time_field_first_seen_in_a_later_block_is_used(tmp_path):
     # line 1 has no time; s1 home -> item(10) -> buy(30): gap item->buy 20 whatever the block size
     path = tmp_path / "late-time.jsonl"
@@ -533,11 +528,6 @@ def test_jsonl_time_field_first_seen_in_a_later_block_is_used(tmp_path):
     assert gap_sums(small) == pytest.approx({("item", "buy"): 20.0})
 
 
-@pytest.mark.xfail(
-    reason="jsonl.py: strict mode raises for the first line-level problem of a block (invalid JSON, "
-    "line 3) before the field checks of earlier rows (missing session, line 2) run",
-    strict=True,
-)
 def test_jsonl_strict_names_the_earliest_problem_of_mixed_kinds(tmp_path):
     path = tmp_path / "two-problems.jsonl"
     path.write_text(

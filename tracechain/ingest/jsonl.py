@@ -22,6 +22,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
+from .flatjson import read_flat_block
 from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, text_lines
 from .tabular import table_to_chunk
 
@@ -75,40 +76,80 @@ class JsonLinesParser:
 
     def read(self, source: Source, options: ReadOptions, report: ParseReport) -> Iterator[EventChunk]:
         names: tuple[str, str | None, str] | None = None
+        seen: dict[str, None] = {}  # every key seen so far, in order
         schema: pa.Schema | None = None
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         for block, first_line, newlines in read_ahead(iter_line_blocks_counted(source, block_bytes)):
             nlines = newlines + (0 if block.endswith(b"\n") else 1)
             report.lines_read += nlines
-            table = None
-            if _lines_are_objects(block, newlines):
-                table = _fast_parse(block, schema)
-                if table is None and schema is not None:
-                    table = _fast_parse(block, None)
-                if table is not None and table.num_rows != nlines:
-                    table = None
-            if table is not None:
-                if names is None:
-                    names = resolve_fields(options.fields, table.column_names, source.name)
-                table = _text_keys(block, table, names, nlines)
-            if table is not None:
-                if schema is None:
-                    schema = _narrow_schema(table.schema, names)
-                cols = {c: table.column(c) for c in names if c is not None and c in table.column_names}
+            problem = None
+            # 1. flat objects of one shape: read with numpy (see flatjson)
+            if names is None or (names[1] is None and options.fields.time is None):
+                probe = read_flat_block(block, newlines, None)  # (the first line's keys)
+                if probe is not None:
+                    names = self._names(options, source, seen, probe.keys, names)
+            flat = read_flat_block(block, newlines, names) if names is not None else None
+            if flat is not None:
+                cols = flat.columns
                 lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
             else:
-                cols, lines, keys = _slow_parse(block, first_line, source.name, report, options.strict)
-                if names is None:
+                # 2. Arrow's JSON reader
+                table = None
+                if _lines_are_objects(block, newlines):
+                    table = _fast_parse(block, schema)
+                    if table is None and schema is not None:
+                        table = _fast_parse(block, None)
+                    if table is not None and table.num_rows != nlines:
+                        table = None
+                if table is not None:
+                    names = self._names(options, source, seen, table.column_names, names)
+                    table = _text_keys(block, table, names, nlines)
+                if table is not None:
+                    if schema is None or (names[1] is not None and names[1] not in schema.names):
+                        schema = _narrow_schema(table.schema, names)
+                    cols = {c: table.column(c) for c in names if c is not None and c in table.column_names}
+                    lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
+                else:
+                    # 3. line by line: every bad line found and reported
+                    cols, lines, keys, problem = _slow_parse(block, first_line, source.name, report, options.strict)
                     if not keys:
+                        if problem is not None:
+                            raise problem
                         continue
-                    names = resolve_fields(options.fields, keys, source.name)
-            chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
-            del block, table, cols, lines  # not kept alive while the chunk is counted
+                    names = self._names(options, source, seen, keys, names)
+                del table
+            try:
+                chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
+            except IngestError as err:  # strict mode: the earlier of the two problems
+                if problem is not None and err.line is not None and problem.line < err.line:
+                    raise problem from None
+                raise
+            if problem is not None:
+                raise problem
+            del block, flat, cols, lines  # not kept alive while the chunk is counted
             if chunk is not None:
                 yield chunk
             del chunk
         if names is not None:
             report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
+
+    @staticmethod
+    def _names(
+        options: ReadOptions, source: Source, seen: dict[str, None], keys: list[str],
+        names: tuple[str, str | None, str] | None,
+    ) -> tuple[str, str | None, str]:
+        """The (session, time, event) keys: resolved from the first keys seen; a time key
+        left to detection and not found yet is looked for again when new keys appear."""
+        if names is not None and (names[1] is not None or options.fields.time is not None):
+            return names
+        new = [k for k in keys if k not in seen]
+        if names is not None and not new:
+            return names
+        seen.update(dict.fromkeys(new))
+        found = resolve_fields(options.fields, list(seen), source.name)
+        if names is None:
+            return found
+        return (names[0], found[1], names[2])
 
 
 def _narrow_schema(schema: pa.Schema, names: tuple[str, str | None, str]) -> pa.Schema | None:
@@ -189,22 +230,31 @@ class _Nested:
 
 def _slow_parse(
     block: bytes, first_line: int, name: str, report: ParseReport, strict: bool
-) -> tuple[dict[str, pa.Array], np.ndarray, list[str]]:
+) -> tuple[dict[str, pa.Array], np.ndarray, list[str], IngestError | None]:
+    """Parse line by line. In strict mode the first bad line is returned as an error (not
+    raised), so the caller can weigh it against the rows' field problems."""
     rows: list[dict] = []
+    first: list[IngestError] = []
     line_nos: list[int] = []
     keys: dict[str, None] = {}
     for i, raw in enumerate(text_lines(block)):
         ln = first_line + i
         if not raw.strip():
-            _bad(report, name, ln, "blank line", "", strict)
+            _bad(report, name, ln, "blank line", "", strict, first)
+            if first:
+                break
             continue
         try:
             obj = json.loads(raw)
         except ValueError as err:
-            _bad(report, name, ln, "invalid JSON", str(err), strict)
+            _bad(report, name, ln, "invalid JSON", str(err), strict, first)
+            if first:
+                break
             continue
         if not isinstance(obj, dict):
-            _bad(report, name, ln, "not a JSON object", type(obj).__name__, strict)
+            _bad(report, name, ln, "not a JSON object", type(obj).__name__, strict, first)
+            if first:
+                break
             continue
         rows.append(obj)
         line_nos.append(ln)
@@ -229,10 +279,12 @@ def _slow_parse(
             cols[k] = pa.array(out)
         except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
             cols[k] = pa.array([None if v is None else str(v) for v in out], type=pa.string())
-    return cols, np.asarray(line_nos, dtype=np.int64), list(keys)
+    return cols, np.asarray(line_nos, dtype=np.int64), list(keys), (first[0] if first else None)
 
 
-def _bad(report: ParseReport, name: str, line: int, reason: str, detail: str, strict: bool) -> None:
+def _bad(report: ParseReport, name: str, line: int, reason: str, detail: str, strict: bool,
+         first: list[IngestError]) -> None:
     if strict:
-        raise IngestError(f"{reason}: {detail}" if detail else reason, name, line)
+        first.append(IngestError(f"{reason}: {detail}" if detail else reason, name, line))
+        return
     report.skip(name, line, reason, detail)

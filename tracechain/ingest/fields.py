@@ -159,6 +159,11 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
             return times_to_seconds(ts, spec)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             pass
+        try:  # ISO 8601 without an offset, all of them: taken as UTC (as below, one by one)
+            ts = pc.cast(arr, pa.timestamp("us"))
+            return times_to_seconds(ts, spec)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            pass
     # slow path: element by element, marking what cannot be read
     out = np.full(n, np.nan)
     bad = np.zeros(n, dtype=bool)

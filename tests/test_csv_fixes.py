@@ -1,5 +1,6 @@
 """CSV reading fixes: the header skipped whatever the block size, strict mode naming
-the earliest problem, nothing lost after a row the csv module refuses.
+the earliest problem, nothing lost after a row the csv module refuses, and format
+sniffing that takes only a real header row for CSV.
 
 Every log here is invented. Expected counts and line numbers are worked out by hand
 next to each log; format facts cite RFC 4180 (from memory, no copy kept here) or are
@@ -13,7 +14,9 @@ from collections import Counter
 
 import pytest
 
-from tracechain.errors import EmptyInputError, IngestError
+from tracechain.errors import EmptyInputError, IngestError, UsageError
+from tracechain.ingest.csvlog import CsvParser, read_header
+from tracechain.ingest.registry import detect_parser
 from tracechain.ingest.sources import Source, iter_line_blocks, iter_line_blocks_counted
 from tracechain.pipeline import count_sources
 
@@ -200,3 +203,156 @@ def test_nothing_is_lost_after_a_row_the_csv_module_refuses(tmp_path):
     with pytest.raises(IngestError) as info:
         count_sources([path], strict=True)
     assert info.value.line == 3
+
+
+# --- sniffing: only a real header row makes a CSV log --------------------------------
+
+VISITS = "session,time,event\ns1,0,home\ns2,5,home\ns1,10,item\ns2,20,buy\n"
+# By hand: s1 home(0) -> item(10); s2 home(5) -> buy(20).
+VISITS_EDGES = {
+    ("[start]", "home"): 2,
+    ("home", "item"): 1,
+    ("home", "buy"): 1,
+    ("item", "[end]"): 1,
+    ("buy", "[end]"): 1,
+}
+
+
+def detect(tmp_path, name: str, content: bytes) -> str:
+    path = tmp_path / name
+    path.write_bytes(content)
+    return detect_parser(Source(str(path), str(path))).name
+
+
+@pytest.mark.parametrize("name", ["visits.csv", "visits.CSV", "visits.log", "visits", "visits.txt"])
+def test_real_csv_is_detected_with_or_without_a_csv_suffix(tmp_path, name):
+    assert detect(tmp_path, name, VISITS.encode()) == "csv"
+    counts, report = count_sources([str(tmp_path / name)])
+    assert counts.to_edges() == VISITS_EDGES
+    assert report.skipped == Counter()
+
+
+def test_the_csv_suffix_still_raises_the_score():
+    head = VISITS.encode()
+    assert CsvParser().sniff(head, "visits.csv") > CsvParser().sniff(head, "visits.log") > 0.25
+
+
+@pytest.mark.parametrize("name", ["visits.tsv", "visits"])
+def test_tab_separated_is_detected_and_read_with_tabs(tmp_path, name):
+    # common practice, no source: tab-separated values are CSV with a tab delimiter
+    path = tmp_path / name
+    path.write_text(VISITS.replace(",", "\t"), encoding="utf-8")
+    assert detect(tmp_path, name, path.read_bytes()) == "csv"
+    assert read_header(Source(str(path), str(path))) == (["session", "time", "event"], "\t")
+    assert count_sources([str(path)])[0].to_edges() == VISITS_EDGES
+
+
+def test_semicolon_separated_with_commas_in_the_data(tmp_path):
+    # common practice, no source: locales with a decimal comma use ';' between fields;
+    # the commas in the event names must not make ',' the delimiter
+    text = "session;time;event\ns1;0;home, garden\ns2;5;home, garden\ns1;10;item\ns2;20;buy\n"
+    path = tmp_path / "visits.txt"
+    path.write_text(text, encoding="utf-8")
+    assert detect(tmp_path, "visits.txt", path.read_bytes()) == "csv"
+    assert read_header(Source(str(path), str(path))) == (["session", "time", "event"], ";")
+    counts, _ = count_sources([str(path)])
+    assert counts.to_edges()[("home, garden", "item")] == 1
+
+
+def test_the_delimiter_is_chosen_by_consistency_not_by_count_on_the_first_line(tmp_path):
+    # two commas inside quoted header cells (RFC 4180 section 2 rule 6) and two
+    # semicolons between them: only ';' splits every line into three fields
+    text = '"visit, id";"time, s";event\n"v1";0;home\n"v1";4;buy\n'
+    path = tmp_path / "visits.csv"
+    path.write_text(text, encoding="utf-8")
+    assert read_header(Source(str(path), str(path))) == (["visit, id", "time, s", "event"], ";")
+    assert detect(tmp_path, "visits.csv", path.read_bytes()) == "csv"
+
+
+def test_quoted_header_cells(tmp_path):
+    # RFC 4180 section 2 rules 5 and 7: any field may be quoted, a quote doubled inside
+    text = '"session","time","event ""name"""\n"s1","0","home"\n"s1","3","buy"\n'
+    path = tmp_path / "quoted"
+    path.write_text(text, encoding="utf-8")
+    assert detect(tmp_path, "quoted", path.read_bytes()) == "csv"
+    assert read_header(Source(str(path), str(path)))[0] == ["session", "time", 'event "name"']
+    assert CsvParser().sniff(path.read_bytes(), "quoted") >= 0.4
+
+
+def test_a_quoted_line_break_in_the_first_records_still_fits(tmp_path):
+    # RFC 4180 section 2 rule 6: the record on lines 2-3 is one record of three fields
+    head = b'session,time,event\ns1,0,"gift\nwrap"\ns1,1,home\n'
+    assert CsvParser().sniff(head, "wrapped.log") >= 0.4
+
+
+def test_a_byte_order_mark_before_the_header(tmp_path):
+    # common practice, no source: spreadsheet exports often start with a UTF-8 BOM
+    assert detect(tmp_path, "bom.log", b"\xef\xbb\xbf" + VISITS.encode()) == "csv"
+
+
+FREE_TEXT = [
+    b"2024-01-01 started job, retry 2\n2024-01-01 job done, took 3s\n",
+    b"2024-01-01 started job, retry 2\n",
+    b"Starting the server, version 2\nListening on port 8080\nStopped\n",
+    b"Jan  1 00:00:01 host app[1]: started, ok\nJan  1 00:00:02 host app[1]: done, ok\n",
+    b"12:00:01 started; 12:00:02 done\n12:00:03 idle\n",
+    b"INFO job started, retry 2\nINFO heartbeat\nINFO heartbeat\n",
+]
+
+
+@pytest.mark.parametrize("content", FREE_TEXT)
+def test_free_text_lines_with_commas_are_not_csv(tmp_path, content):
+    assert CsvParser().sniff(content, "app.log") == 0.0
+    path = tmp_path / "app.log"
+    path.write_bytes(content)
+    try:
+        found = detect_parser(Source(str(path), str(path))).name
+    except UsageError as err:
+        assert str(path) in str(err) and "--format" in str(err)
+    else:
+        assert found != "csv"
+
+
+@pytest.mark.parametrize(
+    "first",
+    [
+        b"1,2,3",  # numbers
+        b"s1,1709283600,home",  # a record: an epoch time among the cells
+        b"2024-03-01T09:00:00Z,s1,home",  # an ISO 8601 time
+        b"session,,event",  # an empty cell
+        b"event,Event,time",  # the same name twice
+        b"x" * 80 + b",event",  # a cell too long for a name
+        b"session",  # one field
+    ],
+)
+def test_first_lines_that_are_no_header(first):
+    head = first + b"\n" + b"a,b,c\n" * 3
+    assert CsvParser().sniff(head, "log.txt") == 0.0
+
+
+def test_lines_after_the_header_must_have_as_many_fields():
+    # RFC 4180 section 2 rule 4: each record should have the same number of fields
+    assert CsvParser().sniff(b"session,time,event\nhello\nworld\n", "log.txt") == 0.0
+    # a few bad rows among good ones are still a CSV log (they are reported by line)
+    good = b"session,time,event\n" + b"s1,0,home\n" * 4 + b"s1,0\n"
+    assert CsvParser().sniff(good, "log.txt") >= 0.4
+
+
+def test_a_header_alone_is_still_csv_by_name():
+    assert CsvParser().sniff(b"session,time,event\n", "empty.csv") >= 0.25
+
+
+def test_an_edge_list_header_keeps_its_low_csv_score(tmp_path):
+    head = b"from,to,count\nhome,buy,3\n"
+    assert CsvParser().sniff(head, "edges.csv") == 0.2
+    assert detect(tmp_path, "edges.csv", head) == "edges"
+
+
+def test_a_cut_off_last_line_in_the_head_is_ignored():
+    # peek() gives the first 64 KiB; the record cut there must not count as ragged
+    body = b"s1,0,home\n" * 7000
+    head = (b"session,time,event\n" + body)[:65536]
+    assert not head.endswith(b"\n")
+    assert CsvParser().sniff(head, "big.log") >= 0.4
+    with_bom = (b"\xef\xbb\xbfsession,time,event\n" + body)[:65536]
+    assert CsvParser().sniff(with_bom, "big.log") >= 0.4

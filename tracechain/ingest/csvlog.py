@@ -5,12 +5,17 @@ A block Arrow refuses (a row with the wrong number of fields, for example) is pa
 again with Python's :mod:`csv` module so each bad row is counted and reported with
 its line number. A quoted field spanning lines is supported on the slow path only
 when it does not cross a block boundary (blocks are 16 MiB).
+
+A file is taken for CSV only when its first line reads as a header (two or more
+distinct, name-like cells) and the lines after it split into as many fields; the
+delimiter is the one that splits those lines most consistently.
 """
 
 from __future__ import annotations
 
 import csv
 import io
+import re
 from collections.abc import Iterator
 
 import numpy as np
@@ -24,24 +29,134 @@ from .fields import resolve_fields
 from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, peek
 from .tabular import table_to_chunk
 
-__all__ = ["CsvParser", "read_header"]
+__all__ = ["CsvParser", "read_header", "choose_delimiter"]
 
 EDGE_HEADERS = ({"from", "to"}, {"source", "target"}, {"src", "dst"})
 
+#: Delimiters tried, in order of preference when several fit equally well.
+DELIMITERS = (",", "\t", ";")
+#: Records after the header looked at when sniffing or choosing the delimiter.
+_SNIFF_RECORDS = 20
+#: A header cell longer than this is taken for data, not a column name.
+_MAX_NAME = 64
 
-def read_header(source: Source) -> tuple[list[str], str]:
-    """The header's field names and the delimiter, from the first line."""
-    head = peek(source, 65536)
+#: a letter or _, then word characters, spaces and a few marks (a cell holding the
+#: delimiter is quoted, RFC 4180 section 2 rule 6, so a comma may be part of a name)
+_NAME = re.compile(r"[^\W\d][\w.,'&+%\-/:()\[\]#@ ]*")
+_NUMBER = re.compile(r"[+-]?(\d[\d_]*\.?\d*|\.\d+)([eE][+-]?\d+)?")
+#: a cell that is data rather than a name: it starts with a digit or a signed digit
+#: (numbers, dates), holds a clock time, or starts with a month name and a day
+_TIMEISH = re.compile(
+    r"\d|[+-]\d|.*\d:\d\d|(jan|feb|mar|apr|may|jun|jul|aug|sep|oct|nov|dec)[a-z]*\.? +\d", re.IGNORECASE
+)
+
+
+def _head_text(head: bytes) -> str:
+    """The first bytes as text, without a byte order mark or a line cut off at the end."""
+    if len(head) >= 65536 and not head.endswith(b"\n") and b"\n" in head:
+        head = head[: head.rfind(b"\n") + 1]  # the last line may be cut off
     if head.startswith(b"\xef\xbb\xbf"):
         head = head[3:]
-    first = head.split(b"\n", 1)[0].rstrip(b"\r").decode("utf-8", errors="replace")
+    return head.decode("utf-8", errors="replace")
+
+
+def _records(text: str, delim: str) -> list[list[str]] | None:
+    """The first record and up to ``_SNIFF_RECORDS`` non-blank records after it
+    (quoted line breaks kept inside their field, RFC 4180 section 2 rule 6); None when
+    the csv module refuses them or the first line is blank."""
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delim)
+    rows: list[list[str]] = []
+    try:
+        for row in reader:
+            if not row or all(not c.strip() for c in row):
+                if not rows:
+                    return None
+                continue
+            rows.append(row)
+            if len(rows) > _SNIFF_RECORDS:
+                break
+    except csv.Error:
+        return None
+    return rows or None
+
+
+def _fit(rows: list[list[str]]) -> float:
+    """The share of the records after the header with as many fields as the header
+    (1.0 when there are none; RFC 4180 section 2 rule 4 asks for all of them)."""
+    if len(rows) == 1:
+        return 1.0
+    width = len(rows[0])
+    return sum(len(r) == width for r in rows[1:]) / (len(rows) - 1)
+
+
+def _name_like(cell: str) -> bool:
+    """A cell that reads as a column name: short, starting with a letter or ``_``,
+    made of word characters (and a few separators), not a number or a time."""
+    if not cell or len(cell) > _MAX_NAME or cell.count(" ") > 2:
+        return False
+    if _NUMBER.fullmatch(cell) or _TIMEISH.match(cell):
+        return False
+    return _NAME.fullmatch(cell) is not None
+
+
+def _header_like(cells: list[str]) -> bool:
+    """Two or more non-empty, distinct cells, mostly (more than half) name-like, none
+    a number or a time (common practice, no source: RFC 4180 section 2 rule 3 makes
+    the header optional and gives no way to tell it from a record)."""
+    names = [c.strip() for c in cells]
+    if len(names) < 2 or any(not n for n in names):
+        return False
+    if len({n.casefold() for n in names}) != len(names):
+        return False
+    if any(_NUMBER.fullmatch(n) or _TIMEISH.match(n) for n in names):
+        return False
+    return 2 * sum(_name_like(n) for n in names) > len(names)
+
+
+def choose_delimiter(head: bytes, need_header: bool = True) -> tuple[str, list[list[str]], float] | None:
+    """The delimiter that splits the first records of ``head`` most consistently:
+    ``(delimiter, records, fit)`` with :func:`_fit`'s share of records as wide as the
+    header, or None when no delimiter gives two or more header fields and a fit of
+    at least one half (a few bad rows near the start of a log still leave a CSV log).
+    With ``need_header``, the first record must also be header-like.
+
+    Ties go to the delimiter giving more fields, then to the order of :data:`DELIMITERS`.
+    """
+    text = _head_text(head)
+    best: tuple[str, list[list[str]], float] | None = None
+    for delim in DELIMITERS:
+        rows = _records(text, delim)
+        if rows is None or len(rows[0]) < 2:
+            continue
+        fit = _fit(rows)
+        if fit < 0.5 or (need_header and not _header_like(rows[0])):
+            continue
+        if best is None or (fit, len(rows[0])) > (best[2], len(best[1][0])):
+            best = (delim, rows, fit)
+    return best
+
+
+def read_header(source: Source) -> tuple[list[str], str]:
+    """The header's field names and the delimiter.
+
+    The delimiter is the one that splits the first lines consistently (see
+    :func:`choose_delimiter`); failing that, the one most frequent on the first line.
+    """
+    head = peek(source, 65536)
+    text = _head_text(head)
+    first = text.split("\n", 1)[0].rstrip("\r")
     if not first.strip():
         raise IngestError("the first line is empty; a CSV log needs a header row", source.name, 1)
-    counts = {d: first.count(d) for d in (",", "\t", ";", "|")}
-    delim = max(counts, key=lambda d: counts[d])
-    if counts[delim] == 0:
-        delim = ","
-    names = next(csv.reader([first], delimiter=delim))
+    found = choose_delimiter(head) or choose_delimiter(head, need_header=False)
+    if found is not None:
+        delim, rows, _ = found
+        names = rows[0]
+    else:
+        counts = {d: first.count(d) for d in (",", "\t", ";", "|")}
+        delim = max(counts, key=lambda d: counts[d])
+        if counts[delim] == 0:
+            delim = ","
+        names = next(csv.reader([first], delimiter=delim))
     return [n.strip() for n in names], delim
 
 
@@ -51,17 +166,28 @@ class CsvParser:
     description = "CSV with a header row naming the session, time and event columns"
 
     def sniff(self, head: bytes, name: str) -> float:
-        lines = head.splitlines()[:3]
-        if not lines or lines[0].lstrip().startswith((b"{", b"[", b"#", b"<")):
+        """A score for ``head`` being a CSV log with a header row.
+
+        Only a first line that splits into header-like cells, with the lines after it
+        (those in ``head``) splitting into as many fields, scores; an edge list's
+        header (from,to,count) scores low, leaving it to the edge-list parser.
+        """
+        text = _head_text(head)
+        if not text.strip() or text.lstrip().startswith(("{", "[", "#", "<")):
             return 0.0
-        first = lines[0].decode("utf-8", errors="replace").lower()
-        delims = [d for d in (",", "\t", ";") if d in first]
-        if not delims:
+        found = choose_delimiter(head)
+        if found is None:
             return 0.0
-        cols = {c.strip() for c in next(csv.reader([first], delimiter=delims[0]))}
+        _, rows, fit = found
+        cols = {c.strip().lower() for c in rows[0]}
         if any(cols >= h for h in EDGE_HEADERS) and "count" in cols:
             return 0.2
-        return 0.6 if name.lower().endswith((".csv", ".tsv", ".csv.gz")) else 0.4
+        suffix = name.lower().endswith((".csv", ".tsv", ".csv.gz", ".tsv.gz"))
+        if len(rows) == 1:  # a header alone: nothing to check it against
+            return 0.5 if suffix else 0.3
+        if fit <= 0.5:  # as many ragged records as regular ones: only the name says CSV
+            return 0.5 if suffix else 0.0
+        return 0.6 if suffix else 0.4
 
     def read(self, source: Source, options: ReadOptions, report: ParseReport) -> Iterator[EventChunk]:
         header, delim = read_header(source)

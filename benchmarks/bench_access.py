@@ -21,8 +21,9 @@ RSS from ``os.wait4``. The file is read once before every run so both sides find
 the page cache; ``--repeat N`` keeps the fastest of N runs (and the largest peak).
 
 The baseline is what a competent engineer writes in plain Python: one compiled regular
-expression for the Combined format matched line by line, the timestamp parsed with
-``datetime.strptime`` once per distinct timestamp text (a dict cache), a dict keyed on
+expression for the Combined format matched line by line (quoted fields written as
+unrolled loops), the local midnight of each distinct date and offset parsed once with
+``datetime.strptime`` (a dict cache) and the clock added as integers, a dict keyed on
 (host, user agent) holding the last state and time, a new session after more than 30
 minutes of inactivity, and a ``collections.Counter`` of (previous, state) transitions
 plus starts and ends. It applies what tracechain's access-log reader does by default and

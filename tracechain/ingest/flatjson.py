@@ -26,7 +26,9 @@ offsets (one fancy-index gather per check) keep the checks cheap.
 
 from __future__ import annotations
 
+import os
 import re
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pyarrow as pa
@@ -116,46 +118,52 @@ def _template(line: bytes, quotes: np.ndarray) -> tuple[list[tuple[str, bool]], 
     return strings, gaps
 
 
-class _Words:
-    """Little-endian 8-byte words starting at any byte of ``block`` from ``start`` on
-    (positions are relative to ``start``; zeros past the block's end)."""
+class _Span:
+    """A value of the template line: a string's content or a bare scalar."""
 
-    def __init__(self, block: bytes, start: int = 0):
-        n = len(block) - start
-        self.n = n
-        self.tail_start = max(0, n - 16)
-        tail = block[start + self.tail_start :] + bytes(40)  # reads up to 32 bytes past the end
-        self.tail = np.ndarray(shape=(len(tail) - 7,), dtype="<u8", buffer=tail, strides=(1,))
-        self.body = (np.ndarray(shape=(n - 7,), dtype="<u8", buffer=block, offset=start, strides=(1,))
-                     if n >= 16 else None)
+    __slots__ = ("key", "bare", "quote", "skip")
+
+    def __init__(self, key: str, bare: bool, quote: int, skip: int):
+        # starts ``skip`` bytes after quote number ``quote`` of its line; a string ends
+        # at the next quote, a bare scalar where the fixed text after it begins
+        self.key, self.bare, self.quote, self.skip = key, bare, quote, skip
+
+
+class _Shape:
+    """The template line cut into fixed runs of bytes and the values between them:
+    ``runs[0] span[0] runs[1] ... span[-1] runs[-1]``, the last run ending in ``\n``."""
+
+    def __init__(self, line: bytes, strings: list[tuple[str, bool]], gaps: list[_Gap], quotes: np.ndarray):
+        self.keys = [t for t, is_key in strings if is_key]
+        self.width = 2 * len(strings)
+        self.spans: list[_Span] = []
+        cuts: list[int] = []  # byte offsets in the line where runs end and start
+        for k, (text, is_key) in enumerate(strings):
+            if not is_key:
+                self.spans.append(_Span(strings[k - 1][0], False, 2 * k, 1))
+                cuts += [int(quotes[2 * k]) + 1, int(quotes[2 * k + 1])]
+            elif gaps[k + 1].bare:
+                lead = len(gaps[k + 1].lead)
+                self.spans.append(_Span(text, True, 2 * k + 1, 1 + lead))
+                start = int(quotes[2 * k + 1]) + 1 + lead
+                end = (int(quotes[2 * k + 2]) if k + 1 < len(strings) else len(line)) - len(gaps[k + 1].trail)
+                cuts += [start, end]
+        bounds = [0] + cuts + [len(line) + 1]
+        full = line + b"\n"
+        self.runs = [full[bounds[2 * i] : bounds[2 * i + 1]] for i in range(len(bounds) // 2)]
+
+
+class _Words:
+    """Little-endian 8-byte words starting at any byte of a part of a block, read from a
+    copy padded with zeros (8 bytes before, 40 after), so no read needs a bounds check."""
+
+    def __init__(self, part: bytes):
+        self.buf = bytes(8) + part + bytes(40)
+        self.w = np.ndarray(shape=(len(part) + 41,), dtype="<u8", buffer=self.buf, strides=(1,))
 
     def get(self, pos: np.ndarray) -> np.ndarray:
-        if len(pos) and pos.min() < 0:  # bytes before the start read as zeros
-            out = self.get(np.maximum(pos, 0))
-            neg = pos < 0
-            out[neg] <<= (np.uint64(8) * np.minimum(-pos[neg], 8).astype(np.uint64)) % np.uint64(64)
-            out[neg & (pos <= -8)] = 0
-            return out
-        if self.body is None:
-            return self.tail[pos - self.tail_start]
-        lim = self.n - 8
-        if not len(pos) or pos.max() <= lim:
-            return self.body[pos]
-        out = self.body[np.minimum(pos, lim)]
-        far = pos > lim
-        out[far] = self.tail[pos[far] - self.tail_start]
-        return out
-
-    def equal(self, pos: np.ndarray, text: bytes) -> np.ndarray:
-        """Per position: whether ``text`` starts there."""
-        hit = np.ones(len(pos), dtype=bool)
-        for off in range(0, len(text), 8):
-            part = text[off : off + 8]
-            got = self.get(pos + off)
-            if len(part) < 8:
-                got &= np.uint64((1 << (8 * len(part))) - 1)
-            hit &= got == np.uint64(int.from_bytes(part, "little"))
-        return hit
+        """The word at each position (from -8 to 32 past the end)."""
+        return self.w[pos + 8]
 
 
 _ZEROS = np.uint64(0x3030303030303030)
@@ -273,6 +281,17 @@ def _bare_column(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths: np.
         return None
 
 
+_POOL: ThreadPoolExecutor | None = None
+
+
+def _pool() -> ThreadPoolExecutor:
+    global _POOL
+    if _POOL is None:
+        _POOL = ThreadPoolExecutor(max_workers=max(1, min(4, os.cpu_count() or 1)),
+                                   thread_name_prefix="tracechain-json")
+    return _POOL
+
+
 #: Lines are checked in parts of about this many bytes, so that the positions and
 #: masks of a part stay in the CPU's cache between the passes over them.
 PART_BYTES = 1 << 20
@@ -287,118 +306,106 @@ def read_flat_block(block: bytes, nlines: int, wanted: tuple[str | None, ...] | 
     """
     if not nlines or not block.endswith(b"\n") or b"\\" in block:
         return None
-    u8 = np.frombuffer(block, dtype=np.uint8)
     if not block.isascii():
         try:
             block.decode("utf-8")
         except UnicodeDecodeError:
             return None
     first_nl = block.index(b"\n")
-    line = u8[: first_nl + 1]
-    tmpl = _template(block[:first_nl], np.flatnonzero(line == _QUOTE))
+    line = np.frombuffer(block, dtype=np.uint8, count=first_nl)
+    quotes = np.flatnonzero(line == _QUOTE)
+    tmpl = _template(block[:first_nl], quotes)
     if tmpl is None:
         return None
-    strings, gaps = tmpl
-    keys = [t for t, is_key in strings if is_key]
+    shape = _Shape(block[:first_nl], *tmpl, quotes)
     if wanted is None:
-        return FlatBlock(keys, {})
-    need = [w for w in dict.fromkeys(wanted) if w is not None and w in keys]
-    parts: list[dict[str, pa.Array]] = []
-    rows = 0
+        return FlatBlock(shape.keys, {})
+    need = [w for w in dict.fromkeys(wanted) if w is not None and w in shape.keys]
+    bounds = []
     start = 0
     while start < len(block):
         stop = block.find(b"\n", start + PART_BYTES) + 1 if start + PART_BYTES < len(block) else len(block)
         if stop == 0:
             stop = len(block)
-        part = _read_part(block, u8, start, stop, strings, gaps, need)
+        bounds.append((start, stop))
+        start = stop
+    # numpy lets go of the GIL in its loops, so the parts are read on a few threads
+    results = _pool().map(lambda b: _read_part(block[b[0]:b[1]], shape, need), bounds) \
+        if len(bounds) > 1 else [_read_part(block, shape, need)]
+    parts: list[dict[str, pa.Array]] = []
+    rows = 0
+    for part in results:
         if part is None:
             return None
         rows += part[0]
         parts.append(part[1])
-        start = stop
     if rows != nlines:  # every newline ends one of the rows checked, so no line was missed
         return None
     if len(parts) == 1:
-        return FlatBlock(keys, parts[0])
-    return FlatBlock(keys, {k: pa.concat_arrays([p[k] for p in parts]) for k in need})
+        return FlatBlock(shape.keys, parts[0])
+    return FlatBlock(shape.keys, {k: pa.concat_arrays([p[k] for p in parts]) for k in need})
 
 
-def _read_part(
-    block: bytes, whole: np.ndarray, start: int, stop: int,
-    strings: list[tuple[str, bool]], gaps: list[_Gap], need: list[str],
-) -> tuple[int, dict[str, pa.Array]] | None:
-    """The number of lines in ``block[start:stop]`` and their needed columns (None if
-    one line is not of the template's shape)."""
-    u8 = whole[start:stop]
-    m = len(strings)
-    width = 2 * m
+def _read_part(part: bytes, shape: _Shape, need: list[str]) -> tuple[int, dict[str, pa.Array]] | None:
+    """The number of lines in ``part`` and their needed columns (None if one line is not
+    of the template's shape)."""
+    u8 = np.frombuffer(part, dtype=np.uint8)
     q = np.flatnonzero(u8 == _QUOTE)
+    width = shape.width
     nlines = len(q) // width
     if not nlines or len(q) != width * nlines or np.count_nonzero(u8 < 0x20) != nlines:
-        return None  # (the only control bytes allowed are the line ends, checked below)
+        return None  # (the only control bytes allowed are the line ends, in the last run)
     qt = q.reshape(nlines, width).T.copy()  # one contiguous row per quote of a line
     del q
-    opens, closes = qt[0::2], qt[1::2]
-    head = gaps[0].lead
-    # line ends: after a fixed last gap, right after it; else right before the next row's prefix
-    ends = np.empty(nlines, dtype=np.int64)
-    ends[:-1] = opens[0, 1:] - len(head) - 1
-    ends[-1] = len(u8) - 1
-    if not gaps[m].bare and not np.array_equal(closes[-1] + 1 + len(gaps[m].lead), ends):
+    runs, spans = shape.runs, shape.spans
+    starts = [qt[sp.quote] + sp.skip for sp in spans]
+    # the lines tile the part: each begins where the one before ended
+    row_start = starts[0] - len(runs[0])
+    if row_start[0] != 0:
         return None
-    if opens[0][0] != len(head):
-        return None
-    # fixed text (every byte of it, each at its offset from a quote or a line end), one gather
-    fixed_pos: list[np.ndarray] = [ends]
-    fixed_val: list[int] = [_NL]
-    spans: dict[int, tuple[np.ndarray, np.ndarray]] = {}  # gap index -> (value start, length)
-
-    def fixed(base: np.ndarray, text: bytes) -> None:
-        for j, byte in enumerate(text):
-            fixed_pos.append(base + j)
-            fixed_val.append(byte)
-
-    fixed(opens[0] - len(head), head)
-    for g in range(1, m + 1):
-        gap = gaps[g]
-        lo = closes[g - 1] + 1
-        hi = ends if g == m else opens[g]
-        if not gap.bare:
-            if g < m and not np.all(hi - lo == len(gap.lead)):
-                return None
-            fixed(lo, gap.lead)
-            continue
-        vlo, vhi = lo + len(gap.lead), hi - len(gap.trail)
-        if (vhi <= vlo).any():
+    row_end = np.empty(nlines, dtype=np.int64)
+    row_end[:-1] = row_start[1:]
+    row_end[-1] = len(part)
+    ends = []
+    for i, sp in enumerate(spans):
+        if not sp.bare:
+            ends.append(qt[sp.quote + 1])
+        elif i + 1 < len(spans):
+            ends.append(starts[i + 1] - len(runs[i + 1]))
+        else:
+            ends.append(row_end - len(runs[-1]))
+    # the fixed runs: the template's length and bytes on every line
+    words = _Words(part)
+    pos_list, want_list, mask_list = [], [], []
+    run_starts = [row_start] + ends
+    for i, run in enumerate(runs):
+        at = run_starts[i]
+        stop = starts[i] if i < len(spans) else row_end
+        if not np.all(stop - at == len(run)):
             return None
-        fixed(lo, gap.lead)
-        fixed(vhi, gap.trail)
-        spans[g] = (vlo, vhi - vlo)
-    pos = np.concatenate(fixed_pos)
-    want = np.repeat(np.array(fixed_val, dtype=np.uint8), nlines)
-    if not np.array_equal(u8[pos], want):
+        for off in range(0, len(run), 8):
+            piece = run[off : off + 8]
+            pos_list.append(at + off)
+            want_list.append(int.from_bytes(piece, "little"))
+            mask_list.append((1 << (8 * len(piece))) - 1)
+    got = words.get(np.concatenate(pos_list)).reshape(len(pos_list), nlines)
+    got &= np.array(mask_list, dtype=np.uint64)[:, None]
+    if not np.array_equal(got, np.broadcast_to(np.array(want_list, dtype=np.uint64)[:, None], got.shape)):
         return None
-    del pos, want, fixed_pos
-    words = _Words(block, start)
-    # every row has the template's keys (so no key is missing or doubled)
+    del got
     columns: dict[str, pa.Array] = {}
-    for k, (text, is_key) in enumerate(strings):
-        lengths = closes[k] - opens[k] - 1
-        if is_key:
-            raw = text.encode("utf-8")
-            if not (np.all(lengths == len(raw)) and words.equal(opens[k] + 1, raw).all()):
+    for i, sp in enumerate(spans):
+        lengths = ends[i] - starts[i]
+        if sp.bare:
+            if (lengths <= 0).any():
                 return None
-            continue
-        key = strings[k - 1][0]
-        if key in need:
-            columns[key] = _spans_to_strings(u8, words, opens[k] + 1, lengths)
-    for g, (vstart, vlen) in spans.items():
-        key = strings[g - 1][0]
-        if key in need:
-            col = _bare_column(u8, words, vstart, vlen)
-            if col is None:
+            if sp.key in need:
+                col = _bare_column(u8, words, starts[i], lengths)
+                if col is None:
+                    return None
+                columns[sp.key] = col
+            elif _bare_ok(u8, words, starts[i], lengths) is False:
                 return None
-            columns[key] = col
-        elif _bare_ok(u8, words, vstart, vlen) is False:
-            return None
+        elif sp.key in need:
+            columns[sp.key] = _spans_to_strings(u8, words, starts[i], lengths)
     return nlines, columns

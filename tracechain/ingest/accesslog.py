@@ -95,7 +95,11 @@ FAST_RE = (
     r'(?: "(?:[^"\\]|\\.)*" "(?P<agent>(?:[^"\\]|\\.)*)")?$'
 )
 _LINE_PY = re.compile(LINE_RE)
-_MONTHS = pa.array(["Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"])
+_MONTH_NAMES = ("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec")
+# built from buffers: pyarrow's first ``pa.array`` call imports pandas where it is
+# installed, which importing this module (done to detect formats) should not cost
+_MONTHS = pa.Array.from_buffers(pa.string(), 12, [None, pa.py_buffer(np.arange(13, dtype=np.int32) * 3),
+                                                  pa.py_buffer("".join(_MONTH_NAMES).encode("ascii"))])
 _ESC = re.compile(r"\\(x[0-9a-fA-F]{2}|.)", re.S)
 _ESC_CHARS = {"n": b"\n", "t": b"\t", "r": b"\r", "v": b"\v", "f": b"\f", "b": b"\b"}
 
@@ -284,7 +288,7 @@ def _times(m: pa.StructArray) -> tuple[np.ndarray, np.ndarray]:
     return _seconds(year, mon, mon_ok, day, hh, mi, ss, tz_sign, tz_h, tz_m)
 
 
-_MONTH_CODES = np.array([(ord(a) << 16) | (ord(b) << 8) | ord(c) for a, b, c in _MONTHS.to_pylist()], dtype=np.int64)
+_MONTH_CODES = np.array([(ord(a) << 16) | (ord(b) << 8) | ord(c) for a, b, c in _MONTH_NAMES], dtype=np.int64)
 _MONTH_ORDER = np.argsort(_MONTH_CODES)
 
 

@@ -16,6 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from ..errors import FieldError
+from .._arrowutil import to_numpy
 
 __all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
 
@@ -126,13 +127,13 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
     if pa.types.is_null(typ):
         return np.full(n, np.nan), np.zeros(n, dtype=bool)
     if pa.types.is_timestamp(typ):
-        ints = pc.cast(arr, pa.int64()).to_numpy(zero_copy_only=False)
+        ints = to_numpy(pc.cast(arr, pa.int64()))
         secs = ints.astype(np.float64) * {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}[typ.unit]
-        nulls = arr.is_null().to_numpy(zero_copy_only=False)
+        nulls = to_numpy(arr.is_null())
         secs[nulls] = np.nan
         return secs, np.zeros(n, dtype=bool)
     if pa.types.is_integer(typ) or pa.types.is_floating(typ):
-        vals = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(np.float64, copy=True)
+        vals = to_numpy(pc.cast(arr, pa.float64())).astype(np.float64, copy=True)
         return vals * _epoch_scale(vals, spec.time_unit), np.zeros(n, dtype=bool)
     if pa.types.is_boolean(typ):
         return np.full(n, np.nan), ~arr.is_null().to_numpy(zero_copy_only=False)

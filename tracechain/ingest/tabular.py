@@ -13,6 +13,7 @@ import pyarrow.compute as pc
 from ..errors import IngestError
 from ..events import MAX_PROBLEMS, EventChunk, ParseReport
 from .fields import FieldSpec, times_to_seconds
+from .._arrowutil import bool_array, to_numpy
 
 __all__ = ["table_to_chunk", "as_string_column"]
 
@@ -57,7 +58,7 @@ def _empty(arr: pa.Array) -> np.ndarray:
     offs = np.frombuffer(off_buf, dtype=np.int64 if wide else np.int32, count=arr.offset + n + 1)[arr.offset:]
     out = offs[1:] == offs[:-1]
     if arr.null_count:
-        out |= arr.is_null().to_numpy(zero_copy_only=False)
+        out |= to_numpy(arr.is_null())
     return out
 
 
@@ -105,7 +106,7 @@ def table_to_chunk(
     if found:
         _problems(report, source, lines, found, strict)
     if not keep.all():
-        mask = pa.array(keep)
+        mask = bool_array(keep)
         cols = {k: pc.filter(v, mask) for k, v in cols.items()}
         secs = secs[keep]
         lines = lines[keep]

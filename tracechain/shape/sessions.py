@@ -32,6 +32,7 @@ from ..counts import END, START, Location, State, TransitionCounts, _csr, state_
 from ..events import EventChunk
 from .cases import CasePolicy
 from .mapping import Mapping
+from .._arrowutil import to_numpy
 
 __all__ = ["SessionCounter", "OutOfOrder"]
 
@@ -348,7 +349,7 @@ class SessionCounter:
         """(code per distinct key, index into those per event); new keys get the next
         codes in order of first appearance in the chunk."""
         enc = pc.dictionary_encode(arr)
-        idx = enc.indices.to_numpy(zero_copy_only=False)
+        idx = to_numpy(enc.indices)
         lut = self._keys.codes(enc.dictionary)
         self._grow(len(self._keys))
         return lut, idx
@@ -393,7 +394,7 @@ class SessionCounter:
             self._sources.append(chunk.source)
         enc = pc.dictionary_encode(chunk.event)
         lut = self._map_dictionary(enc.dictionary.to_pylist())
-        ev_idx = enc.indices.to_numpy(zero_copy_only=False)
+        ev_idx = to_numpy(enc.indices)
         del enc
         lut_s, idx_s = self._session_codes(chunk.session)
         t = chunk.time

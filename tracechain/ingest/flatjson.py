@@ -154,15 +154,15 @@ class _Shape:
 
 
 class _Words:
-    """Little-endian 8-byte words starting at any byte of a part of a block, read from a
-    copy padded with zeros (8 bytes before, 40 after), so no read needs a bounds check."""
+    """Little-endian 8-byte words starting at any byte of a part of a block. They are
+    read from a copy of the block padded with zeros (8 bytes before, 40 after), so no
+    read needs a bounds check; positions count from the part's first byte."""
 
-    def __init__(self, part: bytes):
-        self.buf = bytes(8) + part + bytes(40)
-        self.w = np.ndarray(shape=(len(part) + 41,), dtype="<u8", buffer=self.buf, strides=(1,))
+    def __init__(self, padded: bytes, start: int, length: int):
+        self.w = np.ndarray(shape=(length + 41,), dtype="<u8", buffer=padded, offset=start, strides=(1,))
 
     def get(self, pos: np.ndarray) -> np.ndarray:
-        """The word at each position (from -8 to 32 past the end)."""
+        """The word at each position (from -8 to 32 past the part's end)."""
         return self.w[pos + 8]
 
 
@@ -330,8 +330,9 @@ def read_flat_block(block: bytes, nlines: int, wanted: tuple[str | None, ...] | 
         bounds.append((start, stop))
         start = stop
     # numpy lets go of the GIL in its loops, so the parts are read on a few threads
-    results = _pool().map(lambda b: _read_part(block[b[0]:b[1]], shape, need), bounds) \
-        if len(bounds) > 1 else [_read_part(block, shape, need)]
+    padded = bytes(8) + block + bytes(40)
+    results = _pool().map(lambda b: _read_part(padded, b[0], b[1], shape, need), bounds) \
+        if len(bounds) > 1 else [_read_part(padded, 0, len(block), shape, need)]
     parts: list[dict[str, pa.Array]] = []
     rows = 0
     for part in results:
@@ -346,10 +347,13 @@ def read_flat_block(block: bytes, nlines: int, wanted: tuple[str | None, ...] | 
     return FlatBlock(shape.keys, {k: pa.concat_arrays([p[k] for p in parts]) for k in need})
 
 
-def _read_part(part: bytes, shape: _Shape, need: list[str]) -> tuple[int, dict[str, pa.Array]] | None:
-    """The number of lines in ``part`` and their needed columns (None if one line is not
-    of the template's shape)."""
-    u8 = np.frombuffer(part, dtype=np.uint8)
+def _read_part(
+    padded: bytes, start: int, stop: int, shape: _Shape, need: list[str]
+) -> tuple[int, dict[str, pa.Array]] | None:
+    """The number of lines in ``block[start:stop]`` (``padded`` is the block with 8 zero
+    bytes before it and 40 after) and their needed columns (None if one line is not of
+    the template's shape)."""
+    u8 = np.frombuffer(padded, dtype=np.uint8, offset=8 + start, count=stop - start)
     q = np.flatnonzero(u8 == _QUOTE)
     width = shape.width
     nlines = len(q) // width
@@ -365,7 +369,7 @@ def _read_part(part: bytes, shape: _Shape, need: list[str]) -> tuple[int, dict[s
         return None
     row_end = np.empty(nlines, dtype=np.int64)
     row_end[:-1] = row_start[1:]
-    row_end[-1] = len(part)
+    row_end[-1] = len(u8)
     ends = []
     for i, sp in enumerate(spans):
         if not sp.bare:
@@ -375,7 +379,7 @@ def _read_part(part: bytes, shape: _Shape, need: list[str]) -> tuple[int, dict[s
         else:
             ends.append(row_end - len(runs[-1]))
     # the fixed runs: the template's length and bytes on every line
-    words = _Words(part)
+    words = _Words(padded, start, stop - start)
     pos_list, want_list, mask_list = [], [], []
     run_starts = [row_start] + ends
     for i, run in enumerate(runs):

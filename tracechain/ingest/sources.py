@@ -4,6 +4,11 @@ Compression is recognised by the first bytes of the stream, not by the file name
 Standard input (``-``) is copied to a temporary file as it is read, so a source can
 always be read a second time (counting needs that when a log is not in time order
 per session).
+
+Progress: a source whose ``on_read`` is set reports the bytes read from its file (the
+compressed bytes of a compressed file) through :func:`open_binary`, so every parser that
+opens its input there reports them. A source without it is opened exactly as before,
+with nothing between the parser and the file.
 """
 
 from __future__ import annotations
@@ -19,8 +24,8 @@ import shutil
 import sys
 import tempfile
 import threading
-from collections.abc import Iterable, Iterator
-from dataclasses import dataclass
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, field
 from typing import BinaryIO, TypeVar
 
 import numpy as np
@@ -43,21 +48,32 @@ _MAGIC = {
 
 @dataclass(frozen=True)
 class Source:
-    """A readable input: ``name`` is shown to users, ``path`` is opened."""
+    """A readable input: ``name`` is shown to users, ``path`` is opened.
+
+    ``on_read``, when set, is called with the number of bytes read from the file since
+    its last call, once that is at least :data:`REPORT_BYTES`, and at the end of the file
+    or when it is closed; it is called from the thread that reads, and does not take part
+    in comparisons.
+    """
 
     name: str
     path: str
+    on_read: Callable[[int], None] | None = field(default=None, compare=False, repr=False)
 
 
-def expand_sources(paths: list[str], stdin: BinaryIO | None = None) -> list[Source]:
+def expand_sources(
+    paths: list[str], stdin: BinaryIO | None = None, copied: Callable[[int], None] | None = None
+) -> list[Source]:
     """Turn command-line paths (files, directories, globs, ``-``) into sources.
 
     Directories are walked recursively in sorted order, skipping hidden files.
+    ``copied``, when given, is called with the bytes copied from standard input as it is
+    copied to its temporary file.
     """
     out: list[Source] = []
     for p in paths:
         if p == "-":
-            out.append(_spool_stdin(stdin))
+            out.append(_spool_stdin(stdin, copied))
             continue
         if os.path.isdir(p):
             found = []
@@ -81,11 +97,19 @@ def expand_sources(paths: list[str], stdin: BinaryIO | None = None) -> list[Sour
     return out
 
 
-def _spool_stdin(stdin: BinaryIO | None) -> Source:
+def _spool_stdin(stdin: BinaryIO | None, copied: Callable[[int], None] | None = None) -> Source:
     stream = stdin if stdin is not None else sys.stdin.buffer
     fd, path = tempfile.mkstemp(prefix="tracechain-stdin-")
     with os.fdopen(fd, "wb") as out:
-        shutil.copyfileobj(stream, out, 1 << 20)
+        if copied is None:
+            shutil.copyfileobj(stream, out, 1 << 20)
+        else:
+            while True:
+                data = stream.read(1 << 20)
+                if not data:
+                    break
+                out.write(data)
+                copied(len(data))
     _SPOOLED.append(path)
     return Source("<stdin>", path)
 
@@ -103,13 +127,23 @@ def cleanup_spooled() -> None:
 
 
 def open_binary(source: Source) -> BinaryIO:
-    """Open a source for reading bytes, decompressing by magic number."""
+    """Open a source for reading bytes, decompressing by magic number.
+
+    With ``source.on_read`` set, the bytes read from the file are reported to it (see
+    :class:`Source`); the stream returned reads the same bytes either way.
+    """
+    return _open(source, source.on_read)
+
+
+def _open(source: Source, on_read: Callable[[int], None] | None) -> BinaryIO:
     try:
         raw = open(source.path, "rb")
     except OSError as err:
         raise IngestError(f"cannot open: {err.strerror}", source.name) from err
     head = raw.read(6)
     raw.seek(0)
+    if on_read is not None:
+        return _open_counted(raw, head, on_read)
     for magic, opener in _MAGIC.items():
         if head.startswith(magic):
             raw.close()
@@ -117,9 +151,120 @@ def open_binary(source: Source) -> BinaryIO:
     return raw
 
 
+#: A counted file reports at least every this many bytes (and at its end).
+REPORT_BYTES = 1 << 20
+
+
+class _CountedFile(io.RawIOBase):
+    """A file whose reads are tallied and reported to a callback in batches."""
+
+    def __init__(self, f: io.FileIO, on_read: Callable[[int], None]):
+        super().__init__()
+        self._f = f
+        self._on_read = on_read
+        self._pending = 0
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return self._f.seekable()
+
+    def seek(self, pos: int, whence: int = 0) -> int:
+        return self._f.seek(pos, whence)
+
+    def tell(self) -> int:
+        return self._f.tell()
+
+    def fileno(self) -> int:
+        return self._f.fileno()
+
+    @property
+    def name(self):
+        return self._f.name
+
+    def readinto(self, b) -> int | None:
+        n = self._f.readinto(b)
+        if n:
+            self._pending += n
+            if self._pending >= REPORT_BYTES:
+                self._report()
+        elif n == 0:
+            self._report()  # the end of the file
+        return n
+
+    def _report(self) -> None:
+        n, self._pending = self._pending, 0
+        if n:
+            self._on_read(n)
+
+    def close(self) -> None:
+        if self.closed:
+            return
+        try:
+            self._report()
+        finally:
+            try:
+                self._f.close()
+            finally:
+                super().close()
+
+
+class _ClosesFile:
+    """Mixed into a decompressing reader given a file object: closing the reader closes
+    the file too (the standard readers leave a file object they were given open)."""
+
+    _under: BinaryIO | None = None
+
+    def close(self) -> None:
+        try:
+            super().close()  # type: ignore[misc]
+        finally:
+            under, self._under = self._under, None
+            if under is not None:
+                under.close()
+
+
+class _GzipReader(_ClosesFile, gzip.GzipFile):
+    pass
+
+
+class _Bz2Reader(_ClosesFile, bz2.BZ2File):
+    pass
+
+
+class _XzReader(_ClosesFile, lzma.LZMAFile):
+    pass
+
+
+_COUNTED_OPENERS = {
+    b"\x1f\x8b": lambda f: _GzipReader(fileobj=f, mode="rb"),
+    b"BZh": lambda f: _Bz2Reader(f, "rb"),
+    b"\xfd7zXZ\x00": lambda f: _XzReader(f, "rb"),
+}
+
+
+def _open_counted(raw: io.BufferedReader, head: bytes, on_read: Callable[[int], None]) -> BinaryIO:
+    """``raw`` (at its start) as a buffered stream whose file reads are reported; decompressed
+    when ``head`` says so, counting the compressed bytes."""
+    f = raw.detach()
+    f.seek(0)  # (the head read may have left the file ahead of the buffered position)
+    counted = io.BufferedReader(_CountedFile(f, on_read))  # type: ignore[arg-type]
+    for magic, opener in _COUNTED_OPENERS.items():
+        if head.startswith(magic):
+            try:
+                reader = opener(counted)
+            except BaseException:
+                counted.close()
+                raise
+            reader._under = counted
+            return reader  # type: ignore[return-value]
+    return counted  # type: ignore[return-value]
+
+
 def peek(source: Source, nbytes: int = 65536) -> bytes:
-    """The first bytes of a source, decompressed."""
-    with open_binary(source) as f:
+    """The first bytes of a source, decompressed (not reported as read: see :class:`Source`)."""
+    with _open(source, None) as f:
         try:
             return f.read(nbytes)
         except (OSError, EOFError, lzma.LZMAError) as err:

@@ -7,6 +7,8 @@ edge lists, and returns one :class:`~tracechain.counts.TransitionCounts` with th
 :class:`~tracechain.events.ParseReport`. If a session's events turn out not to be in
 time order, the sources are read once more in sorting mode, so the counts are right
 either way; the report notes it.
+
+Both take ``progress`` (default off): see :func:`tracechain.progress.make_meter`.
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from .ingest.base import ReadOptions
 from .ingest.fields import FieldSpec
 from .ingest.registry import detect_parser, get_parser
 from .ingest.sources import Source, expand_sources, read_ahead
+from .progress import ReadMeter, make_meter
 from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
@@ -53,26 +56,41 @@ class ShapeOptions:
         )
 
 
-def _resolve(paths: Iterable[str] | Iterable[Source], stdin: BinaryIO | None) -> list[Source]:
+def _resolve(paths: Iterable[str] | Iterable[Source], stdin: BinaryIO | None,
+             meter: ReadMeter | None = None) -> list[Source]:
     items = list(paths)
     if items and all(isinstance(p, Source) for p in items):
         return items  # type: ignore[return-value]
-    return expand_sources([str(p) for p in items], stdin)
+    return expand_sources([str(p) for p in items], stdin, copied=meter.copied if meter is not None else None)
 
 
 def read_events(
     paths: Iterable[str], format: str | None = None, options: ReadOptions | None = None,
-    report: ParseReport | None = None, stdin: BinaryIO | None = None,
+    report: ParseReport | None = None, stdin: BinaryIO | None = None, progress: Any = None,
 ) -> Iterator[EventChunk]:
-    """Yield event chunks from every source (pre-aggregated sources are refused)."""
+    """Yield event chunks from every source (pre-aggregated sources are refused).
+
+    ``progress``: as for :func:`count_sources`; the bar is cleared when the last chunk has
+    been taken (or the iterator is closed).
+    """
     options = options or ReadOptions()
     report = report if report is not None else ParseReport()
-    for src in _resolve(paths, stdin):
-        parser = get_parser(format) if format else detect_parser(src)
-        if parser.kind != "events":
-            raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}), not events")
-        report.sources.append(src.name)
-        yield from parser.read(src, options, report)
+    meter = make_meter(progress)
+    try:
+        sources = _resolve(paths, stdin, meter)
+        if meter is not None:
+            meter.start(sources)
+        for i, src in enumerate(sources):
+            parser = get_parser(format) if format else detect_parser(src)
+            if parser.kind != "events":
+                raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}), not events")
+            report.sources.append(src.name)
+            yield from parser.read(meter.bind(i) if meter is not None else src, options, report)
+            if meter is not None:
+                meter.finished(i)
+    finally:
+        if meter is not None:
+            meter.close()
 
 
 def count_chunks(chunks: Iterable[EventChunk], shape: ShapeOptions | None = None, finish_session=None) -> TransitionCounts:
@@ -104,17 +122,35 @@ def count_sources(
     extra: dict[str, Any] | None = None,
     stdin: BinaryIO | None = None,
     finish_session=None,
+    progress: Any = None,
 ) -> tuple[TransitionCounts, ParseReport]:
     """Read, shape and count every source; return the counts and the parse report.
+
+    ``progress`` reports the bytes read from the sources' files (compressed bytes for
+    compressed files): None or False for none (the default), True for a bar on standard
+    error that appears once reading takes over a second, a tqdm-like object (its
+    ``update(n)`` is called) or a callable (called with each number of bytes read). A
+    source read a second time (sessions not in time order) is reported again. The bar is
+    cleared before this returns.
 
     Raises
     ------
     EmptyInputError
         When no source yields a usable event or transition.
     """
+    meter = make_meter(progress)
+    try:
+        return _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session, meter)
+    finally:
+        if meter is not None:
+            meter.close()
+
+
+def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session,
+                   meter: ReadMeter | None) -> tuple[TransitionCounts, ParseReport]:
     shape = shape or ShapeOptions()
     options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}))
-    sources = _resolve(paths, stdin)
+    sources = _resolve(paths, stdin, meter)
     plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
     gap_note = None
     if shape.gap is None:
@@ -129,14 +165,19 @@ def count_sources(
         counter = shape.counter(sort=sort)
         pre = TransitionCounts.empty()
         any_events = False
-        for src, parser in plan:
+        if meter is not None:
+            meter.start(sources, again=sort)
+        for i, (src, parser) in enumerate(plan):
             report.sources.append(src.name)
+            read_src = meter.bind(i) if meter is not None else src
             if parser.kind == "counts":
-                pre = pre + parser.read_counts(src, options, report)
-                continue
-            for chunk in read_ahead(parser.read(src, options, report)):
-                any_events = True
-                counter.add(chunk)
+                pre = pre + parser.read_counts(read_src, options, report)
+            else:
+                for chunk in read_ahead(parser.read(read_src, options, report)):
+                    any_events = True
+                    counter.add(chunk)
+            if meter is not None:
+                meter.finished(i)
         counts = counter.finish(finish_session, cases=shape.cases) if any_events else TransitionCounts.empty()
         if pre.n_states:
             counts = counts + pre if counts.n_states else pre

@@ -92,6 +92,10 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                    help="unit of numeric epoch times (default: from their magnitude)")
     g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
     g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
+    g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
+                   help="a progress bar (bytes read) on standard error while reading; by default shown when "
+                        "standard error is a terminal, reading takes over a second and --quiet is not given "
+                        "(TRACECHAIN_PROGRESS=1 or 0 sets the default)")
     w = p.add_argument_group("format-specific reading (web logs, traces, XES, CloudEvents, strace)")
     w.add_argument("--status", metavar="LIST", help="web logs: keep these statuses, e.g. 2xx,3xx or 200,304")
     w.add_argument("--method", metavar="LIST", help="web logs: keep these request methods, e.g. GET,POST")
@@ -229,11 +233,27 @@ def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict
     return fmt, extra
 
 
+#: options naming output files: no progress bar when one of them is standard error
+_OUTPUT_OPTIONS = ("json", "dot", "svg", "png", "pdf", "html", "markdown", "csv", "output")
+
+
+def progress_from_args(args: argparse.Namespace) -> bool:
+    """The ``progress`` argument of :func:`~tracechain.pipeline.count_sources` for a command:
+    as --progress/--no-progress, TRACECHAIN_PROGRESS, --quiet and the outputs say (see
+    :func:`tracechain.progress.wanted`); False for a namespace without the option."""
+    from .progress import wanted
+
+    if not hasattr(args, "progress"):
+        return False
+    outputs = [v for v in (getattr(args, k, None) for k in _OUTPUT_OPTIONS) if isinstance(v, str)]
+    return wanted(args.progress, quiet=bool(getattr(args, "quiet", False)), outputs=outputs)
+
+
 def build_chain(args: argparse.Namespace):
     shape, fields, goals, terminal = shape_from_args(args)
     fmt, extra = extra_from_args(args, shape.mapping)
     counts, report = count_sources(args.paths, format=fmt, fields=fields, shape=shape, strict=args.strict,
-                                   extra=extra)
+                                   extra=extra, progress=progress_from_args(args))
     chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
     settings = {
         "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,

@@ -113,7 +113,7 @@ def register(subparsers) -> None:
 
 # -- handlers -----------------------------------------------------------------------------
 def cmd_order(args: argparse.Namespace) -> int:
-    from ..cli import shape_from_args
+    from ..cli import progress_from_args, shape_from_args
     from ..ingest.base import ReadOptions
     from ..pipeline import read_events
     from ..report.text import safe_text
@@ -121,7 +121,8 @@ def cmd_order(args: argparse.Namespace) -> int:
 
     shape, fields, goals, _ = shape_from_args(args)
     options = ReadOptions(fields=fields, strict=args.strict)
-    sessions = session_sequences(read_events(args.paths, format=args.format, options=options), shape)
+    sessions = session_sequences(read_events(args.paths, format=args.format, options=options,
+                                             progress=progress_from_args(args)), shape)
     if not len(sessions):
         raise UsageError("no sessions in the input")
     K = args.max_order

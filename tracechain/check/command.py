@@ -129,7 +129,7 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
 
         finish = finished_in
     counts, report = count_sources(ns.paths, format=fmt, fields=fields, shape=shape, strict=ns.strict,
-                                   extra=extra, finish_session=finish)
+                                   extra=extra, finish_session=finish, progress=cli.progress_from_args(ns))
     known = set(counts.states)
     last_names = {_last_name(s) for s in counts.states}
     present = [g for g in goals if g in known]

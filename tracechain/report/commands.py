@@ -132,7 +132,7 @@ def _diagram(result, args, groups):
 def _order_test(args):
     """The order table of the input's sessions (orders 0-2), or None with a warning."""
     from ..analyze.order import order_table, session_sequences
-    from ..cli import shape_from_args
+    from ..cli import progress_from_args, shape_from_args
     from ..errors import TracechainError
     from ..ingest.base import ReadOptions
     from ..pipeline import read_events
@@ -140,7 +140,8 @@ def _order_test(args):
     shape, fields, goals, _ = shape_from_args(args)
     try:
         sessions = session_sequences(read_events(args.paths, format=args.format,
-                                                 options=ReadOptions(fields=fields, strict=args.strict)), shape)
+                                                 options=ReadOptions(fields=fields, strict=args.strict),
+                                                 progress=progress_from_args(args)), shape)
         return order_table(sessions, 2, goals=tuple(goals)) if len(sessions) else None
     except TracechainError as err:
         print(f"tracechain: warning: no order test: {err}", file=sys.stderr)
@@ -218,7 +219,7 @@ def _counts_for_compare(args):
     import os
 
     from ..analyze.compare import count_split_at, count_split_by_field, parse_time
-    from ..cli import shape_from_args
+    from ..cli import progress_from_args, shape_from_args
     from ..errors import UsageError
     from ..pipeline import count_sources
 
@@ -233,8 +234,9 @@ def _counts_for_compare(args):
         if len(args.paths) != 2:
             raise UsageError(f"compare needs two inputs (A B), or one with --split-at or --split-field; "
                              f"got {len(args.paths)}")
-        a, ra = count_sources([args.paths[0]], **kw)
-        b, rb = count_sources([args.paths[1]], **kw)
+        progress = progress_from_args(args)
+        a, ra = count_sources([args.paths[0]], progress=progress, **kw)
+        b, rb = count_sources([args.paths[1]], progress=progress, **kw)
         names = tuple(os.path.basename(p.rstrip("/")) or p for p in args.paths)
         if names[0] == names[1]:
             names = ("A", "B")

@@ -85,7 +85,14 @@ def expand_sources(
             out.extend(Source(f, f) for f in sorted(found))
             continue
         if os.path.exists(p):
-            out.append(Source(p, p))
+            if os.path.isfile(p):
+                out.append(Source(p, p))
+            else:  # a named pipe or device (``<(zcat log)``): read once, like standard input
+                try:
+                    with open(p, "rb") as stream:
+                        out.append(_spool_stdin(stream, copied, name=p))
+                except OSError as err:
+                    raise UsageError(f"cannot read {p!r}: {err.strerror or err}") from err
             continue
         matches = sorted(glob.glob(p, recursive=True))
         matches = [m for m in matches if os.path.isfile(m)]
@@ -97,21 +104,28 @@ def expand_sources(
     return out
 
 
-def _spool_stdin(stdin: BinaryIO | None, copied: Callable[[int], None] | None = None) -> Source:
+def _spool_stdin(
+    stdin: BinaryIO | None, copied: Callable[[int], None] | None = None, name: str = "<stdin>"
+) -> Source:
+    """Copy a stream that can be read only once to a temporary file (removed by
+    :func:`cleanup_spooled`, also when the copy fails half-way)."""
     stream = stdin if stdin is not None else sys.stdin.buffer
     fd, path = tempfile.mkstemp(prefix="tracechain-stdin-")
-    with os.fdopen(fd, "wb") as out:
-        if copied is None:
-            shutil.copyfileobj(stream, out, 1 << 20)
-        else:
-            while True:
-                data = stream.read(1 << 20)
-                if not data:
-                    break
-                out.write(data)
-                copied(len(data))
     _SPOOLED.append(path)
-    return Source("<stdin>", path)
+    try:
+        with os.fdopen(fd, "wb") as out:
+            if copied is None:
+                shutil.copyfileobj(stream, out, 1 << 20)
+            else:
+                while True:
+                    data = stream.read(1 << 20)
+                    if not data:
+                        break
+                    out.write(data)
+                    copied(len(data))
+    except OSError as err:
+        raise IngestError(f"cannot read: {err.strerror or err}", name) from err
+    return Source(name, path)
 
 
 _SPOOLED: list[str] = []

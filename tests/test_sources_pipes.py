@@ -1,0 +1,60 @@
+"""Inputs that can be read only once: named pipes (as ``<(zcat log)`` gives) and streams."""
+
+from __future__ import annotations
+
+import os
+import threading
+
+import pytest
+
+from tracechain.errors import IngestError
+from tracechain.ingest import sources
+from tracechain.pipeline import count_sources
+
+LOG = (
+    '{"session_id": "a", "timestamp": 1, "event": "home"}\n'
+    '{"session_id": "a", "timestamp": 2, "event": "cart"}\n'
+    '{"session_id": "b", "timestamp": 3, "event": "home"}\n'
+)
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes need a POSIX system")
+def test_a_named_pipe_is_read_like_the_file(tmp_path):
+    plain = tmp_path / "log.jsonl"
+    plain.write_text(LOG, encoding="utf-8")
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+
+    def write():
+        with open(fifo, "w", encoding="utf-8") as f:
+            f.write(LOG)
+
+    writer = threading.Thread(target=write)
+    writer.start()
+    try:
+        piped, report = count_sources([str(fifo)])
+    finally:
+        writer.join(timeout=5)
+        sources.cleanup_spooled()
+    direct, _ = count_sources([str(plain)])
+    assert (piped.counts != direct.counts).nnz == 0 and piped.states == direct.states
+    assert report.sources == [str(fifo)]  # named as the user wrote it
+
+
+def test_a_stream_that_fails_half_way_is_an_input_error_and_leaves_no_temporary_file(tmp_path, monkeypatch):
+    monkeypatch.setattr(sources.tempfile, "tempdir", str(tmp_path))
+
+    class Broken:
+        def __init__(self):
+            self.calls = 0
+
+        def read(self, n=-1):
+            self.calls += 1
+            if self.calls > 1:
+                raise OSError("connection reset")
+            return b'{"session_id": "a", "event": "x"}\n'
+
+    with pytest.raises(IngestError, match="cannot read: connection reset"):
+        sources.expand_sources(["-"], stdin=Broken(), copied=lambda n: None)
+    sources.cleanup_spooled()
+    assert not list(tmp_path.glob("tracechain-stdin-*"))

@@ -330,7 +330,8 @@ def read_flat_block(block: bytes, nlines: int, wanted: tuple[str | None, ...] | 
         bounds.append((start, stop))
         start = stop
     # numpy lets go of the GIL in its loops, so the parts are read on a few threads
-    padded = bytes(8) + block + bytes(40)
+    padded = bytearray(len(block) + 48)  # (one copy; ``bytes(8) + block + ...`` makes two)
+    padded[8 : 8 + len(block)] = block
     results = _pool().map(lambda b: _read_part(padded, b[0], b[1], shape, need), bounds) \
         if len(bounds) > 1 else [_read_part(padded, 0, len(block), shape, need)]
     parts: list[dict[str, pa.Array]] = []

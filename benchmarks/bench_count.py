@@ -46,9 +46,11 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
 import sys
 import time
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import harness  # noqa: E402  (the benchmarks' shared child-process harness)
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 SEED = 20261202
@@ -242,11 +244,7 @@ def run_one(tool, fmt, path, result):
 
 def child(args, env=None):
     """Run this script with ``args`` in a new process; return (wall s, peak MB, cpu s, rc)."""
-    t0 = time.perf_counter()
-    p = subprocess.Popen([sys.executable, os.path.abspath(__file__), *args], env=env)
-    _, status, usage = os.wait4(p.pid, 0)
-    p.returncode = os.waitstatus_to_exitcode(status)
-    return time.perf_counter() - t0, usage.ru_maxrss / 1024, usage.ru_utime + usage.ru_stime, p.returncode
+    return harness.child(__file__, args, env)
 
 
 def data_file(workdir, n, fmt, case):
@@ -265,34 +263,9 @@ def data_file(workdir, n, fmt, case):
     return path
 
 
-def warm(path):
-    """Read the file once so that every measured run finds it in the page cache."""
-    buf = bytearray(1 << 24)
-    with open(path, "rb", buffering=0) as f:
-        while f.readinto(buf):
-            pass
-
-
 def measure(tool, fmt, path, workdir, repeat=1):
     """The fastest of ``repeat`` runs (peak memory: the largest)."""
-    best = None
-    peaks = []
-    for _ in range(repeat):
-        warm(path)
-        result = os.path.join(workdir, f".result-{tool}.json")
-        wall, peak, cpu, rc = child(["--run-one", tool, fmt, path, result])
-        if rc:
-            sys.exit(f"{tool} run on {path} failed (exit {rc})")
-        with open(result) as f:
-            out = json.load(f)
-        os.unlink(result)
-        out.update(wall=wall, peak_mb=peak, cpu=cpu)
-        peaks.append(peak)
-        if best is None or out["seconds"] < best["seconds"]:
-            best = out
-    best["peak_mb"] = max(peaks)
-    return best
-
+    return harness.measure(__file__, [tool, fmt, path], path, os.path.join(workdir, f".result-{tool}.json"), repeat)
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])

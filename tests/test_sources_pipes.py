@@ -58,3 +58,25 @@ def test_a_stream_that_fails_half_way_is_an_input_error_and_leaves_no_temporary_
         sources.expand_sources(["-"], stdin=Broken(), copied=lambda n: None)
     sources.cleanup_spooled()
     assert not list(tmp_path.glob("tracechain-stdin-*"))
+
+
+@pytest.mark.parametrize("fmt", ["jsonl", "csv"])
+def test_a_truncated_gzip_names_a_line_near_where_it_broke(tmp_path, fmt):
+    import gzip
+    import json
+    import zlib
+
+    if fmt == "jsonl":
+        text = "".join(json.dumps({"session_id": f"s{i % 7}", "timestamp": i, "event": f"e{i % 5}"}) + "\n"
+                       for i in range(20000))
+    else:
+        text = "session_id,timestamp,event\n" + "".join(f"s{i % 7},{i},e{i % 5}\n" for i in range(20000))
+    data = gzip.compress(text.encode())
+    path = tmp_path / f"log.{fmt}.gz"
+    path.write_bytes(data[: len(data) // 2])
+    # how many whole lines the first half of the stream still holds (zlib as the reference)
+    recoverable = zlib.decompressobj(16 + zlib.MAX_WBITS).decompress(data[: len(data) // 2]).count(b"\n")
+    with pytest.raises(IngestError, match="cannot decompress") as info:
+        count_sources([str(path)], extra={"block_bytes": 1 << 14})
+    assert info.value.source == str(path)
+    assert 1 < info.value.line <= recoverable + 1

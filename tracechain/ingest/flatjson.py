@@ -50,13 +50,15 @@ _LAST_VALUE = re.compile(_SP + rb"\}" + _SP)
 
 
 class FlatBlock:
-    """What :func:`read_flat_block` found: the template's keys and the needed columns."""
+    """What :func:`read_flat_block` found: the template's keys, the needed columns and
+    the number of lines (0 when only the keys were asked for)."""
 
-    __slots__ = ("keys", "columns")
+    __slots__ = ("keys", "columns", "lines")
 
-    def __init__(self, keys: list[str], columns: dict[str, pa.Array]):
+    def __init__(self, keys: list[str], columns: dict[str, pa.Array], lines: int = 0):
         self.keys = keys
         self.columns = columns
+        self.lines = lines
 
 
 class _Gap:
@@ -297,14 +299,15 @@ def _pool() -> ThreadPoolExecutor:
 PART_BYTES = 1 << 20
 
 
-def read_flat_block(block: bytes, nlines: int, wanted: tuple[str | None, ...] | None) -> FlatBlock | None:
+def read_flat_block(block: bytes, nlines: int | None, wanted: tuple[str | None, ...] | None) -> FlatBlock | None:
     """Read a block of flat JSON objects of one shape, or return None.
 
-    ``nlines`` is the number of newlines in ``block``; ``wanted`` names the keys whose
-    columns are returned (None: only find the keys). Key order and spacing are the first
-    line's; see the module docstring for what qualifies.
+    ``nlines`` is the number of newlines in ``block`` when known (None: not counted yet;
+    the result's ``lines`` counts them); ``wanted`` names the keys whose columns are
+    returned (None: only find the keys). Key order and spacing are the first line's; see
+    the module docstring for what qualifies.
     """
-    if not nlines or not block.endswith(b"\n") or b"\\" in block:
+    if nlines == 0 or not block.endswith(b"\n") or b"\\" in block:
         return None
     if not block.isascii():
         try:
@@ -341,11 +344,13 @@ def read_flat_block(block: bytes, nlines: int, wanted: tuple[str | None, ...] | 
             return None
         rows += part[0]
         parts.append(part[1])
-    if rows != nlines:  # every newline ends one of the rows checked, so no line was missed
+    # every row ends in a newline and no other control byte is in a part, so the rows are
+    # the lines (a count from the caller is checked all the same)
+    if nlines is not None and rows != nlines:
         return None
     if len(parts) == 1:
-        return FlatBlock(shape.keys, parts[0])
-    return FlatBlock(shape.keys, {k: pa.concat_arrays([p[k] for p in parts]) for k in need})
+        return FlatBlock(shape.keys, parts[0], rows)
+    return FlatBlock(shape.keys, {k: pa.concat_arrays([p[k] for p in parts]) for k in need}, rows)
 
 
 def _read_part(

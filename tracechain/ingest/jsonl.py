@@ -23,7 +23,7 @@ from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
 from .flatjson import read_flat_block
-from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, text_lines
+from .sources import BLOCK_BYTES, Source, count_newlines, iter_line_blocks_counted, read_ahead, text_lines
 from .tabular import table_to_chunk
 
 __all__ = ["JsonLinesParser"]
@@ -79,16 +79,30 @@ class JsonLinesParser:
         seen: dict[str, None] = {}  # every key seen so far, in order
         schema: pa.Schema | None = None
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
-        for block, first_line, newlines in read_ahead(iter_line_blocks_counted(source, block_bytes)):
-            nlines = newlines + (0 if block.endswith(b"\n") else 1)
-            report.lines_read += nlines
+        line_no = 1  # (counted here: the flat reader counts the lines of the blocks it takes)
+        blocks = read_ahead(iter_line_blocks_counted(source, block_bytes, count=False))
+        while True:
+            try:
+                item = next(blocks, None)
+            except IngestError as err:  # the block reader names no line: this is where it stopped
+                if err.line is None and err.source == source.name:
+                    raise IngestError(str(err).removeprefix(f"{source.name}: "), source.name, line_no) from err
+                raise
+            if item is None:
+                break
+            block = item[0]
+            first_line = line_no
             problem = None
             # 1. flat objects of one shape: read with numpy (see flatjson)
             if names is None or (names[1] is None and options.fields.time is None):
-                probe = read_flat_block(block, newlines, None)  # (the first line's keys)
+                probe = read_flat_block(block, None, None)  # (the first line's keys)
                 if probe is not None:
                     names = self._names(options, source, seen, probe.keys, names)
-            flat = read_flat_block(block, newlines, names) if names is not None else None
+            flat = read_flat_block(block, None, names) if names is not None else None
+            newlines = flat.lines if flat is not None else count_newlines(block)
+            line_no += newlines
+            nlines = newlines + (0 if block.endswith(b"\n") else 1)
+            report.lines_read += nlines
             if flat is not None:
                 cols = flat.columns
                 lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
@@ -126,7 +140,7 @@ class JsonLinesParser:
                 raise
             if problem is not None:
                 raise problem
-            del block, flat, cols, lines  # not kept alive while the chunk is counted
+            del item, block, flat, cols, lines  # not kept alive while the chunk is counted
             if chunk is not None:
                 yield chunk
             del chunk

@@ -315,11 +315,18 @@ def _read_into(f: BinaryIO, view: memoryview) -> int:
 
 
 def iter_line_blocks_counted(
-    source: Source, block_bytes: int = BLOCK_BYTES, skip_lines: int = 0
-) -> Iterator[tuple[bytearray, int, int]]:
+    source: Source, block_bytes: int = BLOCK_BYTES, skip_lines: int = 0, count: bool = True
+) -> Iterator[tuple[bytearray, int | None, int | None]]:
     """As :func:`iter_line_blocks`, with the number of newlines in each block as well:
     ``(block, first_line_number, newlines)``; the blocks are the same, as bytearrays
-    read straight from the file (no copy of a whole block is made)."""
+    read straight from the file (no copy of a whole block is made).
+
+    With ``count=False`` the newlines are not counted (a pass over every block saved for
+    a reader that counts them itself): the line number and the count are ``None``, and
+    an error names no line. ``skip_lines`` needs counting.
+    """
+    if skip_lines and not count:
+        raise ValueError("skip_lines needs count=True")
     with open_binary(source) as f:
         line_no = 1
         rest = b""
@@ -330,7 +337,7 @@ def iter_line_blocks_counted(
             try:
                 got = _read_into(f, memoryview(buf)[len(rest):])
             except (OSError, EOFError, lzma.LZMAError) as err:
-                raise IngestError(f"cannot decompress: {err}", source.name, line_no) from err
+                raise IngestError(f"cannot decompress: {err}", source.name, line_no if count else None) from err
             if not got:
                 break
             at_end = got < block_bytes  # _read_into stops short only at the end of the stream
@@ -357,13 +364,17 @@ def iter_line_blocks_counted(
                 continue
             rest = bytes(buf[cut + 1 :])
             del buf[cut + 1 :]
+            if not count:
+                yield buf, None, None
+                del buf
+                continue
             newlines = count_newlines(buf)
             yield buf, line_no, newlines
             del buf
             line_no += newlines
         if rest and not skip_lines:
             # (a last line with no newline that is still to be skipped is dropped too)
-            yield bytearray(rest), line_no, count_newlines(rest)
+            yield bytearray(rest), (line_no if count else None), (count_newlines(rest) if count else None)
 
 
 _BOM = b"\xef\xbb\xbf"

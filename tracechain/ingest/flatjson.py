@@ -249,25 +249,32 @@ def _spans_to_strings(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths
     return pa.Array.from_buffers(pa.large_string(), n, [None, pa.py_buffer(offsets), pa.py_buffer(data)])
 
 
-def _bare_ok(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths: np.ndarray) -> pa.Array | bool:
-    """Whether every span is a JSON scalar; the int64 values when all are fixed-width integers."""
+def _fixed_ints(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths: np.ndarray) -> np.ndarray | None:
+    """The spans as int64 when they are all JSON integers of one width (the common case)."""
     if len(starts) and np.all(lengths == lengths[0]):
-        ints = _digits(u8, words, starts, int(lengths[0]))
-        if ints is not None:
-            return _int64(ints)
+        return _digits(u8, words, starts, int(lengths[0]))
+    return None
+
+
+def _scalar_text(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths: np.ndarray) -> pa.Array | None:
+    """The spans as text when every one is a JSON scalar (None otherwise)."""
     text = _spans_to_strings(u8, words, starts, lengths)
-    return bool(pc.all(pc.match_substring_regex(text, _BARE_RE)).as_py())
+    return text if pc.all(pc.match_substring_regex(text, _BARE_RE)).as_py() else None
+
+
+def _bare_ok(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths: np.ndarray) -> bool:
+    """Whether every span is a JSON scalar (a field that is not read)."""
+    return _fixed_ints(u8, words, starts, lengths) is not None or _scalar_text(u8, words, starts, lengths) is not None
 
 
 def _bare_column(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths: np.ndarray) -> pa.Array | None:
     """Bare scalars of a needed field: integers as int64, other numbers as float64 (as a
     general JSON reader types them); None for literals or integers beyond 64 bits."""
-    if len(starts) and np.all(lengths == lengths[0]):
-        ints = _digits(u8, words, starts, int(lengths[0]))
-        if ints is not None:
-            return _int64(ints)
-    text = _spans_to_strings(u8, words, starts, lengths)
-    if not pc.all(pc.match_substring_regex(text, _BARE_RE)).as_py():
+    ints = _fixed_ints(u8, words, starts, lengths)
+    if ints is not None:
+        return _int64(ints)
+    text = _scalar_text(u8, words, starts, lengths)
+    if text is None:
         return None
     if pc.any(pc.match_substring_regex(text, "^[tfn]")).as_py():
         return None
@@ -414,7 +421,7 @@ def _read_part(
                 if col is None:
                     return None
                 columns[sp.key] = col
-            elif _bare_ok(u8, words, starts[i], lengths) is False:
+            elif not _bare_ok(u8, words, starts[i], lengths):
                 return None
         elif sp.key in need:
             columns[sp.key] = _spans_to_strings(u8, words, starts[i], lengths)

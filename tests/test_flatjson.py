@@ -219,6 +219,30 @@ def test_random_bytes_are_never_misread():
             _check(block)
 
 
+def test_damage_in_a_part_read_in_place_is_never_misread(monkeypatch):
+    # parts inside a block are read from the block itself, the first and last from padded
+    # copies; damage anywhere (mutations as above) must decline the block all the same
+    monkeypatch.setattr(flatjson, "PART_BYTES", 97)
+    rng = random.Random(13)
+    for m, mutate in enumerate(_MUTATIONS):
+        rows = [_row(rng, i, extra=False) | {"n": 1 + i} for i in range(60)]
+        lines = [json.dumps(r, separators=(",", ":"), ensure_ascii=False).encode() for r in rows]
+        for k in (1, rng.randrange(2, 58), 59):
+            damaged = list(lines)
+            damaged[k] = mutate(damaged[k])
+            block = b"\n".join(damaged) + b"\n"
+            try:
+                [json.loads(ln) for ln in block.splitlines()]
+                valid = True
+            except ValueError:
+                valid = False
+            got = read_flat_block(block, block.count(b"\n"), WANTED)
+            if not valid:
+                assert got is None, (m, k, damaged[k])
+            elif got is not None:
+                _check(block)
+
+
 def _counts_table(counts):
     coo = counts.n.tocoo() if hasattr(counts, "n") else counts.counts.tocoo()
     return sorted((counts.states[i], counts.states[j], int(v)) for i, j, v in zip(coo.row, coo.col, coo.data))

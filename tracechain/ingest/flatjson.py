@@ -156,12 +156,13 @@ class _Shape:
 
 
 class _Words:
-    """Little-endian 8-byte words starting at any byte of a part of a block. They are
-    read from a copy of the block padded with zeros (8 bytes before, 40 after), so no
-    read needs a bounds check; positions count from the part's first byte."""
+    """Little-endian 8-byte words starting at any byte of a part of a block, from 8
+    bytes before the part to 40 after it (``buf`` holds them, the part beginning at
+    ``base``), so no read needs a bounds check; positions count from the part's first
+    byte. What the bytes around the part hold does not matter: every read is masked."""
 
-    def __init__(self, padded: bytes, start: int, length: int):
-        self.w = np.ndarray(shape=(length + 41,), dtype="<u8", buffer=padded, offset=start, strides=(1,))
+    def __init__(self, buf, base: int, length: int):
+        self.w = np.ndarray(shape=(length + 41,), dtype="<u8", buffer=buf, offset=base - 8, strides=(1,))
 
     def get(self, pos: np.ndarray) -> np.ndarray:
         """The word at each position (from -8 to 32 past the part's end)."""
@@ -340,10 +341,8 @@ def read_flat_block(block: bytes, nlines: int | None, wanted: tuple[str | None, 
         bounds.append((start, stop))
         start = stop
     # numpy lets go of the GIL in its loops, so the parts are read on a few threads
-    padded = bytearray(len(block) + 48)  # (one copy; ``bytes(8) + block + ...`` makes two)
-    padded[8 : 8 + len(block)] = block
-    results = _pool().map(lambda b: _read_part(padded, b[0], b[1], shape, need), bounds) \
-        if len(bounds) > 1 else [_read_part(padded, 0, len(block), shape, need)]
+    results = _pool().map(lambda b: _read_part(*_part_buffer(block, *b), shape, need), bounds) \
+        if len(bounds) > 1 else [_read_part(*_part_buffer(block, 0, len(block)), shape, need)]
     parts: list[dict[str, pa.Array]] = []
     rows = 0
     for part in results:
@@ -357,16 +356,29 @@ def read_flat_block(block: bytes, nlines: int | None, wanted: tuple[str | None, 
         return None
     if len(parts) == 1:
         return FlatBlock(shape.keys, parts[0], rows)
+    if any(p[k].type != parts[0][k].type for p in parts for k in need):
+        return None  # (integers in one part, other numbers in another: left to the general reader)
     return FlatBlock(shape.keys, {k: pa.concat_arrays([p[k] for p in parts]) for k in need}, rows)
 
 
-def _read_part(
-    padded: bytes, start: int, stop: int, shape: _Shape, need: list[str]
-) -> tuple[int, dict[str, pa.Array]] | None:
-    """The number of lines in ``block[start:stop]`` (``padded`` is the block with 8 zero
-    bytes before it and 40 after) and their needed columns (None if one line is not of
-    the template's shape)."""
-    u8 = np.frombuffer(padded, dtype=np.uint8, offset=8 + start, count=stop - start)
+def _part_buffer(block, start: int, stop: int) -> tuple[object, int, int]:
+    """``(buf, base, length)``: where ``block[start:stop]`` can be read with 8 bytes
+    before it and 40 after. Parts inside the block are read in place; the first and last
+    part of a block are copied with padding (a copy of each part would cost a pass over
+    the block and, for fresh memory, its page faults)."""
+    length = stop - start
+    if start >= 8 and stop + 40 <= len(block):
+        return block, start, length
+    padded = bytearray(length + 48)
+    padded[8 : 8 + length] = memoryview(block)[start:stop]
+    return padded, 8, length
+
+
+def _read_part(buf, base: int, length: int, shape: _Shape, need: list[str]) -> tuple[int, dict[str, pa.Array]] | None:
+    """The number of lines in ``buf[base:base + length]`` (a part of a block, with 8
+    readable bytes before it and 40 after) and their needed columns (None if one line is
+    not of the template's shape)."""
+    u8 = np.frombuffer(buf, dtype=np.uint8, offset=base, count=length)
     q = np.flatnonzero(u8 == _QUOTE)
     width = shape.width
     nlines = len(q) // width
@@ -392,7 +404,7 @@ def _read_part(
         else:
             ends.append(row_end - len(runs[-1]))
     # the fixed runs: the template's length and bytes on every line
-    words = _Words(padded, start, stop - start)
+    words = _Words(buf, base, length)
     pos_list, want_list, mask_list = [], [], []
     run_starts = [row_start] + ends
     for i, run in enumerate(runs):

@@ -243,6 +243,20 @@ def test_damage_in_a_part_read_in_place_is_never_misread(monkeypatch):
                 _check(block)
 
 
+@pytest.mark.parametrize("size", [16, 32])
+def test_rows_are_packed_to_their_lengths(size):
+    # the packing writes whole rows that overlap; checked against plain slicing
+    rng = np.random.default_rng(size)
+    raw = rng.integers(0, 256, (500, size), dtype=np.uint8)
+    lengths = rng.integers(0, size + 1, 500)
+    lengths[:5] = 0
+    offsets = np.zeros(501, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    want = b"".join(raw[i, : lengths[i]].tobytes() for i in range(500))
+    assert flatjson._pack_rows(raw, lengths, offsets).tobytes() == want
+    assert flatjson._pack_rows_masked(raw, lengths).tobytes() == want
+
+
 def _counts_table(counts):
     coo = counts.n.tocoo() if hasattr(counts, "n") else counts.counts.tocoo()
     return sorted((counts.states[i], counts.states[j], int(v)) for i, j, v in zip(coo.row, coo.col, coo.data))

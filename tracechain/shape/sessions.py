@@ -42,9 +42,13 @@ _M = np.int64(1) << np.int64(31)
 #: (plus the two pseudo-states); beyond it, in sorted sparse arrays.
 _DENSE_MAX = 1024
 
-_FNV_OFFSET = np.uint64(0xCBF29CE484222325)
-_FNV_PRIME = np.uint64(0x100000001B3)
-_VEC_BYTES = 64  # keys up to this long are hashed byte-column by byte-column in numpy
+_VEC_BYTES = 512  # keys up to this long are hashed word by word in numpy; longer ones one at a time
+_SEED = np.uint64(0x243F6A8885A308D3)
+_K_LEN = np.uint64(0x9E3779B97F4A7C15)
+_K_WORD = np.uint64(0xFF51AFD7ED558CCD)
+_K_FIN = np.uint64(0xC4CEB9FE1A85EC53)
+_S29, _S32, _S33 = np.uint64(29), np.uint64(32), np.uint64(33)
+_BYTE_MASKS = np.array([(1 << (8 * v)) - 1 for v in range(9)], dtype=np.uint64)  # v low bytes set
 
 
 def _string_buffers(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -61,37 +65,63 @@ def _string_buffers(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     return offs, data
 
 
-def _hash_strings(offs: np.ndarray, data: np.ndarray) -> np.ndarray:
-    """A 64-bit hash per string (FNV-1a, then the length and a final mix).
+# The key hash: the length, then the key's 8-byte little-endian words (the last one
+# zero-filled) folded in one at a time, then a final mix. Only ever compared with hashes
+# made here, and equal hashes are confirmed byte by byte, so any function of the bytes
+# would do; working by words keeps the numpy passes few.
 
-    Only ever compared with hashes made by this function, so any deterministic
-    function of the bytes would do; equal hashes are checked byte by byte anyway.
-    """
+def _fold(h: np.ndarray, w: np.ndarray) -> np.ndarray:
+    h = (h ^ w) * _K_WORD
+    return h ^ (h >> _S29)
+
+
+def _finish(h: np.ndarray) -> np.ndarray:
+    h ^= h >> _S33
+    h *= _K_FIN
+    h ^= h >> _S32
+    return h
+
+
+def _word_reader(data: np.ndarray) -> np.ndarray:
+    """The 8-byte word starting at each byte of ``data`` (zeros past its end)."""
+    padded = np.zeros(len(data) + 8, dtype=np.uint8)
+    padded[: len(data)] = data
+    return np.ndarray(shape=(len(data) + 1,), dtype="<u8", buffer=padded, strides=(1,))
+
+
+def _hash_strings(offs: np.ndarray, data: np.ndarray) -> np.ndarray:
+    """A 64-bit hash per string (``offs``: n + 1 offsets into ``data``)."""
     lens = np.diff(offs)
     n = len(lens)
-    h = np.full(n, _FNV_OFFSET, dtype=np.uint64)
+    h = lens.astype(np.uint64) * _K_LEN ^ _SEED
+    width = int(lens[0]) if n else 0
+    if 0 < width <= _VEC_BYTES and np.all(lens == width):  # one width (ids of one format): contiguous
+        nw = (width + 7) // 8
+        rows = np.zeros((n, 8 * nw), dtype=np.uint8)
+        rows[:, :width] = data[offs[0] : offs[0] + n * width].reshape(n, width)
+        words = rows.view("<u8")
+        for j in range(nw):
+            h = _fold(h, words[:, j])
+        return _finish(h)
     short = np.flatnonzero(lens <= _VEC_BYTES)
     if len(short):
+        words = _word_reader(data)
         by_len = short[np.argsort(-lens[short], kind="stable")]  # longest first
         ls = lens[by_len]
         starts = offs[by_len]
         hs = h[by_len]
-        top = int(ls[0]) if len(ls) else 0
-        active = len(ls) - np.searchsorted(ls[::-1], np.arange(top), side="right")
+        nwords = (ls + 7) // 8
+        top = int(nwords[0]) if len(ls) else 0
+        active = len(ls) - np.searchsorted(nwords[::-1], np.arange(top), side="right")  # rows with > j words
         for j in range(top):
             k = int(active[j])
-            hs[:k] = (hs[:k] ^ data[starts[:k] + j].astype(np.uint64)) * _FNV_PRIME
+            w = words[starts[:k] + 8 * j] & _BYTE_MASKS[np.minimum(ls[:k] - 8 * j, 8)]
+            hs[:k] = _fold(hs[:k], w)
         h[by_len] = hs
     for i in np.flatnonzero(lens > _VEC_BYTES).tolist():
         digest = hashlib.blake2b(data[offs[i]:offs[i + 1]].tobytes(), digest_size=8).digest()
         h[i] = np.uint64(int.from_bytes(digest, "little"))
-    h ^= lens.astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
-    h ^= h >> np.uint64(33)
-    h *= np.uint64(0xFF51AFD7ED558CCD)
-    h ^= h >> np.uint64(33)
-    h *= np.uint64(0xC4CEB9FE1A85EC53)
-    h ^= h >> np.uint64(33)
-    return h
+    return _finish(h)
 
 
 class _KeyIndex:

@@ -1,0 +1,62 @@
+"""Session keys to codes: the numpy hash table against a plain dict.
+
+The oracle is Python's own dict (first appearance order of distinct keys; common
+practice, no source). The table must give every distinct key its own code, whatever
+the key's length or the hashing path (one width, mixed widths, beyond the vectorised
+limit).
+"""
+
+from __future__ import annotations
+
+import random
+
+import numpy as np
+import pyarrow as pa
+
+from tracechain.shape import sessions
+from tracechain.shape.sessions import _KeyIndex, _hash_strings, _string_buffers
+
+
+def _oracle_codes(chunks):
+    seen: dict[str, int] = {}
+    out = []
+    for chunk in chunks:
+        for k in chunk:
+            seen.setdefault(k, len(seen))
+        out.append([seen[k] for k in chunk])
+    return out
+
+
+def _random_key(rng: random.Random) -> str:
+    n = rng.choice([0, 1, 7, 8, 9, 15, 16, 17, 36, 63, 64, 65, 120, 511, 512, 513, 700])
+    return "".join(rng.choice("ab\u00e9\u4e2d0") for _ in range(n))
+
+
+def test_codes_match_a_dict_for_keys_of_every_length():
+    rng = random.Random(3)
+    pool = sorted({_random_key(rng) for _ in range(400)})
+    chunks = [sorted(set(rng.sample(pool, 60))) for _ in range(12)]  # distinct within a chunk
+    index = _KeyIndex()
+    got = [index.codes(pa.array(c)).tolist() for c in chunks]
+    assert got == _oracle_codes(chunks)
+    assert [index.key(i) for i in range(len(index))] == list(dict.fromkeys(k for c in chunks for k in c))
+
+
+def test_one_width_and_mixed_widths_hash_alike():
+    rng = np.random.default_rng(4)
+    for width in (1, 8, 9, 16, 36, 100):
+        keys = ["".join(chr(97 + v) for v in rng.integers(0, 26, width)) for _ in range(50)]
+        fixed = pa.array(keys)
+        mixed = pa.array(keys + ["x" * (width + 1)])
+        h_fixed = _hash_strings(*_string_buffers(fixed))
+        h_mixed = _hash_strings(*_string_buffers(mixed))[:-1]
+        assert np.array_equal(h_fixed, h_mixed)
+
+
+def test_colliding_hashes_still_give_distinct_codes(monkeypatch):
+    # every key hashed alike: the byte-by-byte check alone must keep them apart
+    monkeypatch.setattr(sessions, "_hash_strings", lambda offs, data: np.zeros(len(offs) - 1, dtype=np.uint64))
+    index = _KeyIndex()
+    a = index.codes(pa.array(["k1", "k2", "k3"])).tolist()
+    b = index.codes(pa.array(["k3", "k4", "k1"])).tolist()
+    assert a == [0, 1, 2] and b == [2, 3, 0]

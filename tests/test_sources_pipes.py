@@ -80,3 +80,31 @@ def test_a_truncated_gzip_names_a_line_near_where_it_broke(tmp_path, fmt):
         count_sources([str(path)], extra={"block_bytes": 1 << 14})
     assert info.value.source == str(path)
     assert 1 < info.value.line <= recoverable + 1
+
+
+def test_the_thread_switch_interval_is_short_while_counting_and_restored_after(tmp_path, monkeypatch):
+    import sys
+
+    from tracechain.shape import sessions
+
+    log = tmp_path / "log.jsonl"
+    log.write_text(LOG, encoding="utf-8")
+    seen = []
+    add = sessions.SessionCounter.add
+    monkeypatch.setattr(sessions.SessionCounter, "add",
+                        lambda self, chunk: (seen.append(sys.getswitchinterval()), add(self, chunk))[1])
+    before = sys.getswitchinterval()
+    try:
+        sys.setswitchinterval(0.004)
+        count_sources([str(log)])
+        assert seen and max(seen) <= sources.SWITCH_INTERVAL + 1e-9
+        assert abs(sys.getswitchinterval() - 0.004) < 1e-9
+        sys.setswitchinterval(0.0001)  # a caller's smaller setting is kept
+        seen.clear()
+        count_sources([str(log)])
+        assert max(seen) <= 0.0001 + 1e-9 and abs(sys.getswitchinterval() - 0.0001) < 1e-9
+        with pytest.raises(Exception):
+            count_sources([str(tmp_path / "missing.jsonl")])
+        assert abs(sys.getswitchinterval() - 0.0001) < 1e-9  # restored after an error too
+    finally:
+        sys.setswitchinterval(before)

@@ -23,7 +23,7 @@ from .events import EventChunk, ParseReport
 from .ingest.base import ReadOptions
 from .ingest.fields import FieldSpec
 from .ingest.registry import detect_parser, get_parser
-from .ingest.sources import Source, expand_sources, read_ahead
+from .ingest.sources import Source, expand_sources, quick_thread_switches, read_ahead
 from .progress import ReadMeter, make_meter
 from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
@@ -140,7 +140,8 @@ def count_sources(
     """
     meter = make_meter(progress)
     try:
-        return _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session, meter)
+        with quick_thread_switches():
+            return _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session, meter)
     finally:
         if meter is not None:
             meter.close()

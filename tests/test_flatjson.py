@@ -180,6 +180,21 @@ _MUTATIONS = [
 ]
 
 
+def _check_damaged(lines: list[bytes], where) -> None:
+    """A block with a damaged line: declined if any line is not JSON, else read right."""
+    block = b"\n".join(lines) + b"\n"
+    try:
+        [json.loads(ln) for ln in block.splitlines()]
+        valid = True
+    except ValueError:
+        valid = False
+    got = read_flat_block(block, block.count(b"\n"), WANTED)
+    if not valid:
+        assert got is None, where
+    elif got is not None:
+        _check(block)
+
+
 def test_damaged_lines_are_never_misread():
     rng = random.Random(11)
     tried = 0
@@ -189,17 +204,7 @@ def test_damaged_lines_are_never_misread():
             lines = [json.dumps(r, separators=(",", ":"), ensure_ascii=False).encode() for r in rows]
             k = rng.randrange(len(lines)) if trial else 0  # the template line itself too
             lines[k] = mutate(lines[k])
-            block = b"\n".join(lines) + b"\n"
-            try:
-                [json.loads(ln) for ln in block.splitlines()]
-                valid = True
-            except ValueError:
-                valid = False
-            got = read_flat_block(block, block.count(b"\n"), WANTED)
-            if not valid:
-                assert got is None, (m, lines[k])
-            elif got is not None:
-                _check(block)
+            _check_damaged(lines, (m, lines[k]))
             tried += 1
     assert tried == 6 * len(_MUTATIONS)
 
@@ -230,17 +235,7 @@ def test_damage_in_a_part_read_in_place_is_never_misread(monkeypatch):
         for k in (1, rng.randrange(2, 58), 59):
             damaged = list(lines)
             damaged[k] = mutate(damaged[k])
-            block = b"\n".join(damaged) + b"\n"
-            try:
-                [json.loads(ln) for ln in block.splitlines()]
-                valid = True
-            except ValueError:
-                valid = False
-            got = read_flat_block(block, block.count(b"\n"), WANTED)
-            if not valid:
-                assert got is None, (m, k, damaged[k])
-            elif got is not None:
-                _check(block)
+            _check_damaged(damaged, (m, k, damaged[k]))
 
 
 @pytest.mark.parametrize("size", [16, 32])

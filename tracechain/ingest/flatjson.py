@@ -26,6 +26,7 @@ offsets (one fancy-index gather per check) keep the checks cheap.
 
 from __future__ import annotations
 
+import codecs
 import os
 import re
 from concurrent.futures import ThreadPoolExecutor
@@ -364,14 +365,11 @@ def read_flat_block(block: bytes, nlines: int | None, wanted: tuple[str | None, 
     returned (None: only find the keys). Key order and spacing are the first line's; see
     the module docstring for what qualifies.
     """
-    if nlines == 0 or not block.endswith(b"\n") or b"\\" in block:
+    if nlines == 0 or not block.endswith(b"\n"):
         return None
-    if not block.isascii():
-        try:
-            block.decode("utf-8")
-        except UnicodeDecodeError:
-            return None
     first_nl = block.index(b"\n")
+    if b"\\" in block[:first_nl]:
+        return None  # (the rest of the block is checked part by part, on the pool)
     line = np.frombuffer(block, dtype=np.uint8, count=first_nl)
     quotes = np.flatnonzero(line == _QUOTE)
     tmpl = _template(block[:first_nl], quotes)
@@ -431,8 +429,20 @@ def _read_part(buf, base: int, length: int, shape: _Shape, need: list[str]) -> t
     q = np.flatnonzero(u8 == _QUOTE)
     width = shape.width
     nlines = len(q) // width
-    if not nlines or len(q) != width * nlines or np.count_nonzero(u8 < 0x20) != nlines:
-        return None  # (the only control bytes allowed are the line ends, in the last run)
+    if not nlines or len(q) != width * nlines:
+        return None
+    # the only control bytes allowed are the line ends (in the last run, checked below),
+    # no backslash (so every quote delimits a string), and UTF-8 only; one pass counts the
+    # control and non-ASCII bytes together (bytes below 0x20 or from 0x80 wrap to 0x60 and up)
+    if (u8 == 0x5C).any():
+        return None
+    if np.count_nonzero(np.subtract(u8, np.uint8(0x20), dtype=np.uint8) >= 0x60) != nlines:
+        if np.count_nonzero(u8 < 0x20) != nlines:
+            return None
+        try:
+            codecs.utf_8_decode(memoryview(buf)[base : base + length], "strict", True)
+        except UnicodeDecodeError:
+            return None
     qt = q.reshape(nlines, width).T.copy()  # one contiguous row per quote of a line
     del q
     runs, spans = shape.runs, shape.spans

@@ -60,3 +60,14 @@ def test_colliding_hashes_still_give_distinct_codes(monkeypatch):
     a = index.codes(pa.array(["k1", "k2", "k3"])).tolist()
     b = index.codes(pa.array(["k3", "k4", "k1"])).tolist()
     assert a == [0, 1, 2] and b == [2, 3, 0]
+
+
+def test_group_orders_equal_numpys_stable_argsort():
+    # the oracle is numpy's own stable argsort (its documented contract: equal values keep
+    # their order); both radix paths (up to 2**16 groups, and beyond) and the ranked variant
+    rng = np.random.default_rng(5)
+    for d in (1, 2, 300, 1 << 16, (1 << 16) + 1, 200_000):
+        r = rng.integers(0, d, size=50_000).astype(np.int32)
+        assert np.array_equal(sessions._group_order(r, d), np.argsort(r, kind="stable")), d
+        lut = rng.permutation(4 * d)[:d].astype(np.int64)  # distinct, in no order
+        assert np.array_equal(sessions._stable_order(lut, r), np.argsort(lut[r], kind="stable")), d

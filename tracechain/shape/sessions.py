@@ -251,7 +251,13 @@ def _stable_order(lut: np.ndarray, idx: np.ndarray) -> np.ndarray:
         return np.arange(len(idx))
     rank = np.empty(d, dtype=np.int64)
     rank[np.argsort(lut)] = np.arange(d, dtype=np.int64)
-    r = rank[idx]
+    return _group_order(rank[idx], d)
+
+
+def _group_order(r: np.ndarray, d: int) -> np.ndarray:
+    """``np.argsort(r, kind="stable")`` for integers ``0 <= r < d``, by radix passes."""
+    if d <= 1:
+        return np.arange(len(r))
     if d <= 1 << 16:
         return np.argsort(r.astype(np.uint16), kind="stable")
     if d <= 1 << 32:
@@ -443,7 +449,9 @@ class SessionCounter:
             # compact: codes fit in 32 bits (_M is 2**31); the source is one per chunk
             self._pending.append((lut_s[idx_s].astype(np.int32), t, lut[ev_idx].astype(np.int32), line, src))
             return
-        order = _stable_order(lut_s, idx_s)
+        # grouped by session, each in file order; the groups come in the order of their
+        # first event in the chunk (the dictionary's order), which needs no ranking
+        order = _group_order(idx_s, len(lut_s))
         s = lut_s[idx_s[order]]
         del idx_s
         x = lut[ev_idx[order]]
@@ -739,7 +747,8 @@ class SessionCounter:
             self._dense_k = side
         side = self._dense_k
         size = side * side
-        codes = a.astype(np.int64) * side + b.astype(np.int64)
+        codes = np.multiply(a, side, dtype=np.int64)
+        codes += b
         fin = np.isfinite(gaps)
         all_fin = bool(fin.all())
         dense = len(codes) * 8 >= size

@@ -14,6 +14,7 @@ import json
 import lzma
 from collections import Counter
 
+import numpy as np
 import pyarrow as pa
 import pytest
 
@@ -409,11 +410,13 @@ def time_log(tmp_path, times, name="times.jsonl") -> str:
     [
         [EPOCH + d for d in TIME_OFFSETS],  # POSIX seconds since 1970-01-01T00:00:00Z
         [(EPOCH + d) * 1000 for d in TIME_OFFSETS],  # epoch milliseconds (common practice, no source)
+        [(EPOCH + d) * 10**6 for d in TIME_OFFSETS],  # epoch microseconds (as above)
+        [(EPOCH + d) * 10**9 for d in TIME_OFFSETS],  # epoch nanoseconds: beyond 2**53
         [EPOCH + d + 0.25 for d in TIME_OFFSETS],  # fractional seconds
         [str(EPOCH + d) for d in TIME_OFFSETS],  # epoch seconds written as strings
         [str((EPOCH + d) * 1000) for d in TIME_OFFSETS],  # epoch milliseconds as strings
     ],
-    ids=["seconds", "milliseconds", "fractional-seconds", "seconds-as-text", "milliseconds-as-text"],
+    ids=["seconds", "milliseconds", "microseconds", "nanoseconds", "fractional-seconds", "seconds-as-text", "milliseconds-as-text"],
 )
 def test_jsonl_epoch_units_give_the_same_counts_and_gap_sums(tmp_path, times):
     counts, report = count_sources([time_log(tmp_path, times)])
@@ -971,3 +974,21 @@ def test_edge_list_plus_event_log_add_up(tmp_path, shop_jsonl):
     expected[("buy", "[end]")] += 1
     assert counts.to_edges() == expected
     assert counts.sessions == 4
+
+
+@pytest.mark.parametrize("scale,unit", [(1, 1.0), (1000, 1e-3), (10**6, 1e-6), (10**9, 1e-9)])
+def test_long_time_columns_guess_the_epoch_unit_from_a_sample(scale, unit):
+    # a column longer than the sample: every value of one unit, and nulls where the
+    # evenly spaced sample looks first, so only the full column can tell (common
+    # practice, no source: epoch seconds, ms, us and ns are each 1000 times the last)
+    from tracechain.ingest import fields as fields_mod
+
+    n = 5 * fields_mod._SCALE_SAMPLE
+    vals = [(EPOCH + i) * scale for i in range(n)]
+    secs, bad = fields_mod.times_to_seconds(pa.array(vals, pa.int64()), FieldSpec())
+    assert not bad.any()
+    assert secs[0] == pytest.approx(EPOCH) and secs[-1] == pytest.approx(EPOCH + n - 1)
+    step = n // fields_mod._SCALE_SAMPLE
+    holes = [None if i % step == 0 else v for i, v in enumerate(vals)]
+    secs, bad = fields_mod.times_to_seconds(pa.array(holes, pa.int64()), FieldSpec())
+    assert np.isnan(secs[0]) and secs[1] == pytest.approx(EPOCH + 1) and not bad.any()

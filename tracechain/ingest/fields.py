@@ -91,10 +91,20 @@ def resolve_fields(spec: FieldSpec, columns: list[str], source: str) -> tuple[st
     return session, time, event
 
 
+_SCALE_SAMPLE = 4096
+
+
 def _epoch_scale(values: np.ndarray, unit: str | None) -> float:
     if unit is not None:
         return _UNITS[unit]
-    finite = np.abs(values[np.isfinite(values)])
+    finite = np.zeros(0)
+    if len(values) > 2 * _SCALE_SAMPLE:
+        # the units are orders of magnitude apart, so the median of evenly spaced values
+        # tells them apart as well as the median of all (which costs a pass with a copy)
+        sample = values[:: len(values) // _SCALE_SAMPLE]
+        finite = np.abs(sample[np.isfinite(sample)])
+    if finite.size == 0:
+        finite = np.abs(values[np.isfinite(values)])
     if finite.size == 0:
         return 1.0
     m = float(np.median(finite))
@@ -133,8 +143,13 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
         secs[nulls] = np.nan
         return secs, np.zeros(n, dtype=bool)
     if pa.types.is_integer(typ) or pa.types.is_floating(typ):
-        vals = to_numpy(pc.cast(arr, pa.float64())).astype(np.float64, copy=True)
-        return vals * _epoch_scale(vals, spec.time_unit), np.zeros(n, dtype=bool)
+        if arr.null_count:
+            # (unsafe: nanoseconds since 1970 need more than the 53 bits a double keeps exactly)
+            vals = to_numpy(pc.cast(arr, pa.float64(), safe=False)).astype(np.float64, copy=True)
+        else:  # (one pass from the buffer; astype copies)
+            vals = to_numpy(arr).astype(np.float64)
+        vals *= _epoch_scale(vals, spec.time_unit)
+        return vals, np.zeros(n, dtype=bool)
     if pa.types.is_boolean(typ):
         return np.full(n, np.nan), ~arr.is_null().to_numpy(zero_copy_only=False)
     # strings (or anything else, as text)

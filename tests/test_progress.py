@@ -365,7 +365,7 @@ def test_on_a_terminal_the_bar_shows_the_total_and_leaves_stdout_alone(tmp_path)
     text = term.decode("utf-8")
     figure = tqdm.format_sizeof(total, divisor=1024)
     assert f"/{figure} " in text  # the total ...
-    assert f"100%|" in text and f" {figure}/{figure} " in text  # ... and the count reaching it
+    assert "100%|" in text and f" {figure}/{figure} " in text  # ... and the count reaching it
     assert "first.jsonl [1/2]" in text and "second.jsonl.gz [2/2]" in text
     assert "\n" not in text  # one line, redrawn in place ...
     segments = text.split("\r")

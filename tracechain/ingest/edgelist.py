@@ -9,7 +9,6 @@ after ``from``. Repeated rows for the same edge are added. ``source,target`` and
 from __future__ import annotations
 
 import csv
-import io
 import math
 
 from ..counts import END, START, TransitionCounts

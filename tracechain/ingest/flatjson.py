@@ -35,6 +35,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from .._bytewords import BYTE_MASKS
+
 __all__ = ["read_flat_block", "FlatBlock"]
 
 _QUOTE, _NL = 0x22, 0x0A
@@ -267,7 +269,6 @@ def _spans_to_strings(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths
     return pa.Array.from_buffers(pa.large_string(), n, [None, pa.py_buffer(offsets), pa.py_buffer(data)])
 
 
-_BYTE_MASKS = np.array([(1 << (8 * v)) - 1 for v in range(9)], dtype=np.uint64)  # v low bytes set
 
 
 def _pack_rows(raw: np.ndarray, lengths: np.ndarray, offsets: np.ndarray) -> np.ndarray:
@@ -289,7 +290,7 @@ def _pack_rows(raw: np.ndarray, lengths: np.ndarray, offsets: np.ndarray) -> np.
     diff = np.zeros(n, dtype=np.uint64)
     for j in range(size // 8):
         valid = np.clip(lengths - 8 * j, 0, 8)
-        diff |= (back[:, j] ^ ahead[:, j]) & _BYTE_MASKS[valid]
+        diff |= (back[:, j] ^ ahead[:, j]) & BYTE_MASKS[valid]
     if diff.any():
         return _pack_rows_masked(raw, lengths)
     return out[:total]

@@ -419,7 +419,6 @@ def _classes_section(a: Analysis) -> Section:
 
 
 def _state_section(a: Analysis, max_rows: int) -> Section:
-    ch = a.chain
     rows_all = a.state_rows()
     goals = a.goal_labels
     given = [o for o in a.absorbing.outcomes if o in goals]

@@ -28,11 +28,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from .._arrowutil import to_numpy
+from .._bytewords import BYTE_MASKS
 from ..counts import END, START, Location, State, TransitionCounts, _csr, state_label
 from ..events import EventChunk
 from .cases import CasePolicy
 from .mapping import Mapping
-from .._arrowutil import to_numpy
 
 __all__ = ["SessionCounter", "OutOfOrder"]
 
@@ -48,7 +49,6 @@ _K_LEN = np.uint64(0x9E3779B97F4A7C15)
 _K_WORD = np.uint64(0xFF51AFD7ED558CCD)
 _K_FIN = np.uint64(0xC4CEB9FE1A85EC53)
 _S29, _S32, _S33 = np.uint64(29), np.uint64(32), np.uint64(33)
-_BYTE_MASKS = np.array([(1 << (8 * v)) - 1 for v in range(9)], dtype=np.uint64)  # v low bytes set
 
 
 def _string_buffers(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -115,7 +115,7 @@ def _hash_strings(offs: np.ndarray, data: np.ndarray) -> np.ndarray:
         active = len(ls) - np.searchsorted(nwords[::-1], np.arange(top), side="right")  # rows with > j words
         for j in range(top):
             k = int(active[j])
-            w = words[starts[:k] + 8 * j] & _BYTE_MASKS[np.minimum(ls[:k] - 8 * j, 8)]
+            w = words[starts[:k] + 8 * j] & BYTE_MASKS[np.minimum(ls[:k] - 8 * j, 8)]
             hs[:k] = _fold(hs[:k], w)
         h[by_len] = hs
     for i in np.flatnonzero(lens > _VEC_BYTES).tolist():

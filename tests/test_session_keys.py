@@ -71,3 +71,30 @@ def test_group_orders_equal_numpys_stable_argsort():
         assert np.array_equal(sessions._group_order(r, d), np.argsort(r, kind="stable")), d
         lut = rng.permutation(4 * d)[:d].astype(np.int64)  # distinct, in no order
         assert np.array_equal(sessions._stable_order(lut, r), np.argsort(lut[r], kind="stable")), d
+
+
+def test_keys_of_one_width_take_the_fixed_width_path_with_the_same_codes():
+    # chunks whose keys all have one width are hashed by Arrow as fixed-size binary; the
+    # codes must be those of the plain dict whatever path each chunk takes, and a sliced
+    # array (non-zero offset) must be viewed at its own bytes
+    rng = random.Random(8)
+    pool = [f"u{rng.randrange(10**8):08d}" for _ in range(300)]  # 9 bytes each
+    mixed = pool[:50] + ["x", "yy", "a much longer key than the rest"]
+    chunks = [
+        [rng.choice(pool) for _ in range(500)],
+        [rng.choice(mixed) for _ in range(500)],
+        [rng.choice(pool) for _ in range(500)],
+    ]
+    arrays = [pa.array(c) for c in chunks]
+    arrays[2] = pa.array(["pad"] * 7 + chunks[2]).slice(7)  # an offset into a longer array
+    assert pa.types.is_fixed_size_binary(sessions._fixed_width(arrays[0]).type)
+    assert sessions._fixed_width(arrays[1]) is arrays[1]
+    assert pa.types.is_fixed_size_binary(sessions._fixed_width(arrays[2]).type)
+    assert sessions._fixed_width(pa.array(["ab", None, "cd"])).type == pa.string()  # nulls: as is
+    counter = sessions.SessionCounter()
+    got = []
+    for arr in arrays:
+        lut, idx = counter._session_codes(arr)
+        got.append(lut[idx].tolist())
+    assert got == _oracle_codes(chunks)
+    assert [counter._keys.key(c) for c in got[2][:20]] == chunks[2][:20]

@@ -269,8 +269,6 @@ def _spans_to_strings(u8: np.ndarray, words: _Words, starts: np.ndarray, lengths
     return pa.Array.from_buffers(pa.large_string(), n, [None, pa.py_buffer(offsets), pa.py_buffer(data)])
 
 
-
-
 def _pack_rows(raw: np.ndarray, lengths: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     """The first ``lengths[i]`` bytes of each row of ``raw`` (n rows of 16 or 32 bytes),
     one after another (``offsets``: their cumulative sums, from 0).

@@ -262,20 +262,6 @@ def _grown(a: np.ndarray, n: int) -> np.ndarray:
     return b
 
 
-def _stable_order(lut: np.ndarray, idx: np.ndarray) -> np.ndarray:
-    """``np.argsort(lut[idx], kind="stable")`` for distinct ``lut`` values, faster.
-
-    The values are replaced by their ranks, which sort the same way and fit in 16 bits
-    (one radix pass) or 32 bits (two stable radix passes, low half first).
-    """
-    d = len(lut)
-    if d <= 1:
-        return np.arange(len(idx))
-    rank = np.empty(d, dtype=np.int64)
-    rank[np.argsort(lut)] = np.arange(d, dtype=np.int64)
-    return _group_order(rank[idx], d)
-
-
 def _group_order(r: np.ndarray, d: int) -> np.ndarray:
     """``np.argsort(r, kind="stable")`` for integers ``0 <= r < d``, by radix passes."""
     if d <= 1:
@@ -540,7 +526,7 @@ class SessionCounter:
         sess, t, base, line = fields
         del fields
         # by session (stable: file order), then by time within the sessions not in order
-        order = _stable_order(np.arange(len(self._keys), dtype=np.int64), sess)
+        order = _group_order(sess, len(self._keys))
         s_sorted = sess[order]
         del sess
         tkey = t[order]

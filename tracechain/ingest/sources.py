@@ -315,6 +315,47 @@ def _read_into(f: BinaryIO, view: memoryview) -> int:
     return got
 
 
+class _BlockBuffers:
+    """Block buffers handed back once a block has been yielded, for the blocks after it.
+
+    A fresh 16 MiB ``bytearray`` costs its pages twice: zeroed by the allocator, then
+    faulted in by the kernel as the file is read into it (thousands of page faults per
+    block). A buffer is only used again when nothing but this pool refers to it (no
+    reference held, no buffer exported to numpy or Arrow), so a consumer that keeps a
+    block, or a view of it, keeps its bytes: the pool then makes a new one.
+    """
+
+    __slots__ = ("_spare",)
+    #: spares kept: the block a consumer is working on while the next one is read ahead,
+    #: and the one before it, which it has let go of by then
+    _KEEP = 2
+
+    def __init__(self) -> None:
+        self._spare: list[bytearray] = []
+
+    def take(self, size: int) -> bytearray:
+        for i in range(len(self._spare)):
+            buf = self._spare[i]
+            # (references: the list, ``buf`` and getrefcount's argument)
+            if sys.getrefcount(buf) > 3:
+                continue
+            try:  # back to ``size`` bytes (blocks were cut short at their last newline)
+                if len(buf) < size:
+                    buf.extend(bytes(size - len(buf)))
+                elif len(buf) > size:
+                    del buf[size:]
+            except BufferError:  # a view of it is still alive somewhere
+                continue
+            del self._spare[i]
+            return buf
+        return bytearray(size)
+
+    def give(self, buf: bytearray) -> None:
+        self._spare.append(buf)
+        if len(self._spare) > self._KEEP:
+            del self._spare[0]
+
+
 def iter_line_blocks_counted(
     source: Source, block_bytes: int = BLOCK_BYTES, skip_lines: int = 0, count: bool = True
 ) -> Iterator[tuple[bytearray, int | None, int | None]]:
@@ -328,12 +369,13 @@ def iter_line_blocks_counted(
     """
     if skip_lines and not count:
         raise ValueError("skip_lines needs count=True")
+    spares = _BlockBuffers()
     with open_binary(source) as f:
         line_no = 1
         rest = b""
         bom_pending = True  # a byte order mark may still be split over the first reads
         while True:
-            buf = bytearray(len(rest) + block_bytes)
+            buf = spares.take(len(rest) + block_bytes)
             buf[: len(rest)] = rest
             try:
                 got = _read_into(f, memoryview(buf)[len(rest):])
@@ -367,10 +409,12 @@ def iter_line_blocks_counted(
             del buf[cut + 1 :]
             if not count:
                 yield buf, None, None
+                spares.give(buf)
                 del buf
                 continue
             newlines = count_newlines(buf)
             yield buf, line_no, newlines
+            spares.give(buf)
             del buf
             line_no += newlines
         if rest and not skip_lines:

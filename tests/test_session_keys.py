@@ -96,3 +96,5 @@ def test_keys_of_one_width_take_the_fixed_width_path_with_the_same_codes():
         got.append(lut[idx].tolist())
     assert got == _oracle_codes(chunks)
     assert [counter._keys.key(c) for c in got[2][:20]] == chunks[2][:20]
+    # every stored key has its own bytes, whichever way it was copied in
+    assert all(counter._keys.key(c) == k for chunk, g in zip(chunks, got) for c, k in zip(g, chunk))

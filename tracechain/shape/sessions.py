@@ -222,7 +222,12 @@ class _KeyIndex:
         if self.n + f + 1 > len(self._off):
             self._off = _grown(self._off, self.n + f + 1)
             self._hash = _grown(self._hash, self.n + f + 1)
-        if total:
+        width = int(lens[0]) if f else 0
+        if (total and width and total == f * width and offs[-1] - offs[0] == width * (len(offs) - 1)
+                and np.all(np.diff(offs) == width)):
+            # every key has one width (as dictionary-encoded fixed-width ids have): rows
+            self._data[end:end + total] = data[offs[0]:offs[-1]].reshape(-1, width)[rows].ravel()
+        elif total:
             ramp = np.arange(total) - np.repeat(np.cumsum(lens) - lens, lens)
             self._data[end:end + total] = data[np.repeat(offs[rows], lens) + ramp]
         self._off[self.n + 1:self.n + f + 1] = end + np.cumsum(lens)

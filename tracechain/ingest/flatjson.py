@@ -352,8 +352,10 @@ def _pool() -> ThreadPoolExecutor:
 
 
 #: Lines are checked in parts of about this many bytes, so that the positions and
-#: masks of a part stay in the CPU's cache between the passes over them.
-PART_BYTES = 1 << 20
+#: masks of a part stay close in the CPU's caches between the passes over them; fewer,
+#: larger parts mean fewer numpy calls. With 32 MiB blocks, 1.5 MiB parts took 2 to 6 %
+#: less time than 1 MiB in alternating runs on 2 cores (2 and 3 MiB: no better).
+PART_BYTES = 3 << 19
 
 
 def read_flat_block(block: bytes, nlines: int | None, wanted: tuple[str | None, ...] | None) -> FlatBlock | None:

@@ -98,3 +98,34 @@ def test_keys_of_one_width_take_the_fixed_width_path_with_the_same_codes():
     assert [counter._keys.key(c) for c in got[2][:20]] == chunks[2][:20]
     # every stored key has its own bytes, whichever way it was copied in
     assert all(counter._keys.key(c) == k for chunk, g in zip(chunks, got) for c, k in zip(g, chunk))
+
+
+def test_codes_survive_many_table_rebuilds():
+    # tens of thousands of keys: the table is rebuilt several times as it grows
+    rng = random.Random(5)
+    keys = [f"k{rng.randrange(10**9)}" for _ in range(40_000)]
+    chunks = [keys[i:i + 5000] for i in range(0, len(keys), 5000)]
+    chunks = [list(dict.fromkeys(c)) for c in chunks]
+    index = _KeyIndex()
+    got = [index.codes(pa.array(c)).tolist() for c in chunks]
+    assert got == _oracle_codes(chunks)
+    again = index.codes(pa.array(keys[::7])).tolist()  # all known by now
+    every = _oracle_codes([keys])[0]
+    assert again == every[::7]
+
+
+def test_keys_crowding_the_end_of_the_table_wrap_around(monkeypatch):
+    # distinct hashes whose low bits all aim at the table's last slot, so a rebuild
+    # pushes keys past the end; they must wrap around and still be found
+    def hashes(offs, data):
+        k = np.array([int(bytes(data[offs[i]:offs[i + 1]])[1:]) for i in range(len(offs) - 1)], dtype=np.uint64)
+        return (k << np.uint64(24)) | np.uint64(0xFFFFFF)
+
+    monkeypatch.setattr(sessions, "_hash_strings", hashes)
+    index = _KeyIndex()
+    keys = [f"w{i}" for i in range(1100)]  # past a quarter of the first 4096 slots: a rebuild
+    first = index.codes(pa.array(keys[:500])).tolist()
+    second = index.codes(pa.array(keys)).tolist()
+    assert first == list(range(500)) and second == list(range(1100))
+    assert len(index._slots) > 4096 and np.count_nonzero(index._slots) == 1100
+    assert index._slots[0] != 0  # (some keys did wrap around)

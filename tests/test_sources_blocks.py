@@ -57,3 +57,26 @@ def test_released_blocks_are_read_into_again(tmp_path, monkeypatch):
     assert b"".join(out) == b"".join(lines)
     assert len(out) > 10
     assert len(made) <= 3  # (not one per block)
+
+
+def test_declined_blocks_read_in_pieces_give_the_same_counts_and_problems(tmp_path, monkeypatch):
+    # a block the flat reader declines (a damaged line) goes to the general readers in
+    # pieces; the counts, the skipped lines and their numbers must not depend on that
+    from tracechain.ingest import jsonl
+    from tracechain.pipeline import ShapeOptions, count_sources
+
+    lines = [f'{{"session_id":"s{i % 37}","timestamp":{1000 + i},"event":"page{i % 11}"}}\n'.encode() for i in range(4000)]
+    bad = {7, 1500, 1501, 3998}
+    for i in bad:
+        lines[i] = lines[i][:25] + b"\n"  # cut short: invalid JSON
+    path = tmp_path / "log.jsonl"
+    path.write_bytes(b"".join(lines))
+
+    def run(piece):
+        monkeypatch.setattr(jsonl, "_GENERAL_BYTES", piece)
+        counts, report = count_sources([str(path)], shape=ShapeOptions(), extra={"block_bytes": 20_000})
+        return counts.to_edges(start="[s]", end="[e]"), report.lines_skipped, sorted(p.line for p in report.problems)
+
+    whole, pieces = run(1 << 30), run(3000)
+    assert whole == pieces
+    assert whole[1] == len(bad) and whole[2] == sorted(i + 1 for i in bad)

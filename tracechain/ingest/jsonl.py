@@ -32,6 +32,9 @@ __all__ = ["JsonLinesParser"]
 #: read+count benchmark (10^7 events, 2 cores), 32 MiB blocks took about 4 % less time
 #: than 16 MiB and no more memory; 64 MiB took more of both. (CSV is fastest at 16 MiB.)
 BLOCK_BYTES = 1 << 25
+#: Bytes per piece of a block for Arrow's JSON reader and the line-by-line reader, which
+#: hold several times a piece's size while they work (the block size they had before).
+_GENERAL_BYTES = 1 << 24
 
 _ODD_LINE = re.compile(rb"(?:^|\n)[ \t\r]*(?:[^{ \t\r\n]|\n)")
 _BRACE_AFTER_NL = 0x7B0A  # the bytes b"\n{" read as one little-endian uint16
@@ -86,13 +89,17 @@ class JsonLinesParser:
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         line_no = 1  # (counted here: the flat reader counts the lines of the blocks it takes)
         blocks = read_ahead(iter_line_blocks_counted(source, block_bytes, count=False))
+        later: list[bytes] = []  # the rest of a block the flat reader declined, still to read
         while True:
-            try:
-                item = next(blocks, None)
-            except IngestError as err:  # the block reader names no line: this is where it stopped
-                if err.line is None and err.source == source.name:
-                    raise IngestError(str(err).removeprefix(f"{source.name}: "), source.name, line_no) from err
-                raise
+            if later:
+                item = (later.pop(),)
+            else:
+                try:
+                    item = next(blocks, None)
+                except IngestError as err:  # the block reader names no line: this is where it stopped
+                    if err.line is None and err.source == source.name:
+                        raise IngestError(str(err).removeprefix(f"{source.name}: "), source.name, line_no) from err
+                    raise
             if item is None:
                 break
             block = item[0]
@@ -104,6 +111,13 @@ class JsonLinesParser:
                 if probe is not None:
                     names = self._names(options, source, seen, probe.keys, names)
             flat = read_flat_block(block, None, names) if names is not None else None
+            if flat is None and len(block) > _GENERAL_BYTES:
+                # the general readers build far more per byte than the flat one: they get
+                # pieces of at most _GENERAL_BYTES (the rest is tried flat again first)
+                cut = block.rfind(b"\n", 0, _GENERAL_BYTES) + 1
+                if cut:
+                    later.append(block[cut:])
+                    block = block[:cut]
             newlines = flat.lines if flat is not None else count_newlines(block)
             line_no += newlines
             nlines = newlines + (0 if block.endswith(b"\n") else 1)

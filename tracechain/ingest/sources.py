@@ -328,8 +328,14 @@ def _keep_freed_memory() -> None:
     benchmark (with the reused block buffers): 1 to 3 % of the time, and 10 % fewer
     page faults.
     """
-    probe = bytearray(24 << 20)
-    del probe
+    global _freed_once
+    if not _freed_once:
+        probe = bytearray(24 << 20)
+        del probe
+        _freed_once = True
+
+
+_freed_once = False
 
 
 class _BlockBuffers:

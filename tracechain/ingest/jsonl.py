@@ -89,7 +89,7 @@ class JsonLinesParser:
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         line_no = 1  # (counted here: the flat reader counts the lines of the blocks it takes)
         blocks = read_ahead(iter_line_blocks_counted(source, block_bytes, count=False))
-        later: list[bytes] = []  # the rest of a block the flat reader declined, still to read
+        later: list[bytearray] = []  # the rest of a block the flat reader declined, still to read
         while True:
             if later:
                 item = (later.pop(),)

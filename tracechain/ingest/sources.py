@@ -341,9 +341,9 @@ _freed_once = False
 class _BlockBuffers:
     """Block buffers handed back once a block has been yielded, for the blocks after it.
 
-    A fresh 16 MiB ``bytearray`` costs its pages twice: zeroed by the allocator, then
-    faulted in by the kernel as the file is read into it (thousands of page faults per
-    block). A buffer is only used again when nothing but this pool refers to it (no
+    A fresh block-sized ``bytearray`` (16 or 32 MiB) costs its pages twice: zeroed by the
+    allocator, then faulted in by the kernel as the file is read into it (thousands of page
+    faults per block). A buffer is only used again when nothing but this pool refers to it (no
     reference held, no buffer exported to numpy or Arrow), so a consumer that keeps a
     block, or a view of it, keeps its bytes: the pool then makes a new one.
     """

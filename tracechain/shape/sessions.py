@@ -223,8 +223,7 @@ class _KeyIndex:
             self._off = _grown(self._off, self.n + f + 1)
             self._hash = _grown(self._hash, self.n + f + 1)
         width = int(lens[0]) if f else 0
-        if (total and width and total == f * width and offs[-1] - offs[0] == width * (len(offs) - 1)
-                and np.all(np.diff(offs) == width)):
+        if width and np.all(np.diff(offs) == width):
             # every key has one width (as dictionary-encoded fixed-width ids have): rows
             self._data[end:end + total] = data[offs[0]:offs[-1]].reshape(-1, width)[rows].ravel()
         elif total:

@@ -26,8 +26,13 @@ _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
 def csv_cell(text) -> str:
-    """A text cell neutralised against formula injection."""
-    s = str(text)
+    """A text cell neutralised against formula injection.
+
+    A NUL character is written as U+2400 SYMBOL FOR NULL: Python 3.10's :mod:`csv` refuses to
+    write NUL at all ("need to escape"), 3.11 and later write it raw, and spreadsheets cut a
+    cell at it; the visible symbol gives one readable file on every supported interpreter.
+    """
+    s = str(text).replace("\x00", "\u2400")
     return "'" + s if s.startswith(_FORMULA_START) else s
 
 

@@ -172,9 +172,19 @@ class Rule:
         return True, _STATE_REF.sub(sub, self.state)
 
 
+# RFC 3986 section 3.1: scheme = ALPHA *( ALPHA / DIGIT / "+" / "-" / "." ), then ":".
+# Python 3.10's urlsplit also took a leading digit run as a scheme ("1:30" -> path "30"),
+# 3.11 and later do not; deciding it here gives one answer on every supported interpreter.
+_SCHEME = re.compile(r"[A-Za-z][A-Za-z0-9+.\-]*:")
+
+
 def _path_of(raw: str) -> str:
     s = raw.strip()
     if "://" in s or s.startswith(("/", "?")) or " " not in s:
+        if not (_SCHEME.match(s) or s.startswith("//")):
+            # no scheme: the path ends at the query or the fragment (RFC 3986 section 3)
+            end = min((i for i in (s.find("?"), s.find("#")) if i >= 0), default=len(s))
+            return s[:end] or "/"
         try:
             parts = urlsplit(s)
             return parts.path or "/"

@@ -91,7 +91,8 @@ class TransientSolver:
         sizes = np.bincount(pos, minlength=ncls)
         bounds = np.concatenate([[0], np.cumsum(sizes)])
         self._perm = perm
-        self._Ap = A[perm][:, perm].tocsr()
+        # one class (a random chain): nothing to reorder
+        self._Ap = A if ncls == 1 else A[perm][:, perm].tocsr()
         # segments: runs of small classes, and each large class alone
         segs: list[tuple[int, int, bool]] = []
         k = 0
@@ -108,19 +109,19 @@ class TransientSolver:
         self._segs = []
         kinds = set()
         for a, b, large in segs:
-            block = self._Ap[a:b, a:b].tocsc()
+            block = self._Ap if (a, b) == (0, m) else self._Ap[a:b, a:b].tocsr()
             if not large:
-                self._segs.append((a, b, "lu", _splu(block, None), None))
+                self._segs.append((a, b, "lu", _splu(block.tocsc(), None), None))
                 kinds.add("lu")
                 continue
             order = _narrow_band(block)
             if order is not None:
-                self._segs.append((a, b, "band-lu", _splu(block, order), order))
+                self._segs.append((a, b, "band-lu", _splu(block.tocsc(), order), order))
                 kinds.add("band-lu")
             else:
                 d = block.diagonal()
                 d[d == 0] = 1.0
-                self._segs.append((a, b, "krylov", sp.diags_array(1.0 / d), block.tocsr()))
+                self._segs.append((a, b, "krylov", sp.diags_array(1.0 / d), block))
                 kinds.add("bicgstab")
         # the rows of a segment use the values of the columns after it
         self._after = [self._Ap[a:e, e:].tocsr() if e < m else None for a, e, *_ in self._segs]
@@ -220,11 +221,24 @@ def _splu(block: sp.csc_array, order):
         raise AnalysisError(f"I − Q is singular or too ill-conditioned: {err}") from err
 
 
-def _narrow_band(block: sp.csc_array) -> np.ndarray | None:
+def _narrow_band(block: sp.csr_array) -> np.ndarray | None:
     """A reverse Cuthill–McKee order of the block when its band is narrow enough to factor."""
     from scipy.sparse import csgraph
 
     m = block.shape[0]
+    # a row with d other states in it needs a band of at least d / 2: a cheap refusal first
+    deg = np.diff(block.indptr)
+    if m * (int(deg.max()) if m else 0) > BAND_FILL_MAX + m:
+        return None
+    # a band of width w puts a state at distance >= (m - 1) / (2 w) from the farthest state
+    # (each edge moves at most w places along the order): a shallow breadth-first search
+    # (a random chain has depth about log m) rules a narrow band out without an ordering
+    widest = max((BAND_FILL_MAX // max(m, 1) - 1) // 2, 1)
+    pattern = sp.csr_array((np.ones(len(block.indices)), block.indices, block.indptr), shape=block.shape)
+    dist = csgraph.shortest_path(pattern, directed=False, unweighted=True, indices=0)
+    depth = float(np.max(dist[np.isfinite(dist)]))
+    if depth < (m - 1) / (2 * widest):
+        return None
     S = sp.csr_array(block, copy=True)
     S.data = np.ones_like(S.data)
     S = (S + S.T).tocsr()

@@ -181,3 +181,26 @@ def test_detected_from_content_plain_and_gzipped(tmp_path):
     zipped = tmp_path / "log.bin"
     zipped.write_bytes(gzip.compress(LOG.read_bytes()))
     assert detect_parser(Source(str(zipped), str(zipped))).name == "xes"
+
+
+@pytest.mark.parametrize("encoding", ["x-no-such-charset", "rot13", "shift_jis"])
+def test_unknown_or_unreadable_declared_encoding_is_an_error_with_file_and_line(tmp_path, encoding, capsys):
+    # XML 1.0, section 4.3.3: the encoding declaration names the document's character
+    # encoding (from memory); a name Python has no text codec for, or a multi-byte codec
+    # expat cannot use, cannot be decoded and must be a located input error (exit 2).
+    from tracechain.cli import main
+
+    path = tmp_path / "enc.xes"
+    path.write_text(
+        f'<?xml version="1.0" encoding="{encoding}"?>\n'
+        '<log xes.version="1.0"><trace><string key="concept:name" value="c"/>'
+        '<event><string key="concept:name" value="e"/></event></trace></log>\n',
+        encoding="ascii",
+    )
+    with pytest.raises(IngestError) as info:
+        read(path)
+    assert info.value.source == str(path) and info.value.line == 1
+    assert "encoding" in str(info.value)
+    assert main(["analyze", "--format", "xes", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert str(path) in err and "Traceback" not in err

@@ -224,6 +224,13 @@ class TransitionCounts:
     def __add__(self, other: "TransitionCounts") -> "TransitionCounts":
         if not isinstance(other, TransitionCounts):
             return NotImplemented
+        for a, b in ((self, other), (other, self)):
+            if not a.states and not a.first_seen and a.sessions == 0 and a.events == 0:
+                # nothing to add (the pipeline starts from an empty sum): b as it is, metas merged
+                meta = dict(other.meta)
+                meta.update(self.meta)
+                return TransitionCounts(b.states, b.counts, b.starts, b.ends, b.open, b.gap_sum, b.gap_n,
+                                        b.sessions, b.events, dict(b.first_seen), meta)
         mine = set(self.states)
         union = tuple(self.states) + tuple(s for s in other.states if s not in mine)
         a = self.reindex(union)

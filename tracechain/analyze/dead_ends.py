@@ -76,7 +76,11 @@ def exit_states(chain: Chain, top: int | None = None) -> tuple[ExitState, ...]:
     if chain.end is None:
         return ()
     W, visits, to_end = _counts(chain)
-    total = chain.counts.sessions if chain.counts is not None and chain.counts.sessions else max(to_end.sum(), 1)
+    total = chain.counts.sessions if chain.counts is not None and chain.counts.sessions else 0
+    # each session ends once: with counts that are not whole sessions (an unbalanced edge
+    # list, where more sessions end than start) the ends themselves are the floor, so no
+    # share is above 100 % and the shares add up to at most 100 %
+    total = max(total, float(to_end.sum()), 1.0)
     out = []
     for i in chain.observed:
         if chain.roles[i] == "transient" and to_end[i] > 0:

@@ -192,6 +192,14 @@ class XesParser:
                     f"XML document type declarations are refused ({type(err).__name__}): a DTD can expand "
                     "entities or read external files, and XES needs none", source.name, target.line(),
                 ) from None
+            except (LookupError, ValueError) as err:
+                # after DefusedXmlException, which is a ValueError: the XML declaration names an
+                # encoding Python does not know (LookupError) or a multi-byte one expat cannot
+                # decode through Python (ValueError)
+                raise IngestError(
+                    f"the XML declaration names an encoding that cannot be read: {err}",
+                    source.name, max(target.line(), 1),
+                ) from None
             except ParseError as err:
                 line = err.position[0] if getattr(err, "position", None) else target.line()
                 msg = str(err).split(":", 1)[0]

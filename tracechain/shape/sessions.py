@@ -44,7 +44,28 @@ _M = np.int64(1) << np.int64(31)
 _DENSE_MAX = 1024
 
 _VEC_BYTES = 512  # keys up to this long are hashed word by word in numpy; longer ones one at a time
-_SEED = np.uint64(0x243F6A8885A308D3)
+
+def _hash_key(seed: int | None = None) -> tuple:
+    """Per-process secrets of the key hash, from ``os.urandom`` (or from ``seed``).
+
+    ``TRACECHAIN_HASH_SEED`` (an integer) fixes them, for reproducing a run and for the
+    tests that check the counts do not depend on them.
+    """
+    import os
+
+    if seed is None:
+        env = os.environ.get("TRACECHAIN_HASH_SEED", "").strip()
+        seed = int(env) if env.lstrip("-").isdigit() else int.from_bytes(os.urandom(16), "little")
+    rng = np.random.Generator(np.random.PCG64(seed))
+    words = _VEC_BYTES // 8 + 1
+    xor = rng.integers(0, 2**64, size=words, dtype=np.uint64, endpoint=False)
+    add = rng.integers(0, 2**64, size=words, dtype=np.uint64, endpoint=False)
+    rot = rng.integers(1, 64, size=words).astype(np.uint64)
+    start = np.uint64(rng.integers(0, 2**64, dtype=np.uint64, endpoint=False))
+    return start, xor, add, rot, rng.bytes(32)
+
+
+_SEED, _XOR, _ADD, _ROT, _BLAKE_KEY = _hash_key()
 _K_LEN = np.uint64(0x9E3779B97F4A7C15)
 _K_WORD = np.uint64(0xFF51AFD7ED558CCD)
 _K_FIN = np.uint64(0xC4CEB9FE1A85EC53)
@@ -90,11 +111,20 @@ def _string_buffers(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
 # The key hash: the length, then the key's 8-byte little-endian words (the last one
 # zero-filled) folded in one at a time, then a final mix. Only ever compared with hashes
 # made here, and equal hashes are confirmed byte by byte, so any function of the bytes
-# would do; working by words keeps the numpy passes few.
+# gives the right codes; working by words keeps the numpy passes few. It is keyed by
+# per-process secrets (``_hash_key``): before a word j is folded in it is xored with a
+# secret word and rotated by a secret amount, and a secret word is added after the fold.
+# Without them the fold is a fixed bijection, and a difference in the top bit of a word
+# passes through the multiplication unchanged (odd multiplier), so pairs of words whose
+# differences cancel give collisions whatever the starting value: seeding the start alone
+# would not stop keys crafted to collide. Keys longer than _VEC_BYTES go to keyed BLAKE2b.
 
-def _fold(h: np.ndarray, w: np.ndarray) -> np.ndarray:
+def _fold(h: np.ndarray, w: np.ndarray, j: int = 0) -> np.ndarray:
+    r = _ROT[j]
+    w = w ^ _XOR[j]
+    w = (w << r) | (w >> (np.uint64(64) - r))
     h = (h ^ w) * _K_WORD
-    return h ^ (h >> _S29)
+    return (h ^ (h >> _S29)) + _ADD[j]
 
 
 def _finish(h: np.ndarray) -> np.ndarray:
@@ -123,7 +153,7 @@ def _hash_strings(offs: np.ndarray, data: np.ndarray) -> np.ndarray:
         rows[:, :width] = data[offs[0] : offs[0] + n * width].reshape(n, width)
         words = rows.view("<u8")
         for j in range(nw):
-            h = _fold(h, words[:, j])
+            h = _fold(h, words[:, j], j)
         return _finish(h)
     short = np.flatnonzero(lens <= _VEC_BYTES)
     if len(short):
@@ -138,10 +168,10 @@ def _hash_strings(offs: np.ndarray, data: np.ndarray) -> np.ndarray:
         for j in range(top):
             k = int(active[j])
             w = words[starts[:k] + 8 * j] & BYTE_MASKS[np.minimum(ls[:k] - 8 * j, 8)]
-            hs[:k] = _fold(hs[:k], w)
+            hs[:k] = _fold(hs[:k], w, j)
         h[by_len] = hs
     for i in np.flatnonzero(lens > _VEC_BYTES).tolist():
-        digest = hashlib.blake2b(data[offs[i]:offs[i + 1]].tobytes(), digest_size=8).digest()
+        digest = hashlib.blake2b(data[offs[i]:offs[i + 1]].tobytes(), digest_size=8, key=_BLAKE_KEY).digest()
         h[i] = np.uint64(int.from_bytes(digest, "little"))
     return _finish(h)
 

@@ -32,6 +32,7 @@ import re
 from dataclasses import dataclass, field
 from typing import Any
 
+from .._yamlsafe import decode_config
 from ..errors import ConfigError
 from .findings import SEVERITIES
 from .params import Params, load_yaml, states_list, user_keys
@@ -103,13 +104,11 @@ class RulesFile:
 def load_rules(path: str) -> RulesFile:
     """Read a rules file; paths in it are relative to its folder."""
     try:
-        with open(path, encoding="utf-8") as f:
-            text = f.read()
+        with open(path, "rb") as f:
+            data = f.read()
     except OSError as err:
-        raise ConfigError(f"cannot read rules file: {err.strerror}", path) from err
-    except UnicodeDecodeError as err:
-        raise ConfigError(f"the rules file is not UTF-8 text: {err.reason}", path) from err
-    return parse_rules(text, path, os.path.dirname(path))
+        raise ConfigError(f"cannot read rules file: {err.strerror or err}", path) from err
+    return parse_rules(decode_config(data, path, "rules file"), path, os.path.dirname(path))
 
 
 def _duration(value: Any, raw: str | None) -> float | None:

@@ -18,6 +18,7 @@ from typing import Any
 
 import yaml
 
+from .._yamlsafe import check_depth
 from ..errors import ConfigError
 
 __all__ = ["LineLoader", "LineList", "META_KEYS", "load_yaml", "Params"]
@@ -78,10 +79,24 @@ def _construct_seq(loader: LineLoader, node):
 LineLoader.add_constructor("tag:yaml.org,2002:seq", _construct_seq)
 
 
+def _construct_int(loader: LineLoader, node):
+    try:
+        return yaml.SafeLoader.construct_yaml_int(loader, node)
+    except ValueError as err:  # more digits than Python converts (4300 by default)
+        raise yaml.constructor.ConstructorError(None, None, f"the number {node.value[:20]}... is too long ({err})",
+                                                node.start_mark) from None
+
+
+LineLoader.add_constructor("tag:yaml.org,2002:int", _construct_int)
+
+
 def load_yaml(text: str, source: str | None) -> Any:
     """Parse YAML text with :class:`LineLoader`; syntax errors become ConfigError with the line."""
+    check_depth(text, source)
     try:
         return yaml.load(text, Loader=LineLoader)  # noqa: S506 - a SafeLoader subclass
+    except RecursionError:  # (check_depth bounds the nesting; this is a last resort)
+        raise ConfigError("not valid YAML: nested too deeply", source) from None
     except yaml.MarkedYAMLError as err:
         mark = err.problem_mark or err.context_mark
         line = mark.line + 1 if mark is not None else None

@@ -31,6 +31,8 @@ Settings (``ReadOptions.extra``):
 ``session_extension`` (str, optional)
     Name of the extension attribute that holds the session key (lower-case letters
     and digits), instead of ``subject``.
+``block_bytes`` (int, optional)
+    Bytes read from the file at a time (tests use small reads).
 
 :func:`iter_json_values` (the stream reader) is shared with the OTLP/JSON parser.
 """
@@ -49,7 +51,7 @@ from ..errors import IngestError, UsageError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .regexlog import CHUNK_EVENTS, Collector, rfc3339_seconds
-from .sources import Source, open_binary
+from .sources import DECOMPRESS_ERRORS, Source, open_binary
 
 __all__ = ["CloudEventsParser", "iter_json_values", "JsonProblem"]
 
@@ -61,6 +63,8 @@ MAX_VALUE = 256 << 20
 _WS = re.compile(r"[ \t\n\r]*")
 _SEP = re.compile(r"[ \t\n\r,]*")
 _EXT_NAME = re.compile(r"[a-z0-9]+")
+#: text after a decoding error that may be the start of a token cut off by the end of the buffer
+_PARTIAL_TOKEN = re.compile(r'[^ \t\n\r,:\[\]{}"]*')
 _CORE = ("id", "source", "specversion", "type", "datacontenttype", "dataschema", "subject", "time",
          "data", "data_base64")
 
@@ -73,7 +77,9 @@ class JsonProblem:
         self.detail = detail
 
 
-def iter_json_values(source: Source, report: ParseReport | None = None) -> Iterator[tuple[int, Any]]:
+def iter_json_values(
+    source: Source, report: ParseReport | None = None, read_bytes: int = READ_BYTES
+) -> Iterator[tuple[int, Any]]:
     """Yield ``(line, value)`` for each top-level JSON value of ``source``.
 
     A file whose first character is ``[`` is a batch: its elements are yielded one by
@@ -81,6 +87,9 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
     the common case; a single pretty-printed object works too). An unreadable value
     yields ``(line, JsonProblem)`` and reading goes on at the next line. ``line`` is the
     line where the value starts. ``report.lines_read`` counts the values looked at.
+    A value nested deeper than Python's JSON decoder can follow (about a thousand
+    levels) is an unreadable value (``"invalid JSON"``, "nested too deeply"), like any
+    other. ``read_bytes`` is the size of each read from the file (tests use small ones).
     """
     decoder = json.JSONDecoder()
     text_decoder = codecs.getincrementaldecoder("utf-8")(errors="replace")
@@ -94,8 +103,8 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
         def more() -> None:
             nonlocal buf, pos, eof, mark, mark_line
             try:
-                data = f.read(max(READ_BYTES, len(buf) - pos))  # grows for a long value
-            except (OSError, EOFError) as err:
+                data = f.read(max(read_bytes, len(buf) - pos))  # grows for a long value
+            except DECOMPRESS_ERRORS as err:
                 raise IngestError(f"cannot decompress: {err}", source.name) from err
             text = text_decoder.decode(data, final=not data)
             if not data:
@@ -143,16 +152,25 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
                 break
             try:
                 value, end = decoder.raw_decode(buf, pos)
-            except json.JSONDecodeError as err:
-                rest = buf[err.pos:]
-                incomplete = not rest.strip() or err.msg.startswith("Unterminated string")
+            except (json.JSONDecodeError, RecursionError) as err:
+                if isinstance(err, RecursionError):
+                    incomplete, msg = False, "nested too deeply"
+                else:
+                    # the value may only look bad because the buffer ends inside it: nothing
+                    # but white space after the error, a string not closed, or one token
+                    # running to the end of the buffer (``tr`` of ``true``, half a number, a
+                    # cut ``\\u00`` escape)
+                    rest = buf[err.pos:]
+                    incomplete = (not rest.strip() or err.msg.startswith("Unterminated string")
+                                  or _PARTIAL_TOKEN.fullmatch(rest) is not None)
+                    msg = err.msg
                 if incomplete and not eof and len(buf) - pos < MAX_VALUE:
                     more()
                     continue
                 line = line_at(pos)
                 if report is not None:
                     report.lines_read += 1
-                detail = err.msg
+                detail = msg
                 if incomplete and not eof:
                     detail = f"no complete JSON value within {MAX_VALUE >> 20} MiB"
                 yield line, JsonProblem("invalid JSON", detail)
@@ -218,7 +236,7 @@ class CloudEventsParser:
         missing_key = f"missing extension {ext!r}" if ext else "missing subject"
         report.fields.update({"session": key, "time": "time", "event": "type"})
         out = Collector(source.name, report, options.strict)
-        for line, obj in iter_json_values(source, report):
+        for line, obj in iter_json_values(source, report, int(options.extra.get("block_bytes", READ_BYTES))):
             if isinstance(obj, JsonProblem):
                 out.bad(line, obj.reason, obj.detail)
                 continue

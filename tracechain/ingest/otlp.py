@@ -38,6 +38,8 @@ Settings (``ReadOptions.extra``):
 ``span_kinds`` (str or list, optional)
     Keep only spans of these kinds: names (``server``, ``client``, ``internal``,
     ``producer``, ``consumer``, ``unspecified``) or numbers 0-5.
+``block_bytes`` (int, optional)
+    Bytes read from the file at a time (tests use small reads).
 """
 
 from __future__ import annotations
@@ -52,7 +54,7 @@ from typing import Any
 from ..errors import UsageError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
-from .cloudevents import JsonProblem, _first_value_keys, iter_json_values
+from .cloudevents import READ_BYTES, JsonProblem, _first_value_keys, iter_json_values
 from .regexlog import CHUNK_EVENTS, Collector, list_option
 from .sources import Source
 
@@ -186,7 +188,7 @@ class OtlpJsonParser:
         report.fields.update({"session": "traceId", "time": "startTimeUnixNano", "event": attr or "name"})
         out = Collector(source.name, report, options.strict)
         fallback = 0
-        for line, obj in iter_json_values(source, report):
+        for line, obj in iter_json_values(source, report, int(extra.get("block_bytes", READ_BYTES))):
             if isinstance(obj, JsonProblem):
                 out.bad(line, obj.reason, obj.detail)
                 continue

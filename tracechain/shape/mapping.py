@@ -38,6 +38,7 @@ from urllib.parse import urlsplit
 
 import yaml
 
+from .._yamlsafe import check_depth, decode_config
 from ..errors import ConfigError
 
 __all__ = ["Mapping", "Rule", "load_mapping", "parse_mapping"]
@@ -238,16 +239,20 @@ class Mapping:
 def load_mapping(path: str) -> Mapping:
     """Read a mapping file; errors name the file and line."""
     try:
-        with open(path, encoding="utf-8") as f:
-            text = f.read()
+        with open(path, "rb") as f:
+            data = f.read()
     except OSError as err:
-        raise ConfigError(f"cannot read mapping file: {err.strerror}", path) from err
-    return parse_mapping(text, path)
+        raise ConfigError(f"cannot read mapping file: {err.strerror or err}", path) from err
+    return parse_mapping(decode_config(data, path, "mapping file"), path)
+
 
 
 def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
+    check_depth(text, source)
     try:
         data = yaml.load(text, Loader=_LineLoader)  # noqa: S506 - a SafeLoader subclass
+    except RecursionError:  # (check_depth bounds the nesting; this is a last resort)
+        raise ConfigError("not valid YAML: nested too deeply", source) from None
     except yaml.MarkedYAMLError as err:
         mark = err.problem_mark or err.context_mark
         line = mark.line + 1 if mark is not None else None

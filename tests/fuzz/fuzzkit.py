@@ -245,7 +245,7 @@ def gen_otlp(rng: random.Random) -> Case:
         spans = []
         for _ in range(rng.randrange(0, 4)):
             tid = rng.choice(("0af7651916cd43dd8448eb211c80319c", "4BF92F3577B34DA6A3CE929D0E0E4736",
-                              "00000000000000000000000000000000", "xyz"))
+                              "5b8aa5a2d2c872e8321cf37308d69df2", "00000000000000000000000000000000", "xyz"))
             name = rng.choice(_STATES + ("",))
             start = rng.choice((str(1_700_000_000_000_000_000 + rng.randrange(10**12)), None, "abc"))
             code = rng.choice((0, 1, 2))

@@ -57,6 +57,8 @@ __all__ = ["CloudEventsParser", "iter_json_values", "JsonProblem"]
 
 #: Bytes read from the file at a time.
 READ_BYTES = 1 << 20
+#: Characters looked at to tell a batch array from values one after another.
+LAYOUT_CHARS = 1 << 20
 #: Largest single JSON value (decoded characters) the stream reader will hold.
 MAX_VALUE = 256 << 20
 
@@ -78,19 +80,24 @@ class JsonProblem:
 
 
 def iter_json_values(
-    source: Source, report: ParseReport | None = None, read_bytes: int = READ_BYTES
+    source: Source, report: ParseReport | None = None, read_bytes: int | None = None, batches: bool = True,
 ) -> Iterator[tuple[int, Any]]:
     """Yield ``(line, value)`` for each top-level JSON value of ``source``.
 
     A file whose first character is ``[`` is a batch: its elements are yielded one by
     one. Otherwise values follow one another, separated by white space (JSON Lines is
-    the common case; a single pretty-printed object works too). An unreadable value
-    yields ``(line, JsonProblem)`` and reading goes on at the next line. ``line`` is the
-    line where the value starts. ``report.lines_read`` counts the values looked at.
+    the common case; a single pretty-printed object works too). A batch is one array with
+    nothing after it: a file that starts with an array (a JSON Lines file whose first line
+    is one) followed by more values, all within its first :data:`LAYOUT_CHARS` characters,
+    is values one after another. With ``batches=False`` no file is read as a batch.
+
+    An unreadable value yields ``(line, JsonProblem)`` and reading goes on at the next
+    line. ``line`` is the line where the value starts. ``report.lines_read`` counts the values looked at.
     A value nested deeper than Python's JSON decoder can follow (about a thousand
     levels) is an unreadable value (``"invalid JSON"``, "nested too deeply"), like any
     other. ``read_bytes`` is the size of each read from the file (tests use small ones).
     """
+    step = read_bytes or READ_BYTES
     decoder = json.JSONDecoder()
     text_decoder = codecs.getincrementaldecoder("utf-8")(errors="replace")
     with open_binary(source) as f:
@@ -103,7 +110,7 @@ def iter_json_values(
         def more() -> None:
             nonlocal buf, pos, eof, mark, mark_line
             try:
-                data = f.read(max(read_bytes, len(buf) - pos))  # grows for a long value
+                data = f.read(max(step, len(buf) - pos))  # grows for a long value
             except DECOMPRESS_ERRORS as err:
                 raise IngestError(f"cannot decompress: {err}", source.name) from err
             text = text_decoder.decode(data, final=not data)
@@ -129,7 +136,17 @@ def iter_json_values(
             if pos < len(buf) or eof:
                 break
             more()
-        batch = pos < len(buf) and buf[pos] == "["
+        batch = batches and pos < len(buf) and buf[pos] == "["
+        if batch:
+            # decided on the first LAYOUT_CHARS characters, however much a read brings
+            while not eof and len(buf) - pos < LAYOUT_CHARS:
+                more()
+            try:
+                _, end = decoder.raw_decode(buf, pos)
+            except (json.JSONDecodeError, RecursionError):
+                pass  # an array longer than that (or a broken one): a batch
+            else:
+                batch = _WS.match(buf, end).end() >= len(buf)
         if batch:
             pos += 1
         ended = False
@@ -196,6 +213,11 @@ def iter_json_values(
             yield line_at(min(pos, len(buf))), JsonProblem("invalid JSON", "the batch array is not closed")
 
 
+def _block(extra: dict) -> int | None:
+    value = extra.get("block_bytes")
+    return None if value is None else int(value)
+
+
 def _first_value_keys(head: bytes) -> set[str] | None:
     """Top-level keys of the first JSON object in ``head`` (None if it cannot be read)."""
     text = head.decode("utf-8", errors="replace").lstrip("\ufeff \t\r\n")
@@ -236,7 +258,7 @@ class CloudEventsParser:
         missing_key = f"missing extension {ext!r}" if ext else "missing subject"
         report.fields.update({"session": key, "time": "time", "event": "type"})
         out = Collector(source.name, report, options.strict)
-        for line, obj in iter_json_values(source, report, int(options.extra.get("block_bytes", READ_BYTES))):
+        for line, obj in iter_json_values(source, report, _block(options.extra)):
             if isinstance(obj, JsonProblem):
                 out.bad(line, obj.reason, obj.detail)
                 continue

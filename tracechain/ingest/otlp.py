@@ -3,7 +3,8 @@
 The collector's file exporter writes one ``TracesData`` object per line:
 ``resourceSpans[] → scopeSpans[] → spans[]`` (files from before the rename use
 ``instrumentationLibrarySpans``). A single pretty-printed object, or several objects
-one after another, are read too (see :func:`tracechain.ingest.cloudevents.iter_json_values`).
+one after another, are read too (see :func:`tracechain.ingest.cloudevents.iter_json_values`);
+OTLP has no batch array, so a line holding an array is "not a JSON object", like any other.
 
 Per span: ``traceId`` is 32 hexadecimal digits (16 bytes); writers that used the
 default protobuf JSON mapping write base64 instead, which is decoded to the same hex
@@ -54,7 +55,7 @@ from typing import Any
 from ..errors import UsageError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
-from .cloudevents import READ_BYTES, JsonProblem, _first_value_keys, iter_json_values
+from .cloudevents import JsonProblem, _block, _first_value_keys, iter_json_values
 from .regexlog import CHUNK_EVENTS, Collector, list_option
 from .sources import Source
 
@@ -188,7 +189,7 @@ class OtlpJsonParser:
         report.fields.update({"session": "traceId", "time": "startTimeUnixNano", "event": attr or "name"})
         out = Collector(source.name, report, options.strict)
         fallback = 0
-        for line, obj in iter_json_values(source, report, int(extra.get("block_bytes", READ_BYTES))):
+        for line, obj in iter_json_values(source, report, _block(extra), batches=False):
             if isinstance(obj, JsonProblem):
                 out.bad(line, obj.reason, obj.detail)
                 continue

@@ -186,3 +186,38 @@ def test_huge_integer_in_rules_is_a_config_error():
         parse_rules("version: 1\nrules:\n  - kind: steps-ceiling\n    max: " + "9" * 5000 + "\n")
     # the mapping file reads names as text: the digits are a name
     assert parse_mapping("rename:\n  a: " + "9" * 5000 + "\n").rename == {"a": "9" * 5000}
+
+
+def test_lone_surrogate_escapes_are_read(tmp_path):
+    """JSON allows "\\ud800" (RFC 8259 section 8.2 notes such strings), which is no UTF-8
+    text: it used to end in UnicodeEncodeError; now shown as "?" (as for JSON Lines)."""
+    path = tmp_path / "ce.json"
+    path.write_bytes(b'{"specversion": "1.0", "id": "1", "source": "/s", "type": "a\\ud800", "subject": "s\\udc00"}\n')
+    assert read("cloudevents", path)[0] == [("s?", "a?", 1)]
+    path = tmp_path / "spans.json"
+    path.write_bytes(SPAN.replace(b'"name": "a"', b'"name": "a\\ud800"'))
+    assert read("otlp", path)[0] == [("0af7651916cd43dd8448eb211c80319c", "a?", 1)]
+
+
+@pytest.mark.parametrize("start", [b"9" * 5000, b'"' + b"9" * 5000 + b'"', b"1e999", b'"\xc2\xb2"', b"-5",
+                                   b'"18446744073709551616"'])
+def test_otlp_start_time_out_of_range_is_a_skipped_span(start, tmp_path):
+    """startTimeUnixNano is a fixed64 (opentelemetry-proto trace.proto): 5000 digits (ValueError),
+    1e999 (OverflowError), a superscript digit (str.isdigit accepts it, int() does not) or a
+    value outside 0..2^64-1 used to raise or be taken; now the span is skipped."""
+    path = tmp_path / "spans.json"
+    path.write_bytes(SPAN.replace(b'"1700000000000000000"', start) + SPAN)
+    rows, report = read("otlp", path)
+    assert [r[2] for r in rows] == [2]
+    assert report.lines_skipped == 1
+
+
+def test_cloudevents_numbers_that_are_no_key(tmp_path):
+    """A subject of 5000 digits (ValueError from the JSON decoder) or 1e999 (read as infinity,
+    which became the session "Infinity") is skipped; the next event is read."""
+    ok = CE.replace(b'"subject": "s1"', b'"subject": "ok"')
+    path = tmp_path / "ce.json"
+    path.write_bytes(CE.replace(b'"s1"', b"9" * 5000) + CE.replace(b'"s1"', b"1e999") + ok)
+    rows, report = read("cloudevents", path)
+    assert rows == [("ok", "a", 3)]
+    assert dict(report.skipped) == {"invalid JSON": 1, "missing subject": 1}

@@ -517,6 +517,15 @@ def _bom(d: bytes, rng: random.Random) -> bytes:
     return b"\xef\xbb\xbf" + d
 
 
+def _surrogate(d: bytes, rng: random.Random) -> bytes:
+    """A lone surrogate escape (valid JSON syntax, no UTF-8 text) at the start of a JSON string."""
+    at = [i for i in range(len(d) - 1) if d[i:i + 2] == b': "']
+    if not at:
+        return _line_at(d, rng, b'"\\ud800"')
+    i = rng.choice(at) + 3
+    return d[:i] + rng.choice((b"\\ud800", b"\\udfff", b"\\u0000")) + d[i:]
+
+
 def _long_line(d: bytes, rng: random.Random) -> bytes:
     return _line_at(d, rng, b"x" * rng.choice((5000, 70000)))
 
@@ -524,7 +533,7 @@ def _long_line(d: bytes, rng: random.Random) -> bytes:
 MUTATIONS: dict[str, Callable[[bytes, random.Random], bytes]] = {
     "flip": _flip, "truncate": _truncate, "junk-line": _junk_line, "invalid-utf8": _invalid_utf8,
     "control": _control, "huge-number": _huge_number, "deep": _deep, "crlf": _crlf, "bom": _bom,
-    "long-line": _long_line,
+    "long-line": _long_line, "surrogate": _surrogate,
 }
 
 

@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import codecs
 import json
+import math
 import re
 from collections.abc import Iterator
 from typing import Any
@@ -94,8 +95,8 @@ def iter_json_values(
     An unreadable value yields ``(line, JsonProblem)`` and reading goes on at the next
     line. ``line`` is the line where the value starts. ``report.lines_read`` counts the values looked at.
     A value nested deeper than Python's JSON decoder can follow (about a thousand
-    levels) is an unreadable value (``"invalid JSON"``, "nested too deeply"), like any
-    other. ``read_bytes`` is the size of each read from the file (tests use small ones).
+    levels), or holding an integer of more digits than Python converts (4300), is an
+    unreadable value (``"invalid JSON"``), like any other. ``read_bytes`` is the size of each read from the file (tests use small ones).
     """
     step = read_bytes or READ_BYTES
     decoder = json.JSONDecoder()
@@ -143,7 +144,7 @@ def iter_json_values(
                 more()
             try:
                 _, end = decoder.raw_decode(buf, pos)
-            except (json.JSONDecodeError, RecursionError):
+            except (ValueError, RecursionError):
                 pass  # an array longer than that (or a broken one): a batch
             else:
                 batch = _WS.match(buf, end).end() >= len(buf)
@@ -169,9 +170,11 @@ def iter_json_values(
                 break
             try:
                 value, end = decoder.raw_decode(buf, pos)
-            except (json.JSONDecodeError, RecursionError) as err:
+            except (ValueError, RecursionError) as err:  # (JSONDecodeError is a ValueError)
                 if isinstance(err, RecursionError):
                     incomplete, msg = False, "nested too deeply"
+                elif not isinstance(err, json.JSONDecodeError):  # int() refuses over 4300 digits
+                    incomplete, msg = False, f"a number too long to read ({str(err).split(':')[0]})"
                 else:
                     # the value may only look bad because the buffer ends inside it: nothing
                     # but white space after the error, a string not closed, or one token
@@ -291,7 +294,8 @@ class CloudEventsParser:
                     out.bad(line, "invalid time", str(when)[:60])
                     continue
             sess = obj.get(key)
-            if isinstance(sess, bool) or not isinstance(sess, (str, int, float)) or sess == "":
+            if isinstance(sess, bool) or not isinstance(sess, (str, int, float)) or sess == "" or \
+                    (isinstance(sess, float) and not math.isfinite(sess)):  # (1e999 reads as infinity)
                 out.bad(line, missing_key)
                 continue
             out.add(sess if isinstance(sess, str) else json.dumps(sess), obj["type"], t, line)

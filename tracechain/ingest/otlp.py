@@ -48,6 +48,7 @@ from __future__ import annotations
 import base64
 import binascii
 import json
+import math
 import re
 from collections.abc import Iterator
 from typing import Any
@@ -62,6 +63,7 @@ from .sources import Source
 __all__ = ["OtlpJsonParser"]
 
 _HEX32 = re.compile(r"[0-9a-fA-F]{32}")
+_NANOS = re.compile(r"[0-9]{1,20}")
 _KINDS = {"unspecified": 0, "internal": 1, "server": 2, "client": 3, "producer": 4, "consumer": 5}
 _ERROR = 2
 
@@ -145,14 +147,16 @@ def _attribute(attrs: Any, key: str) -> str | None:
 
 
 def _start_ns(value: Any) -> int | None:
+    """Nanoseconds since the epoch (a fixed64 in the protocol: at most 20 decimal digits)."""
     if isinstance(value, bool):
         return None
     if isinstance(value, int):
-        return value
-    if isinstance(value, float) and value == value:
-        return int(value)
-    if isinstance(value, str) and value.isdigit():
-        return int(value)
+        return value if 0 <= value < 1 << 64 else None
+    if isinstance(value, float) and math.isfinite(value):
+        return int(value) if 0 <= value < 2.0**64 else None
+    if isinstance(value, str) and _NANOS.fullmatch(value):  # ASCII digits: "²".isdigit() is true too
+        ns = int(value)
+        return ns if ns < 1 << 64 else None
     return None
 
 

@@ -221,3 +221,28 @@ def test_cloudevents_numbers_that_are_no_key(tmp_path):
     rows, report = read("cloudevents", path)
     assert rows == [("ok", "a", 3)]
     assert dict(report.skipped) == {"invalid JSON": 1, "missing subject": 1}
+
+
+@pytest.mark.parametrize("pattern", ["a{99999999999}", "(" * 1200 + "x" + ")" * 1200])
+def test_regular_expressions_python_cannot_compile_are_config_errors(pattern, tmp_path):
+    """re.compile raises OverflowError for a repetition count over 2**32 - 1 and RecursionError
+    for groups nested ~1000 deep, not re.error: both used to escape as tracebacks."""
+    with pytest.raises(ConfigError, match="<mapping>:2: regular expression"):
+        parse_mapping(f"rules:\n  - regex: '{pattern}'\n    state: x\n")
+    with pytest.raises(ConfigError, match="parser pattern is not a valid"):
+        parse_mapping(f"parser:\n  pattern: '(?P<session>{pattern})(?P<event>b)'\n")
+    from tracechain.errors import UsageError
+
+    log = tmp_path / "app.log"
+    log.write_text("a b\n")
+    with pytest.raises(UsageError, match="not a valid regular expression"):
+        read("regex", log, pattern=f"(?P<session>{pattern}) (?P<event>b)")
+    with pytest.raises(UsageError, match="not a valid regular expression"):
+        read("access", log, exclude_agent=pattern)
+
+
+def test_a_set_is_no_list_of_states():
+    """``allow: !!set {a, b}`` became one state named after the set's repr (its keys and the
+    loader's line marks); a set is not a list of names."""
+    with pytest.raises(ConfigError, match="allow"):
+        parse_rules("rules:\n  - kind: dead-end\n    allow: !!set {a, b}\n")

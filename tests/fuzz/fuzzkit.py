@@ -818,7 +818,9 @@ def _yaml_mutation(text: bytes, rng: random.Random) -> bytes:
         piece = rng.choice((b"&a [*a]", b"*nowhere", b"!!python/object:os.system x", b"!!binary AAAA", b"{{{{",
                             b"[" * 2000 + b"]" * 2000, b"- " * 500 + b"x", b"<<: *a", b"? [a, b]\n: c",
                             b"%YAML 1.1\n---", b"--- |\n  x", b"a: !!int 0x1F", b"a: 1e999",
-                            b"a: " + b"9" * 5000, b"\t- tab", b"a: b: c", b"..."))
+                            b"a: " + b"9" * 5000, b"\t- tab", b"a: b: c", b"...",
+                            b"  - regex: 'a{99999999999}'\n    state: x", b"  - regex: '" + b"(" * 1200 + b")" * 1200 + b"'",
+                            b"  - kind: dead-end\n    allow: !!set {a, b}", b"  pattern: '(?P<session>a{4294967296})'"))
         return _line_at(text, rng, piece)
     return mutate(text, rng, k=1)[0] if r < 0.9 else MUTATIONS[rng.choice(sorted(MUTATIONS))](text, rng)
 

@@ -114,7 +114,7 @@ def user_keys(d: dict) -> list:
 
 def _name_of(value: Any, raw: str | None) -> str | None:
     """A state name from a YAML value: the source text for scalars, None for containers."""
-    if isinstance(value, (dict, list)):
+    if isinstance(value, (dict, list, set, frozenset)):  # (a !!set is a set, of its keys and line marks)
         return None
     if raw is not None:
         return raw

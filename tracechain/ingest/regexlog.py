@@ -211,7 +211,7 @@ def _compile(extra: dict[str, Any]) -> re.Pattern:
                          "'session', 'event' and optionally 'time'")
     try:
         rx = re.compile(pattern)
-    except re.error as err:
+    except (re.error, OverflowError, RecursionError) as err:  # (a{99999999999}; deep nesting)
         raise UsageError(f"the regex pattern is not a valid regular expression: {err}") from err
     missing = [g for g in ("session", "event") if g not in rx.groupindex]
     if missing:

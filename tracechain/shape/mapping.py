@@ -43,6 +43,10 @@ from ..errors import ConfigError
 
 __all__ = ["Mapping", "Rule", "load_mapping", "parse_mapping"]
 
+#: What compiling a user's regular expression raises: re.error for bad syntax, OverflowError
+#: for a repetition count beyond 2**32 - 1 (``a{99999999999}``), RecursionError for groups
+#: nested about a thousand deep.
+_REGEX_ERRORS = (re.error, OverflowError, RecursionError)
 _PLACEHOLDER = re.compile(r"\{(\w+)(\*?)\}")
 _STATE_REF = re.compile(r"\{(\w+)\}")
 
@@ -351,7 +355,7 @@ def _parser_section(value: Any, source: str | None, line: int) -> dict[str, str]
     out = {k: _text(value[k], f"parser {k!r}", source, value["__keys__"].get(k, line)) for k in keys}
     try:
         rx = re.compile(out["pattern"])
-    except re.error as err:
+    except _REGEX_ERRORS as err:
         raise ConfigError(f"parser pattern is not a valid regular expression: {err}", source, line) from err
     missing = {"session", "event"} - set(rx.groupindex)
     if missing:
@@ -385,7 +389,7 @@ def _rule(item: Any, source: str | None, line: int | None = None) -> Rule:
     if kind == "regex":
         try:
             pattern = re.compile(pattern_text)
-        except re.error as err:
+        except _REGEX_ERRORS as err:
             raise ConfigError(f"regular expression {pattern_text!r} is not valid: {err}", source, line) from err
     else:
         pattern = _template_regex(pattern_text, line, source)

@@ -246,3 +246,11 @@ def test_a_set_is_no_list_of_states():
     loader's line marks); a set is not a list of names."""
     with pytest.raises(ConfigError, match="allow"):
         parse_rules("rules:\n  - kind: dead-end\n    allow: !!set {a, b}\n")
+
+
+@pytest.mark.parametrize("fmt", ["cloudevents", "otlp"])
+def test_sniff_survives_deep_nesting(fmt):
+    """The sniffers decoded the first JSON value unguarded: a deep one raised RecursionError,
+    which detection reports as 'parser failed while sniffing' for any file."""
+    for head in (b"[" * 5000 + b"]" * 5000 + b"\n" + CE, b'{"a":' * 3000 + b"1" + b"}" * 3000):
+        assert 0.0 <= get_parser(fmt).sniff(head, "x.json") <= 1.0

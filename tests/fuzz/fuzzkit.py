@@ -712,11 +712,39 @@ def fuzz_one(fmt: Format, rng: random.Random, tmpdir: str, blocks=(None, 64)) ->
     if len({repr(r) for _, r in results}) > 1:
         wrong.append(f"{fmt.name} {names}: the result depends on the block size: "
                      + "; ".join(f"block={b}: {repr(r)[:300]}" for b, r in results))
-    # the whole path (errors only)
+    # the format's sniff on the damaged head (detection turns a failing sniff into a
+    # PluginError, which would hide the bug), then the whole path (errors only)
+    bugs += sniff_all(path, only=fmt.name)
     out = run_counts(fmt.name, path, dict(case.extra))
     if out.bug:
         bugs.append(f"count_sources(format={fmt.name}) {names}: {out.bug}")
     return bugs, wrong
+
+
+def sniff_all(path: str, only: str | None = None) -> list[str]:
+    """Tracebacks of the built-in parsers' ``sniff`` (or only the one named) on the first bytes
+    of ``path`` (none expected)."""
+    from tracechain.errors import TracechainError
+    from tracechain.ingest.registry import available_parsers
+    from tracechain.ingest.sources import Source, peek
+
+    try:
+        head = peek(Source(os.path.basename(path), path))
+    except TracechainError:
+        return []
+    except Exception:
+        return [f"peek: {traceback.format_exc(limit=8)}"]
+    out = []
+    for name, parser in available_parsers().items():
+        if only is not None and name != only:
+            continue
+        try:
+            score = float(parser.sniff(head, os.path.basename(path)))
+            if not 0.0 <= score <= 1.0:
+                out.append(f"sniff of {name}: confidence {score} outside [0, 1]")
+        except Exception:
+            out.append(f"sniff of {name}: {traceback.format_exc(limit=8)}")
+    return out
 
 
 def detected(path: str) -> tuple[str | None, str | None]:

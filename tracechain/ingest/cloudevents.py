@@ -228,7 +228,7 @@ def _first_value_keys(head: bytes) -> set[str] | None:
         text = text[1:].lstrip()
     try:
         value, _ = json.JSONDecoder().raw_decode(text)
-    except ValueError:
+    except (ValueError, RecursionError):  # (nested too deeply; numbers of over 4300 digits)
         return None
     return set(value) if isinstance(value, dict) else set()
 

@@ -712,9 +712,25 @@ def fuzz_one(fmt: Format, rng: random.Random, tmpdir: str, blocks=(None, 64)) ->
     if len({repr(r) for _, r in results}) > 1:
         wrong.append(f"{fmt.name} {names}: the result depends on the block size: "
                      + "; ".join(f"block={b}: {repr(r)[:300]}" for b, r in results))
+    if results and not any(n in ("gzip", "bz2", "xz") for n in names):
+        # the same damaged bytes compressed must read the same (as the first block size did)
+        how = rng.choice(("gzip", "bz2", "xz"))
+        zpath = _write(tmpdir, case.name + "." + how, compress(data, how))
+        extra = dict(case.extra)
+        if results[0][0] is not None and fmt.block_key:
+            extra[fmt.block_key] = results[0][0]
+        out = run_reader(fmt.name, zpath, extra)
+        if out.bug:
+            bugs.append(f"{fmt.name} {names} + {how}: {out.bug}")
+        elif repr(out.result()) != repr(results[0][1]):
+            wrong.append(f"{fmt.name} {names}: compressed with {how} it reads differently: "
+                         f"{repr(out.result())[:300]}; plain: {repr(results[0][1])[:300]}")
     # the format's sniff on the damaged head (detection turns a failing sniff into a
     # PluginError, which would hide the bug), then the whole path (errors only)
     bugs += sniff_all(path, only=fmt.name)
+    out = run_reader(fmt.name, path, dict(case.extra), strict=True)  # strict mode: the first problem raises
+    if out.bug:
+        bugs.append(f"{fmt.name} {names} strict: {out.bug}")
     out = run_counts(fmt.name, path, dict(case.extra))
     if out.bug:
         bugs.append(f"count_sources(format={fmt.name}) {names}: {out.bug}")

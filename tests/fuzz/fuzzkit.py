@@ -394,9 +394,10 @@ _REGEX = r"^(?P<time>\S+) job=(?P<session>\S+) state=(?P<event>\w+)"
 
 
 def gen_regex(rng: random.Random) -> Case:
-    """A line log read with a pattern of named groups (tracechain's README): a line is an
-    event when the pattern matches with non-empty groups and the time reads with the
-    format (here ``%Y-%m-%dT%H:%M:%S``, Python's strptime)."""
+    """A line log read with a pattern of named groups declared in a mapping file's
+    ``parser:`` section (tracechain's README): a line is an event when the pattern matches
+    with non-empty groups and the time reads with the format (here ``%Y-%m-%dT%H:%M:%S``,
+    Python's strptime)."""
     out: list[bytes] = []
     events = []
     junk = (b"", b"no match here", b"2024-13-01T00:00:00 job=j1 state=run", b"\xff\xfe job", b"  ",
@@ -411,8 +412,11 @@ def gen_regex(rng: random.Random) -> Case:
         tail = rng.choice(("", " extra=1", " msg=\"a b\""))
         out.append(f"{when} job={job} state={st}{tail}".encode())
         events.append((job, st, ln))
-    return Case(b"\n".join(out) + b"\n",
-                {"pattern": _REGEX, "time_format": "%Y-%m-%dT%H:%M:%S"}, sorted(events), name="app.log")
+    # the settings come from a mapping file's parser section, as on the command line
+    from tracechain.shape.mapping import parse_mapping
+
+    mapping = parse_mapping(f"parser:\n  pattern: {_yq(_REGEX)}\n  time_format: '%Y-%m-%dT%H:%M:%S'\n", "mapping.yaml")
+    return Case(b"\n".join(out) + b"\n", dict(mapping.parser), sorted(events), name="app.log")
 
 
 def gen_parquet(rng: random.Random) -> Case:

@@ -254,3 +254,16 @@ def test_sniff_survives_deep_nesting(fmt):
     which detection reports as 'parser failed while sniffing' for any file."""
     for head in (b"[" * 5000 + b"]" * 5000 + b"\n" + CE, b'{"a":' * 3000 + b"1" + b"}" * 3000):
         assert 0.0 <= get_parser(fmt).sniff(head, "x.json") <= 1.0
+
+
+@pytest.mark.parametrize("text", [
+    "input:\n  order: {n}\nrules:\n  - kind: trap\n",
+    "input:\n  gap: {n}\nrules:\n  - kind: trap\n",
+    "rules:\n  - kind: steps-ceiling\n    max: {n}\n",
+    "rules:\n  - kind: conversion-floor\n    min: {n}\n",
+])
+def test_integers_beyond_a_float_are_config_errors(text):
+    """A 400-digit integer (under Python's 4300-digit limit) overflowed math.isfinite/float()
+    with OverflowError while its value was checked."""
+    with pytest.raises(ConfigError):
+        parse_rules("version: 1\ngoals: [a]\n" + text.format(n="9" * 400))

@@ -27,6 +27,7 @@
 
 from __future__ import annotations
 
+import math
 import os
 import re
 from dataclasses import dataclass, field
@@ -115,7 +116,9 @@ def _duration(value: Any, raw: str | None) -> float | None:
     if isinstance(value, bool):
         return None
     if isinstance(value, (int, float)):
-        return float(value) if value > 0 else None
+        if isinstance(value, int) and value >= 2**63:  # (float() overflows on a 400-digit int)
+            return None
+        return float(value) if value > 0 and math.isfinite(value) else None
     import argparse
 
     from ..cli import parse_duration  # lazily: the command line imports this package

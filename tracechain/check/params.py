@@ -186,8 +186,10 @@ class Params:
                 raise self.error(f"needs '{key}: NUMBER'", None)
             return default
         v = self.data[key]
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or (isinstance(v, float) and not math.isfinite(v)):
             raise self.error(f"'{key}' must be a number, not {self._raw(key) or v!r}", key)
+        if isinstance(v, int) and not -(2**63) < v < 2**63:  # (math.isfinite and float() overflow on such ints)
+            raise self.error(f"'{key}' is too large: {str(self._raw(key) or v)[:30]}...", key)
         if integer and v != int(v):
             raise self.error(f"'{key}' must be a whole number, not {v!r}", key)
         if minimum is not None and v < minimum:
@@ -241,8 +243,10 @@ class Params:
 def parse_share(v: Any) -> float | None:
     if isinstance(v, bool):
         return None
-    if isinstance(v, (int, float)):
-        return float(v) if math.isfinite(v) else None
+    if isinstance(v, int):
+        return float(v) if abs(v) < 2**63 else None  # (math.isfinite overflows on a 400-digit int)
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
     if isinstance(v, str):
         t = v.strip()
         try:

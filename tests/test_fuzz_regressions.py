@@ -9,7 +9,6 @@ read the same whatever the size of the reads.
 from __future__ import annotations
 
 import gzip
-import json
 import lzma
 
 import pytest

@@ -27,11 +27,13 @@
 
 from __future__ import annotations
 
+import math
 import os
 import re
 from dataclasses import dataclass, field
 from typing import Any
 
+from .._yamlsafe import decode_config
 from ..errors import ConfigError
 from .findings import SEVERITIES
 from .params import Params, load_yaml, states_list, user_keys
@@ -103,20 +105,20 @@ class RulesFile:
 def load_rules(path: str) -> RulesFile:
     """Read a rules file; paths in it are relative to its folder."""
     try:
-        with open(path, encoding="utf-8") as f:
-            text = f.read()
+        with open(path, "rb") as f:
+            data = f.read()
     except OSError as err:
-        raise ConfigError(f"cannot read rules file: {err.strerror}", path) from err
-    except UnicodeDecodeError as err:
-        raise ConfigError(f"the rules file is not UTF-8 text: {err.reason}", path) from err
-    return parse_rules(text, path, os.path.dirname(path))
+        raise ConfigError(f"cannot read rules file: {err.strerror or err}", path) from err
+    return parse_rules(decode_config(data, path, "rules file"), path, os.path.dirname(path))
 
 
 def _duration(value: Any, raw: str | None) -> float | None:
     if isinstance(value, bool):
         return None
     if isinstance(value, (int, float)):
-        return float(value) if value > 0 else None
+        if isinstance(value, int) and value >= 2**63:  # (float() overflows on a 400-digit int)
+            return None
+        return float(value) if value > 0 and math.isfinite(value) else None
     import argparse
 
     from ..cli import parse_duration  # lazily: the command line imports this package

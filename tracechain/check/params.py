@@ -18,6 +18,7 @@ from typing import Any
 
 import yaml
 
+from .._yamlsafe import check_depth
 from ..errors import ConfigError
 
 __all__ = ["LineLoader", "LineList", "META_KEYS", "load_yaml", "Params"]
@@ -78,10 +79,24 @@ def _construct_seq(loader: LineLoader, node):
 LineLoader.add_constructor("tag:yaml.org,2002:seq", _construct_seq)
 
 
+def _construct_int(loader: LineLoader, node):
+    try:
+        return yaml.SafeLoader.construct_yaml_int(loader, node)
+    except ValueError as err:  # more digits than Python converts (4300 by default)
+        raise yaml.constructor.ConstructorError(None, None, f"the number {node.value[:20]}... is too long ({err})",
+                                                node.start_mark) from None
+
+
+LineLoader.add_constructor("tag:yaml.org,2002:int", _construct_int)
+
+
 def load_yaml(text: str, source: str | None) -> Any:
     """Parse YAML text with :class:`LineLoader`; syntax errors become ConfigError with the line."""
+    check_depth(text, source)
     try:
         return yaml.load(text, Loader=LineLoader)  # noqa: S506 - a SafeLoader subclass
+    except RecursionError:  # (check_depth bounds the nesting; this is a last resort)
+        raise ConfigError("not valid YAML: nested too deeply", source) from None
     except yaml.MarkedYAMLError as err:
         mark = err.problem_mark or err.context_mark
         line = mark.line + 1 if mark is not None else None
@@ -99,7 +114,7 @@ def user_keys(d: dict) -> list:
 
 def _name_of(value: Any, raw: str | None) -> str | None:
     """A state name from a YAML value: the source text for scalars, None for containers."""
-    if isinstance(value, (dict, list)):
+    if isinstance(value, (dict, list, set, frozenset)):  # (a !!set is a set, of its keys and line marks)
         return None
     if raw is not None:
         return raw
@@ -171,8 +186,10 @@ class Params:
                 raise self.error(f"needs '{key}: NUMBER'", None)
             return default
         v = self.data[key]
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or (isinstance(v, float) and not math.isfinite(v)):
             raise self.error(f"'{key}' must be a number, not {self._raw(key) or v!r}", key)
+        if isinstance(v, int) and not -(2**63) < v < 2**63:  # (math.isfinite and float() overflow on such ints)
+            raise self.error(f"'{key}' is too large: {str(self._raw(key) or v)[:30]}...", key)
         if integer and v != int(v):
             raise self.error(f"'{key}' must be a whole number, not {v!r}", key)
         if minimum is not None and v < minimum:
@@ -226,8 +243,10 @@ class Params:
 def parse_share(v: Any) -> float | None:
     if isinstance(v, bool):
         return None
-    if isinstance(v, (int, float)):
-        return float(v) if math.isfinite(v) else None
+    if isinstance(v, int):
+        return float(v) if abs(v) < 2**63 else None  # (math.isfinite overflows on a 400-digit int)
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
     if isinstance(v, str):
         t = v.strip()
         try:

@@ -164,7 +164,7 @@ class HttpOptions:
         if rx:
             try:
                 pattern = re.compile(str(rx))
-            except re.error as err:
+            except (re.error, OverflowError, RecursionError) as err:  # (a{99999999999}; deep nesting)
                 raise UsageError(f"exclude_agent is not a valid regular expression: {err}") from err
         return cls(frozenset(classes), frozenset(codes), methods, pattern, bool(extra.get("method_prefix", False)))
 

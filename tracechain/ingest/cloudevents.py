@@ -31,6 +31,8 @@ Settings (``ReadOptions.extra``):
 ``session_extension`` (str, optional)
     Name of the extension attribute that holds the session key (lower-case letters
     and digits), instead of ``subject``.
+``block_bytes`` (int, optional)
+    Bytes read from the file at a time (tests use small reads).
 
 :func:`iter_json_values` (the stream reader) is shared with the OTLP/JSON parser.
 """
@@ -39,6 +41,7 @@ from __future__ import annotations
 
 import codecs
 import json
+import math
 import re
 from collections.abc import Iterator
 from typing import Any
@@ -49,18 +52,22 @@ from ..errors import IngestError, UsageError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .regexlog import CHUNK_EVENTS, Collector, rfc3339_seconds
-from .sources import Source, open_binary
+from .sources import DECOMPRESS_ERRORS, Source, open_binary
 
 __all__ = ["CloudEventsParser", "iter_json_values", "JsonProblem"]
 
 #: Bytes read from the file at a time.
 READ_BYTES = 1 << 20
+#: Characters looked at to tell a batch array from values one after another.
+LAYOUT_CHARS = 1 << 20
 #: Largest single JSON value (decoded characters) the stream reader will hold.
 MAX_VALUE = 256 << 20
 
 _WS = re.compile(r"[ \t\n\r]*")
 _SEP = re.compile(r"[ \t\n\r,]*")
 _EXT_NAME = re.compile(r"[a-z0-9]+")
+#: text after a decoding error that may be the start of a token cut off by the end of the buffer
+_PARTIAL_TOKEN = re.compile(r'[^ \t\n\r,:\[\]{}"]*')
 _CORE = ("id", "source", "specversion", "type", "datacontenttype", "dataschema", "subject", "time",
          "data", "data_base64")
 
@@ -73,15 +80,25 @@ class JsonProblem:
         self.detail = detail
 
 
-def iter_json_values(source: Source, report: ParseReport | None = None) -> Iterator[tuple[int, Any]]:
+def iter_json_values(
+    source: Source, report: ParseReport | None = None, read_bytes: int | None = None, batches: bool = True,
+) -> Iterator[tuple[int, Any]]:
     """Yield ``(line, value)`` for each top-level JSON value of ``source``.
 
     A file whose first character is ``[`` is a batch: its elements are yielded one by
     one. Otherwise values follow one another, separated by white space (JSON Lines is
-    the common case; a single pretty-printed object works too). An unreadable value
-    yields ``(line, JsonProblem)`` and reading goes on at the next line. ``line`` is the
-    line where the value starts. ``report.lines_read`` counts the values looked at.
+    the common case; a single pretty-printed object works too). A batch is one array with
+    nothing after it: a file that starts with an array (a JSON Lines file whose first line
+    is one) followed by more values, all within its first :data:`LAYOUT_CHARS` characters,
+    is values one after another. With ``batches=False`` no file is read as a batch.
+
+    An unreadable value yields ``(line, JsonProblem)`` and reading goes on at the next
+    line. ``line`` is the line where the value starts. ``report.lines_read`` counts the values looked at.
+    A value nested deeper than Python's JSON decoder can follow (about a thousand
+    levels), or holding an integer of more digits than Python converts (4300), is an
+    unreadable value (``"invalid JSON"``), like any other. ``read_bytes`` is the size of each read from the file (tests use small ones).
     """
+    step = read_bytes or READ_BYTES
     decoder = json.JSONDecoder()
     text_decoder = codecs.getincrementaldecoder("utf-8")(errors="replace")
     with open_binary(source) as f:
@@ -94,8 +111,8 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
         def more() -> None:
             nonlocal buf, pos, eof, mark, mark_line
             try:
-                data = f.read(max(READ_BYTES, len(buf) - pos))  # grows for a long value
-            except (OSError, EOFError) as err:
+                data = f.read(max(step, len(buf) - pos))  # grows for a long value
+            except DECOMPRESS_ERRORS as err:
                 raise IngestError(f"cannot decompress: {err}", source.name) from err
             text = text_decoder.decode(data, final=not data)
             if not data:
@@ -120,7 +137,17 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
             if pos < len(buf) or eof:
                 break
             more()
-        batch = pos < len(buf) and buf[pos] == "["
+        batch = batches and pos < len(buf) and buf[pos] == "["
+        if batch:
+            # decided on the first LAYOUT_CHARS characters, however much a read brings
+            while not eof and len(buf) - pos < LAYOUT_CHARS:
+                more()
+            try:
+                _, end = decoder.raw_decode(buf, pos)
+            except (ValueError, RecursionError):
+                pass  # an array longer than that (or a broken one): a batch
+            else:
+                batch = _WS.match(buf, end).end() >= len(buf)
         if batch:
             pos += 1
         ended = False
@@ -143,16 +170,27 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
                 break
             try:
                 value, end = decoder.raw_decode(buf, pos)
-            except json.JSONDecodeError as err:
-                rest = buf[err.pos:]
-                incomplete = not rest.strip() or err.msg.startswith("Unterminated string")
+            except (ValueError, RecursionError) as err:  # (JSONDecodeError is a ValueError)
+                if isinstance(err, RecursionError):
+                    incomplete, msg = False, "nested too deeply"
+                elif not isinstance(err, json.JSONDecodeError):  # int() refuses over 4300 digits
+                    incomplete, msg = False, f"a number too long to read ({str(err).split(':')[0]})"
+                else:
+                    # the value may only look bad because the buffer ends inside it: nothing
+                    # but white space after the error, a string not closed, or one token
+                    # running to the end of the buffer (``tr`` of ``true``, half a number, a
+                    # cut ``\\u00`` escape)
+                    rest = buf[err.pos:]
+                    incomplete = (not rest.strip() or err.msg.startswith("Unterminated string")
+                                  or _PARTIAL_TOKEN.fullmatch(rest) is not None)
+                    msg = err.msg
                 if incomplete and not eof and len(buf) - pos < MAX_VALUE:
                     more()
                     continue
                 line = line_at(pos)
                 if report is not None:
                     report.lines_read += 1
-                detail = err.msg
+                detail = msg
                 if incomplete and not eof:
                     detail = f"no complete JSON value within {MAX_VALUE >> 20} MiB"
                 yield line, JsonProblem("invalid JSON", detail)
@@ -178,6 +216,11 @@ def iter_json_values(source: Source, report: ParseReport | None = None) -> Itera
             yield line_at(min(pos, len(buf))), JsonProblem("invalid JSON", "the batch array is not closed")
 
 
+def _block(extra: dict) -> int | None:
+    value = extra.get("block_bytes")
+    return None if value is None else int(value)
+
+
 def _first_value_keys(head: bytes) -> set[str] | None:
     """Top-level keys of the first JSON object in ``head`` (None if it cannot be read)."""
     text = head.decode("utf-8", errors="replace").lstrip("\ufeff \t\r\n")
@@ -185,7 +228,7 @@ def _first_value_keys(head: bytes) -> set[str] | None:
         text = text[1:].lstrip()
     try:
         value, _ = json.JSONDecoder().raw_decode(text)
-    except ValueError:
+    except (ValueError, RecursionError):  # (nested too deeply; numbers of over 4300 digits)
         return None
     return set(value) if isinstance(value, dict) else set()
 
@@ -218,7 +261,7 @@ class CloudEventsParser:
         missing_key = f"missing extension {ext!r}" if ext else "missing subject"
         report.fields.update({"session": key, "time": "time", "event": "type"})
         out = Collector(source.name, report, options.strict)
-        for line, obj in iter_json_values(source, report):
+        for line, obj in iter_json_values(source, report, _block(options.extra)):
             if isinstance(obj, JsonProblem):
                 out.bad(line, obj.reason, obj.detail)
                 continue
@@ -251,7 +294,8 @@ class CloudEventsParser:
                     out.bad(line, "invalid time", str(when)[:60])
                     continue
             sess = obj.get(key)
-            if isinstance(sess, bool) or not isinstance(sess, (str, int, float)) or sess == "":
+            if isinstance(sess, bool) or not isinstance(sess, (str, int, float)) or sess == "" or \
+                    (isinstance(sess, float) and not math.isfinite(sess)):  # (1e999 reads as infinity)
                 out.bad(line, missing_key)
                 continue
             out.add(sess if isinstance(sess, str) else json.dumps(sess), obj["type"], t, line)

@@ -3,7 +3,8 @@
 The collector's file exporter writes one ``TracesData`` object per line:
 ``resourceSpans[] → scopeSpans[] → spans[]`` (files from before the rename use
 ``instrumentationLibrarySpans``). A single pretty-printed object, or several objects
-one after another, are read too (see :func:`tracechain.ingest.cloudevents.iter_json_values`).
+one after another, are read too (see :func:`tracechain.ingest.cloudevents.iter_json_values`);
+OTLP has no batch array, so a line holding an array is "not a JSON object", like any other.
 
 Per span: ``traceId`` is 32 hexadecimal digits (16 bytes); writers that used the
 default protobuf JSON mapping write base64 instead, which is decoded to the same hex
@@ -38,6 +39,8 @@ Settings (``ReadOptions.extra``):
 ``span_kinds`` (str or list, optional)
     Keep only spans of these kinds: names (``server``, ``client``, ``internal``,
     ``producer``, ``consumer``, ``unspecified``) or numbers 0-5.
+``block_bytes`` (int, optional)
+    Bytes read from the file at a time (tests use small reads).
 """
 
 from __future__ import annotations
@@ -45,6 +48,7 @@ from __future__ import annotations
 import base64
 import binascii
 import json
+import math
 import re
 from collections.abc import Iterator
 from typing import Any
@@ -52,13 +56,14 @@ from typing import Any
 from ..errors import UsageError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
-from .cloudevents import JsonProblem, _first_value_keys, iter_json_values
+from .cloudevents import JsonProblem, _block, _first_value_keys, iter_json_values
 from .regexlog import CHUNK_EVENTS, Collector, list_option
 from .sources import Source
 
 __all__ = ["OtlpJsonParser"]
 
 _HEX32 = re.compile(r"[0-9a-fA-F]{32}")
+_NANOS = re.compile(r"[0-9]{1,20}")
 _KINDS = {"unspecified": 0, "internal": 1, "server": 2, "client": 3, "producer": 4, "consumer": 5}
 _ERROR = 2
 
@@ -142,14 +147,16 @@ def _attribute(attrs: Any, key: str) -> str | None:
 
 
 def _start_ns(value: Any) -> int | None:
+    """Nanoseconds since the epoch (a fixed64 in the protocol: at most 20 decimal digits)."""
     if isinstance(value, bool):
         return None
     if isinstance(value, int):
-        return value
-    if isinstance(value, float) and value == value:
-        return int(value)
-    if isinstance(value, str) and value.isdigit():
-        return int(value)
+        return value if 0 <= value < 1 << 64 else None
+    if isinstance(value, float) and math.isfinite(value):
+        return int(value) if 0 <= value < 2.0**64 else None
+    if isinstance(value, str) and _NANOS.fullmatch(value):  # ASCII digits: "²".isdigit() is true too
+        ns = int(value)
+        return ns if ns < 1 << 64 else None
     return None
 
 
@@ -186,7 +193,7 @@ class OtlpJsonParser:
         report.fields.update({"session": "traceId", "time": "startTimeUnixNano", "event": attr or "name"})
         out = Collector(source.name, report, options.strict)
         fallback = 0
-        for line, obj in iter_json_values(source, report):
+        for line, obj in iter_json_values(source, report, _block(extra), batches=False):
             if isinstance(obj, JsonProblem):
                 out.bad(line, obj.reason, obj.detail)
                 continue

@@ -97,10 +97,20 @@ class Collector:
     def flush(self) -> EventChunk | None:
         if not self.session:
             return None
-        chunk = EventChunk.from_lists(self.source, self.session, self.event, self.time, self.line)
+        try:
+            chunk = EventChunk.from_lists(self.source, self.session, self.event, self.time, self.line)
+        except UnicodeEncodeError:
+            # a lone surrogate escaped in JSON ("\ud800") is no UTF-8 text: shown as "?", as the
+            # JSON Lines reader does
+            self.session, self.event = _utf8(self.session), _utf8(self.event)
+            chunk = EventChunk.from_lists(self.source, self.session, self.event, self.time, self.line)
         self.report.events += len(chunk)
         self.session, self.event, self.time, self.line = [], [], [], []
         return chunk
+
+
+def _utf8(texts: list[str]) -> list[str]:
+    return [t.encode("utf-8", "replace").decode("utf-8") for t in texts]
 
 
 def report_problems(
@@ -201,7 +211,7 @@ def _compile(extra: dict[str, Any]) -> re.Pattern:
                          "'session', 'event' and optionally 'time'")
     try:
         rx = re.compile(pattern)
-    except re.error as err:
+    except (re.error, OverflowError, RecursionError) as err:  # (a{99999999999}; deep nesting)
         raise UsageError(f"the regex pattern is not a valid regular expression: {err}") from err
     missing = [g for g in ("session", "event") if g not in rx.groupindex]
     if missing:

@@ -25,6 +25,7 @@ import shutil
 import sys
 import tempfile
 import threading
+import zlib
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from typing import BinaryIO, TypeVar
@@ -34,6 +35,11 @@ import numpy as np
 from ..errors import IngestError, UsageError
 
 __all__ = ["Source", "expand_sources", "open_binary", "iter_line_blocks", "peek", "read_ahead", "quick_thread_switches"]
+
+#: What a damaged compressed stream raises while it is read (gzip: ``zlib.error``,
+#: ``EOFError`` for a cut-off stream, ``OSError`` (``BadGzipFile``) for a bad header or
+#: CRC; xz: ``LZMAError``; bz2: ``OSError``); readers turn them into an IngestError.
+DECOMPRESS_ERRORS = (OSError, EOFError, lzma.LZMAError, zlib.error)
 
 #: Bytes read per block; blocks end on a line boundary.
 BLOCK_BYTES = 1 << 24
@@ -282,7 +288,7 @@ def peek(source: Source, nbytes: int = 65536) -> bytes:
     with _open(source, None) as f:
         try:
             return f.read(nbytes)
-        except (OSError, EOFError, lzma.LZMAError) as err:
+        except DECOMPRESS_ERRORS as err:
             raise IngestError(f"cannot decompress: {err}", source.name) from err
 
 
@@ -403,7 +409,7 @@ def iter_line_blocks_counted(
             buf[: len(rest)] = rest
             try:
                 got = _read_into(f, memoryview(buf)[len(rest):])
-            except (OSError, EOFError, lzma.LZMAError) as err:
+            except DECOMPRESS_ERRORS as err:
                 raise IngestError(f"cannot decompress: {err}", source.name, line_no if count else None) from err
             if not got:
                 break

@@ -32,6 +32,8 @@ Settings (``ReadOptions.extra``):
     Keep only events whose ``lifecycle:transition`` is one of these (compared in
     lower case), e.g. ``["complete"]``. Events without the attribute are kept (a log
     without the lifecycle extension records one event per activity instance).
+``block_bytes`` (int, optional)
+    Bytes read from the file at a time (tests use small reads).
 """
 
 from __future__ import annotations
@@ -45,13 +47,21 @@ from ..errors import IngestError, PluginError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .regexlog import Collector, list_option, rfc3339_seconds
-from .sources import Source, open_binary
+from .sources import DECOMPRESS_ERRORS, Source, open_binary
 
 __all__ = ["XesParser"]
 
 READ_BYTES = 1 << 20
 _ATTRS = frozenset(("string", "date", "int", "float", "boolean", "id"))
 _WANTED = frozenset(("concept:name", "time:timestamp", "lifecycle:transition"))
+
+
+def _compressed(f: Any) -> bool:
+    import bz2
+    import gzip
+    import lzma
+
+    return isinstance(f, (gzip.GzipFile, bz2.BZ2File, lzma.LZMAFile))
 
 
 def _local(tag: str) -> str:
@@ -162,6 +172,7 @@ class XesParser:
             raise PluginError("reading XES needs the defusedxml package (pip install defusedxml)") from err
         from xml.etree.ElementTree import ParseError
 
+        read_bytes = int(options.extra.get("block_bytes", READ_BYTES))
         wanted = list_option(options.extra.get("lifecycle"), "lifecycle")
         lifecycle = frozenset(w.lower() for w in wanted) if wanted else None
         report.fields.update({"session": "trace concept:name", "time": "time:timestamp", "event": "concept:name"})
@@ -174,8 +185,8 @@ class XesParser:
             try:
                 while True:
                     try:
-                        data = f.read(READ_BYTES)
-                    except (OSError, EOFError) as err:
+                        data = f.read(read_bytes)
+                    except DECOMPRESS_ERRORS as err:
                         raise IngestError(f"cannot decompress: {err}", source.name, target.line()) from err
                     if not data:
                         parser.close()
@@ -207,6 +218,14 @@ class XesParser:
                     raise IngestError(f"malformed XML: {msg}", source.name, line) from None
                 left = f"; the unfinished trace (line {target.trace_line}) is left out" \
                     if target.trace_attrs is not None else ""
+                # the rest is not parsed, but a compressed file is read to its end: a damaged
+                # stream is an error whether the XML breaks before the damage shows or not
+                # (which depends on how much is read at a time)
+                try:
+                    while _compressed(f) and f.read(read_bytes):
+                        pass
+                except DECOMPRESS_ERRORS as derr:
+                    raise IngestError(f"cannot decompress: {derr}", source.name, line) from derr
                 report.skip(source.name, line, "malformed XML", msg + left)
                 report.lines_read += line
         chunk = out.flush()

@@ -38,10 +38,15 @@ from urllib.parse import urlsplit
 
 import yaml
 
+from .._yamlsafe import check_depth, decode_config
 from ..errors import ConfigError
 
 __all__ = ["Mapping", "Rule", "load_mapping", "parse_mapping"]
 
+#: What compiling a user's regular expression raises: re.error for bad syntax, OverflowError
+#: for a repetition count beyond 2**32 - 1 (``a{99999999999}``), RecursionError for groups
+#: nested about a thousand deep.
+_REGEX_ERRORS = (re.error, OverflowError, RecursionError)
 _PLACEHOLDER = re.compile(r"\{(\w+)(\*?)\}")
 _STATE_REF = re.compile(r"\{(\w+)\}")
 
@@ -248,16 +253,20 @@ class Mapping:
 def load_mapping(path: str) -> Mapping:
     """Read a mapping file; errors name the file and line."""
     try:
-        with open(path, encoding="utf-8") as f:
-            text = f.read()
+        with open(path, "rb") as f:
+            data = f.read()
     except OSError as err:
-        raise ConfigError(f"cannot read mapping file: {err.strerror}", path) from err
-    return parse_mapping(text, path)
+        raise ConfigError(f"cannot read mapping file: {err.strerror or err}", path) from err
+    return parse_mapping(decode_config(data, path, "mapping file"), path)
+
 
 
 def parse_mapping(text: str, source: str | None = "<mapping>") -> Mapping:
+    check_depth(text, source)
     try:
         data = yaml.load(text, Loader=_LineLoader)  # noqa: S506 - a SafeLoader subclass
+    except RecursionError:  # (check_depth bounds the nesting; this is a last resort)
+        raise ConfigError("not valid YAML: nested too deeply", source) from None
     except yaml.MarkedYAMLError as err:
         mark = err.problem_mark or err.context_mark
         line = mark.line + 1 if mark is not None else None
@@ -356,7 +365,7 @@ def _parser_section(value: Any, source: str | None, line: int) -> dict[str, str]
     out = {k: _text(value[k], f"parser {k!r}", source, value["__keys__"].get(k, line)) for k in keys}
     try:
         rx = re.compile(out["pattern"])
-    except re.error as err:
+    except _REGEX_ERRORS as err:
         raise ConfigError(f"parser pattern is not a valid regular expression: {err}", source, line) from err
     missing = {"session", "event"} - set(rx.groupindex)
     if missing:
@@ -390,7 +399,7 @@ def _rule(item: Any, source: str | None, line: int | None = None) -> Rule:
     if kind == "regex":
         try:
             pattern = re.compile(pattern_text)
-        except re.error as err:
+        except _REGEX_ERRORS as err:
             raise ConfigError(f"regular expression {pattern_text!r} is not valid: {err}", source, line) from err
     else:
         pattern = _template_regex(pattern_text, line, source)

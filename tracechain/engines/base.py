@@ -57,7 +57,7 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
     q = d.ident
     report = ParseReport()
     report.sources.append(rel.name)
-    report.fields = {"session": s_col, "event": e_col, **({"time": t_col} if t_col else {})}
+    report.fields = {"session": s_col, **({"time": t_col} if t_col else {}), "event": e_col}
     s_sql = runner.text_expr(f"q.{q(s_col)}")
     e_sql = runner.text_expr(f"q.{q(e_col)}")
     if t_col is None:
@@ -87,17 +87,23 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
     else:
         o_sql = "0"
     # the distinct raw names, mapped on the client
-    raw_names = [r[0] for r in runner.run(f"SELECT DISTINCT {e_sql} FROM {rel.sql} q", [])]
-    terminal = shape.cases.terminal if shape.cases is not None else frozenset()
-    fin_names = set(terminal) | set(finished_names or ())
+    # (in order of first appearance, so that states are numbered as the native engine numbers them)
+    raw_rows = runner.run(f"SELECT {e_sql} AS e, MIN({o_sql}) AS o FROM {rel.sql} q GROUP BY {e_sql}", [])
+    raw_rows.sort(key=lambda r: (r[1] is None, r[1] if r[1] is not None else 0, "" if r[0] is None else r[0]))
+    raw_names = [r[0] for r in raw_rows]
+    if finished_names is not None:  # as a finish_session callback: it takes precedence over a case policy
+        fin_names = set(finished_names)
+    else:
+        fin_names = set(shape.cases.terminal) if shape.cases is not None else set()
     nt = S.name_table(raw_names, shape.mapping, shape.goals, fin_names)
     names_sql, params = runner.names_relation(nt)
     collapse = shape.collapse_repeats
     if collapse is None:
         collapse = bool(shape.mapping.collapse_repeats) if shape.mapping is not None else False
     policy = None
-    if shape.cases is not None:
-        policy = (shape.cases.stale_after, shape.cases.as_of)
+    cases = shape.cases if finished_names is None else None
+    if cases is not None:
+        policy = (cases.stale_after, cases.as_of)
     elif finished_names is not None:
         policy = (None, None)
     # a row whose time cannot be read is left out like one without key or name
@@ -108,11 +114,10 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
     rows = runner.run(stmt, params)
     ages = None
     policy_info = None
-    if shape.cases is not None:
+    if cases is not None:
         ages = runner.run(S.open_ages_sql(stmt, shape.order), params) \
             if any(int(r[0]) == S.EK_OPEN for r in rows) else []
-        policy_info = {"as_of": shape.cases.as_of, "stale_after_s": shape.cases.stale_after,
-                       "terminal": sorted(shape.cases.terminal)}
+        policy_info = {"as_of": cases.as_of, "stale_after_s": cases.stale_after, "terminal": sorted(cases.terminal)}
     meta = {"order": shape.order, "goals": sorted(shape.goals), "truncate_at_goal": shape.truncate_at_goal,
             "collapse_repeats": collapse, "inactivity_gap_s": shape.gap, "engine": d.name}
     counts, stats = S.counts_from_rows(rows, nt, shape.order, meta, ages, policy_info)

@@ -176,7 +176,7 @@ def _columns(conn: _Conn, rel_sql: str) -> dict[str, str]:
 
 
 def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, format: str | None = None,
-                order_by: str | None = None, finished_names=None):
+                order_by: str | None = None, finished_names=None, strict: bool = False):
     """Counts of event files read by DuckDB; returns ``(TransitionCounts, ParseReport)``."""
     from ..pipeline import ShapeOptions
 
@@ -188,22 +188,54 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
         raise UsageError("the duckdb engine reads one format per command; these files hold " + ", ".join(sorted(fmts)))
     fmt = fmts.pop()
     listed = "[" + ", ".join(_lit(os.path.abspath(f)) for f in files) + "]"
-    if fmt == "parquet":
-        scan = f"read_parquet({listed}, hive_partitioning = true, union_by_name = true)"
-    elif fmt == "csv":
-        scan = f"read_csv({listed}, header = true, union_by_name = true, ignore_errors = true)"
-    else:
-        scan = f"read_json({listed}, format = 'newline_delimited', union_by_name = true, ignore_errors = true)"
     name = files[0] if len(files) == 1 else f"{files[0]} (+{len(files) - 1} more)"
     conn = _Conn(_connect(), name)
+    fields = fields or FieldSpec()
+    errors = "false" if strict else "true"
     try:
-        rel_sql = f"(SELECT * FROM {scan} WITH ORDINALITY)"
+        if fmt == "parquet":
+            scan = f"read_parquet({listed}, hive_partitioning = true, union_by_name = true)"
+        elif fmt == "csv":
+            scan = (f"read_csv({listed}, header = true, ignore_errors = {errors}, "
+                    "store_rejects = true)")
+        else:
+            # JSON Lines: the three fields are read as text from each object (a line that is no object, or
+            # not JSON, gives a row without them, counted as skipped); the names come from the data
+            auto = f"read_json({listed}, format = 'newline_delimited', ignore_errors = true)"
+            cols = list(_columns(conn, f"(SELECT * FROM {auto})"))
+            if cols == ["json"]:
+                keys = conn.run(f"SELECT DISTINCT unnest(json_keys(json)) FROM (SELECT json FROM "
+                                f"read_ndjson_objects({listed}, ignore_errors = true) LIMIT 20000) z "
+                                "WHERE json_type(json) = 'OBJECT'", [])
+                cols = sorted(k[0] for k in keys)
+            from ..ingest.fields import resolve_fields
+
+            picked = [c for c in resolve_fields(fields, cols, name) if c is not None]
+            if order_by is not None and order_by in cols and order_by not in picked:
+                picked.append(order_by)
+            spec = "{" + ", ".join(f"{_lit(c)}: 'JSON'" for c in picked) + "}"
+            # a value that is an array or object is no name or time (as the native reader says)
+            conv = ", ".join(f"CASE WHEN json_type(j.{S.DUCKDB.ident(c)}) IN ('ARRAY', 'OBJECT') THEN NULL ELSE "
+                             f"json_extract_string(j.{S.DUCKDB.ident(c)}, '$') END AS {S.DUCKDB.ident(c)}"
+                             for c in picked)
+            scan = None
+            rel_sql = (f"(SELECT {conv}, j.ordinality FROM read_json({listed}, format = 'newline_delimited', "
+                       f"ignore_errors = {errors}, columns = {spec}) WITH ORDINALITY j)")
+        if scan is not None:
+            rel_sql = f"(SELECT * FROM {scan} WITH ORDINALITY)"
         cols = _columns(conn, rel_sql)
         cols.pop("ordinality", None)
         rel = Relation(name, rel_sql, cols, file_order="q.ordinality")
-        counts, report = count_relation(_runner(conn, {}), rel, fields or FieldSpec(), shape, order_by,
-                                        finished_names)
+        counts, report = count_relation(_runner(conn, {}), rel, fields, shape, order_by, finished_names)
         report.sources = list(files)
+        if fmt == "csv":
+            report.lines_read += len(files)  # the header lines, as the native reader counts them
+            rej = conn.run("SELECT COUNT(DISTINCT (file_id, line)) FROM reject_errors "
+                           "WHERE scan_id = (SELECT MAX(scan_id) FROM reject_errors)", [])
+            n_rej = int(rej[0][0]) if rej and rej[0][0] else 0
+            if n_rej:
+                report.skipped["malformed CSV row"] += n_rej
+                report.lines_read += n_rej
         return counts, report
     finally:
         conn.con.close()

@@ -230,6 +230,7 @@ def counts_from_rows(rows, nt: NameTable, k: int, meta: dict[str, Any], ages_row
             goal_of_state[c] = True
     index: dict[Any, int] = {}
     labels: list = []
+    label_codes: list = []
 
     def idx(vals) -> int:
         codes = tuple(int(v) for v in vals if v is not None)
@@ -238,6 +239,7 @@ def counts_from_rows(rows, nt: NameTable, k: int, meta: dict[str, Any], ages_row
         if i is None:
             i = index[lab] = len(labels)
             labels.append(lab)
+            label_codes.append(codes)
         return i
 
     stats = {EK_CUT: 0, EK_DROPPED: 0, EK_MISSING: 0, EK_FLIGHT: 0, EK_FINISHED: 0}
@@ -302,6 +304,8 @@ def counts_from_rows(rows, nt: NameTable, k: int, meta: dict[str, Any], ages_row
     meta["session_keys"] = int(keys)
     tc = TransitionCounts(tuple(labels), counts, sv, vec(ends), vec(opened), gap_sum, gap_n,
                           sessions=int(sv.sum()), events=int(events), first_seen={}, meta=meta)
+    # states in the order of their codes (order of first appearance of their names)
+    tc = tc.reindex(tuple(labels[i] for i in sorted(range(nst), key=lambda i: label_codes[i])))
     if policy_info is not None:
         from ..counts import state_label
 

@@ -24,7 +24,7 @@ from .errors import TracechainError, UsageError
 from .ingest.fields import FieldSpec
 from .ingest.registry import available_parsers
 from .ingest.sources import cleanup_spooled
-from .pipeline import ShapeOptions, count_sources
+from .pipeline import ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
 from .report.dot import render_dot, render_image
 from .report.json_report import analysis_document, dumps
 from .report.text import render_text
@@ -96,6 +96,18 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                    help="a progress bar (bytes read) on standard error while reading; by default shown when "
                         "standard error is a terminal, reading takes over a second and --quiet is not given "
                         "(TRACECHAIN_PROGRESS=1 or 0 sets the default)")
+    from .engines import ENGINE_CHOICES, engines_line
+
+    e = p.add_argument_group("engines: where the counting runs", engines_line())
+    e.add_argument("--engine", choices=ENGINE_CHOICES, default="auto",
+                   help="native: tracechain's own reader; duckdb: read, sessionize, map and count inside DuckDB "
+                        "(Parquet, CSV, JSON Lines); auto (default): native for files, the database itself for a "
+                        "sqlite:/// or postgresql:// URL or a DuckDB database file")
+    e.add_argument("--table", metavar="NAME", help="the events table of a database (URL or DuckDB file)")
+    e.add_argument("--query", metavar="SQL", help="a query giving the events of a database (run as a subquery, "
+                                                  "read-only)")
+    e.add_argument("--order-by", metavar="COLUMN",
+                   help="tie-break for events of one session at one time in a table (files keep file order)")
     w = p.add_argument_group("format-specific reading (web logs, traces, XES, CloudEvents, strace)")
     w.add_argument("--status", metavar="LIST", help="web logs: keep these statuses, e.g. 2xx,3xx or 200,304")
     w.add_argument("--method", metavar="LIST", help="web logs: keep these request methods, e.g. GET,POST")
@@ -249,11 +261,30 @@ def progress_from_args(args: argparse.Namespace) -> bool:
     return wanted(args.progress, quiet=bool(getattr(args, "quiet", False)), outputs=outputs)
 
 
+def count_from_args(args: argparse.Namespace, shape: ShapeOptions, fields: FieldSpec, fmt, extra,
+                    paths=None, finish_session=None, finished_names=None):
+    """Counts as the command line asks, with the engine it names (see :mod:`tracechain.engines`)."""
+    from .engines import count_data
+
+    return count_data(args.paths if paths is None else paths, engine=getattr(args, "engine", "auto") or "auto",
+                      format=fmt, fields=fields, shape=shape, strict=args.strict, extra=extra,
+                      table=getattr(args, "table", None), query=getattr(args, "query", None),
+                      order_by=getattr(args, "order_by", None), finish_session=finish_session,
+                      finished_names=finished_names, progress=progress_from_args(args))
+
+
+def native_only(args: argparse.Namespace, what: str) -> None:
+    """Refuse the engine options for a command that reads event sequences itself."""
+    if getattr(args, "engine", "auto") not in (None, "auto", "native") or getattr(args, "table", None) \
+            or getattr(args, "query", None) or getattr(args, "order_by", None):
+        raise UsageError(f"{what} reads the sessions themselves, which only the native engine gives; drop "
+                         "--engine, --table, --query and --order-by")
+
+
 def build_chain(args: argparse.Namespace):
     shape, fields, goals, terminal = shape_from_args(args)
     fmt, extra = extra_from_args(args, shape.mapping)
-    counts, report = count_sources(args.paths, format=fmt, fields=fields, shape=shape, strict=args.strict,
-                                   extra=extra, progress=progress_from_args(args))
+    counts, report = count_from_args(args, shape, fields, fmt, extra)
     chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
     settings = {
         "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,
@@ -298,8 +329,23 @@ def cmd_analyze(args: argparse.Namespace) -> int:
 
 
 def cmd_formats(args: argparse.Namespace) -> int:
+    from .engines import installed_engines
+
     for name, p in sorted(available_parsers().items()):
         print(f"{name:10s} {p.kind:7s} {getattr(p, 'description', '')}")
+    print()
+    print("engines (--engine; a sqlite:/// or postgresql:// URL is counted inside that database):")
+    what = {
+        "native": "every format above; standard input and pipes",
+        "duckdb": "Parquet (hive partitions too), CSV and JSON Lines files, gzip included; DuckDB database files "
+                  "(--table/--query)",
+        "sqlite": "sqlite:///file.db with --table/--query (Python's sqlite3)",
+        "postgresql": "postgresql://user@host/db with --table/--query (psycopg)",
+    }
+    extra = {"duckdb": "pip install 'tracechain[duckdb]'", "postgresql": "pip install 'tracechain[postgresql]'"}
+    for name, ok in installed_engines().items():
+        state = "installed" if ok else f"not installed ({extra.get(name, '')})"
+        print(f"{name:10s} {state:9s} {what[name]}")
     return EXIT_OK
 
 

@@ -113,12 +113,13 @@ def register(subparsers) -> None:
 
 # -- handlers -----------------------------------------------------------------------------
 def cmd_order(args: argparse.Namespace) -> int:
-    from ..cli import progress_from_args, shape_from_args
+    from ..cli import native_only, progress_from_args, shape_from_args
     from ..ingest.base import ReadOptions
     from ..pipeline import read_events
     from ..report.text import safe_text
     from .order import order_table, session_sequences
 
+    native_only(args, "tracechain order")
     shape, fields, goals, _ = shape_from_args(args)
     options = ReadOptions(fields=fields, strict=args.strict)
     sessions = session_sequences(read_events(args.paths, format=args.format, options=options,

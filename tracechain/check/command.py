@@ -110,8 +110,6 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
     Returns ``(chain, report, settings, goals)``.
     """
     from .. import cli  # lazily: tracechain.cli imports this module
-    from ..pipeline import count_sources
-
     ns = _merge(args, rules)
     shape, fields, goals, terminal = cli.shape_from_args(ns)
     # the format-specific reading options, as 'analyze' reads them
@@ -128,8 +126,8 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
             return _last_name(state) in done or state_label(state) in done
 
         finish = finished_in
-    counts, report = count_sources(ns.paths, format=fmt, fields=fields, shape=shape, strict=ns.strict,
-                                   extra=extra, finish_session=finish, progress=cli.progress_from_args(ns))
+    counts, report = cli.count_from_args(ns, shape, fields, fmt, extra, finish_session=finish,
+                                         finished_names=None if finished is None else frozenset(done))
     known = set(counts.states)
     last_names = {_last_name(s) for s in counts.states}
     present = [g for g in goals if g in known]

@@ -138,6 +138,11 @@ def _order_test(args):
     from ..pipeline import read_events
 
     shape, fields, goals, _ = shape_from_args(args)
+    if getattr(args, "engine", "auto") not in (None, "auto", "native") or getattr(args, "table", None) \
+            or getattr(args, "query", None):
+        print("tracechain: warning: no order test: it reads the sessions themselves, which only the native engine "
+              "gives", file=sys.stderr)
+        return None
     try:
         sessions = session_sequences(read_events(args.paths, format=args.format,
                                                  options=ReadOptions(fields=fields, strict=args.strict),
@@ -219,12 +224,14 @@ def _counts_for_compare(args):
     import os
 
     from ..analyze.compare import count_split_at, count_split_by_field, parse_time
-    from ..cli import progress_from_args, shape_from_args
+    from ..cli import shape_from_args
     from ..errors import UsageError
-    from ..pipeline import count_sources
-
     shape, fields, goals, terminal = shape_from_args(args)
     split = args.split_at is not None or args.split_field is not None
+    if split:
+        from ..cli import native_only
+
+        native_only(args, "compare --split-at/--split-field")
     if args.split_at is not None and args.split_field is not None:
         raise UsageError("use either --split-at or --split-field, not both")
     if args.split_values is not None and args.split_field is None:
@@ -234,9 +241,10 @@ def _counts_for_compare(args):
         if len(args.paths) != 2:
             raise UsageError(f"compare needs two inputs (A B), or one with --split-at or --split-field; "
                              f"got {len(args.paths)}")
-        progress = progress_from_args(args)
-        a, ra = count_sources([args.paths[0]], progress=progress, **kw)
-        b, rb = count_sources([args.paths[1]], progress=progress, **kw)
+        from ..cli import count_from_args
+
+        a, ra = count_from_args(args, shape, fields, args.format, {}, paths=[args.paths[0]])
+        b, rb = count_from_args(args, shape, fields, args.format, {}, paths=[args.paths[1]])
         names = tuple(os.path.basename(p.rstrip("/")) or p for p in args.paths)
         if names[0] == names[1]:
             names = ("A", "B")

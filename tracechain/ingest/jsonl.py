@@ -186,7 +186,11 @@ class JsonLinesParser:
 
 
 def _narrow_schema(schema: pa.Schema, names: tuple[str, str | None, str]) -> pa.Schema | None:
-    fields = [schema.field(n) for n in names if n is not None and n in schema.names]
+    # a block whose lines lack a needed field must not leave a schema without it: later
+    # blocks read with that schema would lose the field (every event "missing")
+    if any(n is not None and n not in schema.names for n in names):
+        return None
+    fields = [schema.field(n) for n in names if n is not None]
     if any(pa.types.is_null(f.type) or pa.types.is_struct(f.type) or pa.types.is_list(f.type) for f in fields):
         return None
     return pa.schema(fields)

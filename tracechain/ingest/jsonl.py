@@ -36,6 +36,47 @@ BLOCK_BYTES = 1 << 25
 #: hold several times a piece's size while they work (the block size they had before).
 _GENERAL_BYTES = 1 << 24
 
+#: Deepest nesting of arrays and objects a line may have. Arrow's JSON reader crashes the
+#: process (a segmentation fault) on a line nested some ten thousand levels deep, and
+#: ``json.loads`` runs out of recursion near a thousand; a deeper line is skipped as
+#: "nested too deeply" before either sees it. Event logs nest a few levels.
+MAX_DEPTH = 256
+
+_OPENERS = (0x5B, 0x7B)  # "[" and "{"
+_JSON_STRING = re.compile(r'"(?:[^"\\]|\\.)*"', re.S)
+_BRACKET = re.compile(r"[\[\]{}]")
+
+
+def nesting_depth(text: str | bytes) -> int:
+    """The deepest nesting of arrays and objects in one JSON text (brackets inside
+    strings not counted; an unbalanced text counts its deepest opening run)."""
+    if not isinstance(text, str):
+        text = bytes(text).decode("utf-8", "replace")
+    depth = top = 0
+    for m in _BRACKET.finditer(_JSON_STRING.sub("", text)):
+        if m.group() in "[{":
+            depth += 1
+            top = max(top, depth)
+        else:
+            depth = max(0, depth - 1)
+    return top
+
+
+def _may_nest_too_deeply(block) -> bool:
+    """Whether some line of ``block`` holds MAX_DEPTH or more opening brackets (counting
+    those inside strings too, so it errs towards yes): such a block is read line by line,
+    where each such line's true depth is measured."""
+    u8 = np.frombuffer(block, dtype=np.uint8)
+    opens = (u8 == _OPENERS[0]) | (u8 == _OPENERS[1])
+    total = int(np.count_nonzero(opens))
+    if total < MAX_DEPTH:
+        return False
+    ends = np.flatnonzero(u8 == 0x0A)
+    run = np.cumsum(opens, dtype=np.int64)
+    at = np.concatenate(([0], run[ends], [run[-1]]))
+    return bool(np.max(np.diff(at)) >= MAX_DEPTH)
+
+
 _ODD_LINE = re.compile(rb"(?:^|\n)[ \t\r]*(?:[^{ \t\r\n]|\n)")
 _BRACE_AFTER_NL = 0x7B0A  # the bytes b"\n{" read as one little-endian uint16
 
@@ -75,8 +116,9 @@ class JsonLinesParser:
         ok = 0
         for ln in lines[: max(1, len(lines) - 1)]:
             try:
-                ok += isinstance(json.loads(ln), dict)
-            except ValueError:
+                if ln.count(b"[") + ln.count(b"{") < MAX_DEPTH:
+                    ok += isinstance(json.loads(ln), dict)
+            except (ValueError, RecursionError):
                 pass
         if ok:
             return 0.9 if ok == max(1, len(lines) - 1) else 0.5
@@ -128,7 +170,7 @@ class JsonLinesParser:
             else:
                 # 2. Arrow's JSON reader
                 table = None
-                if _lines_are_objects(block, newlines):
+                if _lines_are_objects(block, newlines) and not _may_nest_too_deeply(block):
                     table = _fast_parse(block, schema)
                     if table is None and schema is not None:
                         table = _fast_parse(block, None)
@@ -281,8 +323,18 @@ def _slow_parse(
             if first:
                 break
             continue
+        if raw.count(b"[") + raw.count(b"{") >= MAX_DEPTH and nesting_depth(raw) > MAX_DEPTH:
+            _bad(report, name, ln, "nested too deeply", f"more than {MAX_DEPTH} levels", strict, first)
+            if first:
+                break
+            continue
         try:
             obj = json.loads(raw)
+        except RecursionError:  # (a backstop: the depth check above comes first)
+            _bad(report, name, ln, "nested too deeply", f"more than {MAX_DEPTH} levels", strict, first)
+            if first:
+                break
+            continue
         except ValueError as err:
             _bad(report, name, ln, "invalid JSON", str(err), strict, first)
             if first:

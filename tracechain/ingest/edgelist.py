@@ -35,7 +35,7 @@ from ..counts import END, START, TransitionCounts, _csr
 from ..errors import FieldError, IngestError
 from ..events import ParseReport
 from .base import ReadOptions
-from .sources import Source, open_binary
+from .sources import DECOMPRESS_ERRORS, Source, open_binary
 
 __all__ = ["EdgeListParser", "INT64_MAX", "parse_count"]
 
@@ -157,7 +157,10 @@ class EdgeListParser:
 
     def read_counts(self, source: Source, options: ReadOptions, report: ParseReport) -> TransitionCounts:
         with open_binary(source) as f:
-            data = f.read()
+            try:
+                data = f.read()
+            except DECOMPRESS_ERRORS as err:  # a damaged gzip, bz2 or xz stream
+                raise IngestError(f"cannot decompress: {err}", source.name) from err
         text_head = data.split(b"\n", 1)[0].decode("utf-8", errors="replace")
         try:
             header = next(csv.reader(io.StringIO(text_head, newline="")))

@@ -153,7 +153,10 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
     if pa.types.is_boolean(typ):
         return np.full(n, np.nan), ~arr.is_null().to_numpy(zero_copy_only=False)
     # strings (or anything else, as text)
-    arr = pc.cast(arr, pa.string())
+    try:
+        arr = pc.cast(arr, pa.string())
+    except pa.ArrowInvalid:  # bytes that are not UTF-8 (CSV hands them on as binary): read one by one
+        return _times_one_by_one(arr, spec, n)
     nulls = arr.is_null().to_numpy(zero_copy_only=False)
     if spec.time_format:
         try:
@@ -180,12 +183,19 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
             return times_to_seconds(ts, spec)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             pass
-    # slow path: element by element, marking what cannot be read
+    return _times_one_by_one(arr, spec, n)
+
+
+def _times_one_by_one(arr: pa.Array, spec: FieldSpec, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """The slow path: element by element, marking what cannot be read."""
     out = np.full(n, np.nan)
     bad = np.zeros(n, dtype=bool)
     numeric = np.zeros(n, dtype=bool)  # epoch numbers, scaled together below
     fmt = spec.time_format
-    for i, v in enumerate(arr.to_pylist()):
+    # read as bytes: a reader may hand on text that is not valid UTF-8, which is then an
+    # unreadable time for that line, not a decoding error for the whole file
+    for i, raw in enumerate(arr.cast(pa.binary()).to_pylist()):
+        v = None if raw is None else raw.decode("utf-8", "replace")
         if v is None or v == "":
             continue
         try:

@@ -283,6 +283,9 @@ class TraceRecorder:
         rules = load_rules(os.fspath(rules_file))
         g = rules.goals or tuple(self.goals)
         rules.require(g, False)
+        from .counts import state_label
+
+        rules.check_names([state_label(st) for st in self.context(g).counts.states], (), g)
         problems = []
         for rc in rules.rules:
             if not rc.enabled:

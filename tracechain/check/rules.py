@@ -137,7 +137,7 @@ class GoalReachableRule(Rule):
     needs_goals = True
 
     def configure(self, params: Params):
-        return {"goals": params.states("goals")}
+        return {"goals": params.states("goals", must_occur=True)}
 
     def evaluate(self, ctx, options):
         goals = options["goals"] or ctx.goals

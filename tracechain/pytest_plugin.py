@@ -85,7 +85,7 @@ class _Collector:
     def add(self, rule: Any, name: str, findings: list, seconds: float) -> None:
         from .check.findings import RuleOutcome
 
-        if all(d is not rule for d in self.descriptors):
+        if all(d.id != rule.id for d in self.descriptors):  # each helper call makes its own rule object
             self.descriptors.append(rule)
         self.outcomes.append(RuleOutcome(
             rule_id=rule.id, rule=name, kind=rule.kind, severity="error", description=rule.short_description,

@@ -100,6 +100,17 @@ def test_goal_missing_is_a_finding_not_an_error(check, shop):
     assert "never occurs" in got[0]["message"]
 
 
+def test_conversion_floor_from_a_state_points_at_the_first_session_reaching_it(check, shop):
+    # Cart is first entered on line 2 (s1); from Cart, Paid is reached with probability 1/2 by hand:
+    # Cart -> Paid 2, Cart -> Refund 1, Cart -> Home 1; Home -> Cart 4, Home -> Help 1:
+    # h = 2/4 + 1/4 * (4/5) h, so h = (1/2) / (4/5) = 5/8
+    status, doc, _ = check(shop, "goals: [Paid]\nrules:\n  - kind: conversion-floor\n    from: Cart\n    min: 90%\n")
+    assert status == 1
+    (f,) = findings(doc)
+    assert where(f) == (2, "s1") and f["properties"]["estimate"] == pytest.approx(5 / 8)
+    assert "first reached in session" in f["message"]
+
+
 @pytest.mark.parametrize("rules_text, line, wanted", [
     ("goals: [Paid, Piad]\nrules:\n  - kind: goal-reachable\n", 1, "'Paid'"),
     ("goals: [Paid]\nrules:\n  - kind: conversion-floor\n    from: Crat\n    min: 10%\n", 4, "'Cart'"),

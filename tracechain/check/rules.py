@@ -65,6 +65,15 @@ def _order(ctx: CheckContext, loc) -> tuple:
     return (loc is None, ctx._rank(loc) if loc is not None else ())
 
 
+def _from_location(ctx: CheckContext, i: int):
+    """Where a figure from state ``i`` is located: the first session that reached the state; from
+    [start] every session did, so the figure has no single location (None, and the message says so)."""
+    return None if i == ctx.chain.start else ctx.state_location(i)
+
+
+_EVERY_SESSION = "; a figure over every session, with no single location in the traces"
+
+
 def _n(k: int, word: str) -> str:
     return f"{k} {word}" + ("" if k == 1 else "s")
 
@@ -244,8 +253,10 @@ class ConversionFloorRule(Rule, _FromGoal):
             value = estimate
             shown = f"the chain's estimate is {_pct(value)}"
         if value < floor:
-            yield Issue(f"conversion from {frm!r} to {what!r} is below the floor {_pct(floor)}: {shown}",
-                        states=(frm,) + tuple(goals), location=ctx.state_location(fi), properties=props, key=key)
+            loc = _from_location(ctx, fi)
+            where = _EVERY_SESSION if loc is None else _where(ctx, loc).replace("; first", "; first reached")
+            yield Issue(f"conversion from {frm!r} to {what!r} is below the floor {_pct(floor)}: {shown}{where}",
+                        states=(frm,) + tuple(goals), location=loc, properties=props, key=key)
 
 
 class StepsCeilingRule(Rule, _FromGoal):
@@ -278,7 +289,7 @@ class StepsCeilingRule(Rule, _FromGoal):
                 continue
             if gi is None or ctx.chain.roles[gi] != "goal":
                 yield Issue(f"goal {g!r} never occurs in the traces: steps to it cannot be checked",
-                            states=(frm, g), location=ctx.state_location(fi), key=key)
+                            states=(frm, g), location=_from_location(ctx, fi), key=key)
                 continue
             ab = ctx.absorbing
             col, row = ab.column(gi), ab.row(fi)
@@ -290,11 +301,13 @@ class StepsCeilingRule(Rule, _FromGoal):
                 value = float(ab.steps_given[col][row])
             if not math.isfinite(value):
                 yield Issue(f"goal {g!r} cannot be reached from {frm!r}: expected steps are undefined",
-                            states=(frm, g), location=ctx.state_location(fi), key=key,
+                            states=(frm, g), location=_from_location(ctx, fi), key=key,
                             properties={"ceiling": ceiling})
             elif value > ceiling:
+                loc = _from_location(ctx, fi)
+                where = _EVERY_SESSION if loc is None else _where(ctx, loc).replace("; first", "; first reached")
                 yield Issue(f"expected steps from {frm!r} to {g!r} (given it is reached) are {value:.2f}, above "
-                            f"the ceiling {ceiling:g}", states=(frm, g), location=ctx.state_location(fi), key=key,
+                            f"the ceiling {ceiling:g}{where}", states=(frm, g), location=_from_location(ctx, fi), key=key,
                             properties={"expected_steps": value, "ceiling": ceiling})
 
 

@@ -100,6 +100,42 @@ def test_goal_missing_is_a_finding_not_an_error(check, shop):
     assert "never occurs" in got[0]["message"]
 
 
+def test_conversion_floor_from_a_state_points_at_the_first_session_reaching_it(check, shop):
+    # Cart is first entered on line 2 (s1); from Cart, Paid is reached with probability 1/2 by hand:
+    # Cart -> Paid 2, Cart -> Refund 1, Cart -> Home 1; Home -> Cart 4, Home -> Help 1:
+    # h = 2/4 + 1/4 * (4/5) h, so h = (1/2) / (4/5) = 5/8
+    status, doc, _ = check(shop, "goals: [Paid]\nrules:\n  - kind: conversion-floor\n    from: Cart\n    min: 90%\n")
+    assert status == 1
+    (f,) = findings(doc)
+    assert where(f) == (2, "s1") and f["properties"]["estimate"] == pytest.approx(5 / 8)
+    assert "first reached in session" in f["message"]
+
+
+@pytest.mark.parametrize("rules_text, line, wanted", [
+    ("goals: [Paid, Piad]\nrules:\n  - kind: goal-reachable\n", 1, "'Paid'"),
+    ("goals: [Paid]\nrules:\n  - kind: conversion-floor\n    from: Crat\n    min: 10%\n", 4, "'Cart'"),
+    ("goals: [Paid]\nrules:\n  - kind: steps-ceiling\n    goal: paid\n    max: 9\n", 4, "'Paid'"),
+    ("goals:\n  - Paid\n  - Refnud\nrules:\n  - kind: goal-reachable\n", 3, "'Refund'"),
+])
+def test_a_typo_in_a_state_name_is_a_configuration_error(check, shop, rules_text, line, wanted):
+    # a name that never occurs but is close to one that does (difflib's ratio, Ratcliff/Obershelp
+    # pattern matching) is a mistake in the rules file, exit 2 with the line, not a finding (exit 1)
+    status, doc, err = check(shop, rules_text)
+    assert status == 2 and doc is None
+    assert f"rules.yaml:{line}:" in err and "did you mean" in err and wanted in err
+
+
+def test_a_vanished_state_named_in_the_baseline_is_a_finding_not_a_typo(check, shop, tmp_path):
+    # 'Paid!' is close to 'Paid', but the baseline has it: it vanished, which is what the gate reports
+    base = write_sessions(tmp_path / "base.jsonl", {"b1": ["Home", "Paid!"]})
+    snap = tmp_path / "snap.json"
+    assert cli_main(["snapshot", str(base), "--goal", "Paid!", "-o", str(snap)]) == 0
+    status, doc, err = check(shop, "goals: ['Paid!']\nrules:\n  - kind: goal-reachable\n  - kind: new-state\n",
+                             "--baseline", str(snap))
+    assert status == 1, err
+    assert "never occurs" in findings(doc, "goal-reachable")[0]["message"]
+
+
 def test_goal_only_after_another_goal_is_unreachable(check, tmp_path):
     # s5 reaches Review only after Paid; Paid is absorbing, so no path leads from [start] to Review.
     trace = write_sessions(tmp_path / "shop.jsonl", {**SHOP, "s5": ["Home", "Cart", "Paid", "Review"]})

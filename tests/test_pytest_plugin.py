@@ -200,6 +200,24 @@ def test_sarif_report_of_the_run(shop_project):
     result.stdout.fnmatch_lines(["tracechain: wrote trace assertion results to *traces.sarif"])
 
 
+def test_sarif_report_with_repeated_helpers_is_valid(shop_project):
+    # the same helper in several tests: tool.driver.rules must list each rule once (SARIF 2.1.0
+    # §3.19.23 and the schema's uniqueItems), and every result's ruleIndex must point at its rule
+    jsonschema = pytest.importorskip("jsonschema")
+    shop_project.makepyfile(test_shop_ok=PASSING, test_shop_bad=FAILING)
+    result = shop_project.runpytest(*plugin_args(), "--tracechain-report", "out/traces.sarif")
+    result.assert_outcomes(passed=2, failed=3)
+    log = json.loads((shop_project.path / "out" / "traces.sarif").read_text(encoding="utf-8"))
+    schema = json.loads(SARIF_SCHEMA.read_text(encoding="utf-8"))
+    errors = [e.message for e in jsonschema.Draft4Validator(schema).iter_errors(log)]
+    assert errors == []
+    run = log["runs"][0]
+    ids = [r["id"] for r in run["tool"]["driver"]["rules"]]
+    assert len(ids) == len(set(ids)) == 3
+    for r in run["results"]:
+        assert ids[r["ruleIndex"]] == r["ruleId"]
+
+
 def test_junit_report_of_the_run(shop_project):
     shop_project.makepyfile(test_shop_ok=PASSING, test_shop_bad=FAILING)
     result = shop_project.runpytest(*plugin_args(), "--tracechain-report=traces.xml")

@@ -85,7 +85,7 @@ class _Collector:
     def add(self, rule: Any, name: str, findings: list, seconds: float) -> None:
         from .check.findings import RuleOutcome
 
-        if all(d is not rule for d in self.descriptors):
+        if all(d.id != rule.id for d in self.descriptors):  # each helper call makes its own rule object
             self.descriptors.append(rule)
         self.outcomes.append(RuleOutcome(
             rule_id=rule.id, rule=name, kind=rule.kind, severity="error", description=rule.short_description,
@@ -283,6 +283,9 @@ class TraceRecorder:
         rules = load_rules(os.fspath(rules_file))
         g = rules.goals or tuple(self.goals)
         rules.require(g, False)
+        from .counts import state_label
+
+        rules.check_names([state_label(st) for st in self.context(g).counts.states], (), g)
         problems = []
         for rc in rules.rules:
             if not rc.enabled:

@@ -159,6 +159,7 @@ class Comparison:
     counts_b: TransitionCounts = field(repr=False, default=None)  # type: ignore[assignment]
     test_name: str = TEST_NAME
     notes: tuple[str, ...] = ()
+    steps_given: FigureChange | None = None  # expected steps to a goal given one is reached (on request)
 
     @property
     def significant(self) -> tuple[StateTest, ...]:
@@ -281,9 +282,11 @@ INTERVAL_MAX_STATES = 1000
 
 
 def _figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, draws: int, rng: np.random.Generator,
-             prior: float):
+             prior: float, given: list | None = None):
     """Conversion from the start (index 0) and expected steps on one side: the estimates (None:
     undefined or infinite) and the figures of ``draws`` Dirichlet draws (NaN: undefined), and a note.
+    With ``given=[]`` passed in, the expected steps to a goal given that one is reached,
+    (N B)_0 / B_0 (Grinstead & Snell, ch. 11), are appended to it as (estimate, draws).
 
     A state with no exit on this side is absorbing here (as a sink is in :class:`~tracechain.chain.Chain`).
     """
@@ -331,7 +334,9 @@ def _figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, draw
                      shape=(len(goal_rows), m))
     s0 = posT[0]
 
-    def solve(prob: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    given_d = np.full(draws, np.nan)
+
+    def solve(prob: np.ndarray, out: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         D = prob.shape[0]
         A = np.zeros((D, m * m))
         A[:, np.arange(m) * (m + 1)] = 1.0
@@ -339,7 +344,12 @@ def _figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, draw
         rhs = np.empty((D, m, 2))
         rhs[:, :, 0] = (S.T @ prob[:, goal_mask[c]].T).T if len(goal_rows) else 0.0
         rhs[:, :, 1] = 1.0
-        x = np.linalg.solve(A.reshape(D, m, m), rhs)
+        A = A.reshape(D, m, m)
+        x = np.linalg.solve(A, rhs)
+        if out is not None and has_goal:
+            y = np.linalg.solve(A, x[:, :, :1])[:, s0, 0]
+            b0 = x[:, s0, 0]
+            out[:] = np.where(b0 > 1e-12, y / np.where(b0 > 1e-12, b0, 1.0), np.nan)
         return x[:, s0, 0], x[:, s0, 1]
 
     mle = v / np.repeat(np.add.reduceat(v, starts), sizes)
@@ -353,7 +363,8 @@ def _figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, draw
         steps_hat = None if infinite else float(spla.spsolve(I_Q, np.ones(m))[s0])
         note = f"no intervals: {m:,} transient states (above {INTERVAL_MAX_STATES:,})"
         return (None if conv_hat is None else min(max(conv_hat, 0.0), 1.0)), steps_hat, nan, nan.copy(), note
-    conv_hat, steps_hat = solve(mle[None, :])
+    given_hat = np.full(1, np.nan)
+    conv_hat, steps_hat = solve(mle[None, :], given_hat if given is not None else None)
     conv_d = np.empty(draws)
     steps_d = np.empty(draws)
     per = max(1, int(4e7 // (m * m * 8 + 1)))
@@ -362,7 +373,7 @@ def _figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, draw
         k = min(per, draws - done)
         g = rng.standard_gamma(v[None, :] + prior, size=(k, len(v)))
         probs = g / np.repeat(np.add.reduceat(g, starts, axis=1), sizes, axis=1)
-        cd, sd = solve(probs)
+        cd, sd = solve(probs, given_d[done:done + k] if given is not None else None)
         conv_d[done:done + k] = cd
         steps_d[done:done + k] = sd
         done += k
@@ -371,6 +382,9 @@ def _figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, draw
     steps = None if infinite else float(steps_hat[0])
     if infinite:
         steps_d[:] = np.nan
+    if given is not None:
+        g_hat = float(given_hat[0]) if np.isfinite(given_hat[0]) else None
+        given.extend((g_hat, given_d))
     return conv, steps, conv_d, steps_d, None
 
 
@@ -396,7 +410,7 @@ def _change(name: str, ea, eb, da: np.ndarray, db: np.ndarray, level: float) -> 
 def compare_counts(
     a: TransitionCounts, b: TransitionCounts, goals: Iterable[str] = (), terminal: Iterable[str] = (), *,
     names: tuple[str, str] = ("A", "B"), fdr: float = 0.05, min_expected: float = 5.0, level: float = 0.95,
-    draws: int = 1000, seed: int = 0, prior: float = 0.5,
+    draws: int = 1000, seed: int = 0, prior: float = 0.5, steps_given: bool = False,
 ) -> Comparison:
     """Compare the sessions behind two sets of counts (see the module docstring)."""
     if not 0 < fdr < 1:
@@ -513,8 +527,13 @@ def compare_counts(
     vanished = tuple(i for i in range(1, n - 1) if vb[i] == 0 and va[i] > 0)
     # figures with intervals
     rng = np.random.default_rng(seed)
-    ca_, sa_, cda, sda, note_a = _figures(Wa, absorbing, goal_mask, draws, rng, prior)
-    cb_, sb_, cdb, sdb, note_b = _figures(Wb, absorbing, goal_mask, draws, rng, prior)
+    ga: list | None = [] if steps_given else None
+    gb: list | None = [] if steps_given else None
+    ca_, sa_, cda, sda, note_a = _figures(Wa, absorbing, goal_mask, draws, rng, prior, ga)
+    cb_, sb_, cdb, sdb, note_b = _figures(Wb, absorbing, goal_mask, draws, rng, prior, gb)
+    given = None
+    if ga and gb:
+        given = _change("expected steps to a goal (given one is reached)", ga[0], gb[0], ga[1], gb[1], level)
     conv = _change("conversion from the start", ca_, cb_, cda, cdb, level) if goal_mask.any() else None
     steps = _change("expected steps from the start", sa_, sb_, sda, sdb, level)
     notes = [f"{names[k]}: {nt}" for k, nt in enumerate((note_a, note_b)) if nt]
@@ -530,7 +549,7 @@ def compare_counts(
         visits_a=va, visits_b=vb, tests=tuple(tests), edges=tuple(edges), appeared_states=appeared,
         vanished_states=vanished, conversion=conv, steps=steps, fdr=float(fdr), level=float(level), draws=int(draws),
         seed=int(seed), prior=float(prior), min_expected=float(min_expected), sessions_a=int(a.sessions),
-        sessions_b=int(b.sessions), counts_a=a, counts_b=b, notes=tuple(notes),
+        sessions_b=int(b.sessions), counts_a=a, counts_b=b, notes=tuple(notes), steps_given=given,
     )
 
 

@@ -186,6 +186,9 @@ def cmd_check(args: argparse.Namespace) -> int:
                 notes.append(f"the baseline's goals ({', '.join(baseline.goals) or 'none'}) differ from this check's")
         else:
             notes.append("a baseline was given but no enabled rule compares with it")
+    seen = [state_label(st) for st in chain.counts.states]
+    seen += sorted({str(_last_name(st)) for st in chain.counts.states} - set(seen))
+    rules.check_names(seen, baseline.state_names if baseline is not None else (), goals)
     ctx = CheckContext(chain, goals=goals, report=report, baseline=baseline, settings=settings)
     result = run_check(ctx, rules.rules, fail_on=args.fail_on, rules_file=args.rules, notes=notes)
     fmt = _format_for(args.output, args.output_format)

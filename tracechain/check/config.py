@@ -27,9 +27,11 @@
 
 from __future__ import annotations
 
+import difflib
 import math
 import os
 import re
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -72,6 +74,7 @@ class RuleConfig:
     enabled: bool = True
     description: str = ""
     line: int | None = None
+    names: tuple[tuple[str, int | None], ...] = ()  # states it needs to occur, with their lines
 
 
 @dataclass(frozen=True)
@@ -82,6 +85,34 @@ class RulesFile:
     baseline: str | None = None
     rules: tuple[RuleConfig, ...] = ()
     lines: dict = field(default_factory=dict)  # top-level key -> line
+    goal_lines: tuple[int | None, ...] = ()  # the line of each of 'goals'
+
+    def check_names(self, seen: Iterable[str], known: Iterable[str] = (), goals: Iterable[str] = ()) -> None:
+        """A goal or state the rules need (goals, 'from', 'goal') that is not among the states
+        ``seen`` in the traces, nor ``known`` otherwise (the baseline's states), and is close to one
+        seen, is a typo: a ConfigError naming the line, with a did-you-mean. A name close to none is
+        left to the rules (a goal that no longer occurs is what the gate is for). ``goals`` are the
+        goals in force when the command line's --goal replaced the file's."""
+        seen = [s for s in seen]
+        have = set(seen) | set(known) | {"[start]", "[end]"}
+        wanted: list[tuple[str, int | None, str]] = []
+        if goals and tuple(goals) != self.goals:
+            wanted += [(g, None, "goal") for g in goals]
+        else:
+            wanted += [(g, self.goal_lines[k] if k < len(self.goal_lines) else self.lines.get("goals"), "goal")
+                       for k, g in enumerate(self.goals)]
+        for rc in self.rules:
+            if rc.enabled:
+                wanted += [(n, ln, f"rule {rc.id!r}: state") for n, ln in rc.names]
+        for name, line, what in wanted:
+            if name in have:
+                continue
+            hint = difflib.get_close_matches(name, seen, n=3, cutoff=0.75)
+            if hint:
+                raise ConfigError(
+                    f"{what} {name!r} does not occur in the traces ({len(seen)} states seen); did you mean "
+                    f"{' or '.join(repr(h) for h in hint)}? (a state that really vanished is told from a typo "
+                    f"when the baseline snapshot has it)", self.source, line)
 
     def require(self, goals: tuple[str, ...], has_baseline: bool) -> None:
         """Check what the enabled rules need, once goals and baseline are known."""
@@ -173,8 +204,9 @@ def parse_rules(text: str, source: str | None = "<rules>", base_dir: str = "", r
     for k, item in enumerate(items):
         line = lines[k] if k < len(lines) else at("rules")
         configs.append(_rule_config(item, source, line, known, used))
+    goal_lines = tuple(getattr(data.get("goals"), "lines", ())) if isinstance(data.get("goals"), list) else ()
     return RulesFile(source=source, goals=goals, input=inp, baseline=baseline, rules=tuple(configs),
-                     lines={k: at(k) for k in user_keys(data)})
+                     lines={k: at(k) for k in user_keys(data)}, goal_lines=goal_lines)
 
 
 def _input(value: Any, source: str | None, base_dir: str, line: int) -> InputOptions:
@@ -272,5 +304,5 @@ def _rule_config(item: Any, source: str | None, line: int | None, known: dict, u
     if isinstance(rule, Rule) or params.asked:
         params.finish()
     return RuleConfig(rule=rule, id=rid, severity=str(severity), options=options, enabled=enabled,
-                      description=description, line=line)
+                      description=description, line=line, names=tuple(params.named))
 

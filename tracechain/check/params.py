@@ -133,6 +133,9 @@ class Params:
         self.line = line if line is not None else self.data.get("__line__")
         self.rule = rule
         self._known: set[str] = set()
+        #: (name, line) of the states this rule needs to occur (goals, 'from', 'goal'): a name
+        #: that does not occur and looks like a typo of one that does is a configuration error
+        self.named: list[tuple[str, int | None]] = []
 
     # -- helpers --------------------------------------------------------------------
     def line_of(self, key: str | None) -> int | None:
@@ -162,7 +165,7 @@ class Params:
             raise self.error(f"unknown parameter {extra[0]!r} (parameters of this rule: {allowed})", extra[0])
 
     # -- getters --------------------------------------------------------------------
-    def state(self, key: str, default: str | None = None, required: bool = False) -> str | None:
+    def state(self, key: str, default: str | None = None, required: bool = False, must_occur: bool = True) -> str | None:
         if not self.has(key):
             if required:
                 raise self.error(f"needs '{key}: STATE'", None)
@@ -170,14 +173,21 @@ class Params:
         name = _name_of(self.data[key], self._raw(key))
         if not name:
             raise self.error(f"'{key}' must be one state name", key)
+        if must_occur:
+            self.named.append((name, self.line_of(key)))
         return name
 
-    def states(self, key: str, required: bool = False) -> tuple[str, ...]:
+    def states(self, key: str, required: bool = False, must_occur: bool = False) -> tuple[str, ...]:
         if not self.has(key):
             if required:
                 raise self.error(f"needs '{key}: [STATE, ...]'", None)
             return ()
-        return states_list(self.data[key], self._raw(key), lambda m, ln: self.error(m, key, ln), key)
+        names = states_list(self.data[key], self._raw(key), lambda m, ln: self.error(m, key, ln), key)
+        if must_occur:
+            lines = getattr(self.data[key], "lines", ())
+            for k, name in enumerate(names):
+                self.named.append((name, lines[k] if k < len(lines) else self.line_of(key)))
+        return names
 
     def number(self, key: str, default: float | None = None, required: bool = False, minimum: float | None = None,
                above: float | None = None, integer: bool = False) -> float | None:

@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import re
 import warnings
 from collections.abc import Iterable
 from importlib.metadata import entry_points
@@ -43,7 +44,8 @@ from .params import META_KEYS, Params, states_list
 __all__ = [
     "ENTRY_POINT_GROUP", "Rule", "available_rules", "get_rule", "builtin_rules", "wilson_lower",
     "DeadEndRule", "GoalReachableRule", "ConversionFloorRule", "StepsCeilingRule", "TrapRule",
-    "AllowedTransitionsRule", "OpenShareRule", "NewStateRule", "NewTransitionRule",
+    "AllowedTransitionsRule", "OpenShareRule", "NewStateRule", "NewTransitionRule", "RegressionRule",
+    "parse_min_change",
 ]
 
 ENTRY_POINT_GROUP = "tracechain.rules"
@@ -61,6 +63,15 @@ def _order(ctx: CheckContext, loc) -> tuple:
     """Sort key: located findings by where they first occur, then the others; ties keep the chain's
     order (a stable sort), which follows the path: [start] edges, edges between states, [end] edges."""
     return (loc is None, ctx._rank(loc) if loc is not None else ())
+
+
+def _from_location(ctx: CheckContext, i: int):
+    """Where a figure from state ``i`` is located: the first session that reached the state; from
+    [start] every session did, so the figure has no single location (None, and the message says so)."""
+    return None if i == ctx.chain.start else ctx.state_location(i)
+
+
+_EVERY_SESSION = "; a figure over every session, with no single location in the traces"
 
 
 def _n(k: int, word: str) -> str:
@@ -135,7 +146,7 @@ class GoalReachableRule(Rule):
     needs_goals = True
 
     def configure(self, params: Params):
-        return {"goals": params.states("goals")}
+        return {"goals": params.states("goals", must_occur=True)}
 
     def evaluate(self, ctx, options):
         goals = options["goals"] or ctx.goals
@@ -242,8 +253,10 @@ class ConversionFloorRule(Rule, _FromGoal):
             value = estimate
             shown = f"the chain's estimate is {_pct(value)}"
         if value < floor:
-            yield Issue(f"conversion from {frm!r} to {what!r} is below the floor {_pct(floor)}: {shown}",
-                        states=(frm,) + tuple(goals), location=ctx.state_location(fi), properties=props, key=key)
+            loc = _from_location(ctx, fi)
+            where = _EVERY_SESSION if loc is None else _where(ctx, loc).replace("; first", "; first reached")
+            yield Issue(f"conversion from {frm!r} to {what!r} is below the floor {_pct(floor)}: {shown}{where}",
+                        states=(frm,) + tuple(goals), location=loc, properties=props, key=key)
 
 
 class StepsCeilingRule(Rule, _FromGoal):
@@ -276,7 +289,7 @@ class StepsCeilingRule(Rule, _FromGoal):
                 continue
             if gi is None or ctx.chain.roles[gi] != "goal":
                 yield Issue(f"goal {g!r} never occurs in the traces: steps to it cannot be checked",
-                            states=(frm, g), location=ctx.state_location(fi), key=key)
+                            states=(frm, g), location=_from_location(ctx, fi), key=key)
                 continue
             ab = ctx.absorbing
             col, row = ab.column(gi), ab.row(fi)
@@ -288,11 +301,13 @@ class StepsCeilingRule(Rule, _FromGoal):
                 value = float(ab.steps_given[col][row])
             if not math.isfinite(value):
                 yield Issue(f"goal {g!r} cannot be reached from {frm!r}: expected steps are undefined",
-                            states=(frm, g), location=ctx.state_location(fi), key=key,
+                            states=(frm, g), location=_from_location(ctx, fi), key=key,
                             properties={"ceiling": ceiling})
             elif value > ceiling:
+                loc = _from_location(ctx, fi)
+                where = _EVERY_SESSION if loc is None else _where(ctx, loc).replace("; first", "; first reached")
                 yield Issue(f"expected steps from {frm!r} to {g!r} (given it is reached) are {value:.2f}, above "
-                            f"the ceiling {ceiling:g}", states=(frm, g), location=ctx.state_location(fi), key=key,
+                            f"the ceiling {ceiling:g}{where}", states=(frm, g), location=_from_location(ctx, fi), key=key,
                             properties={"expected_steps": value, "ceiling": ceiling})
 
 
@@ -476,63 +491,196 @@ class NewTransitionRule(Rule):
                         transition=(a, b), location=loc, properties={"count": n})
 
 
+def parse_min_change(value: Any, raw: str | None, unit: str) -> tuple[str, float] | None:
+    """A minimum effect size: ``("abs", x)`` or ``("rel", x)``, or None when not readable.
+
+    ``unit`` is ``points`` (shares: ``2 points``, ``2pt``, ``2pp`` or a plain number such as 0.02)
+    or ``steps`` (``0.5 steps`` or a plain number). Either may be ``10% relative`` (of the
+    baseline's value). A bare ``2%`` is refused: it could mean points or relative.
+    """
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, (int, float)):
+        x = float(value)
+        if not math.isfinite(x) or x < 0 or (unit == "points" and x > 1):
+            return None
+        return ("abs", x)
+    text = str(raw if raw is not None else value).strip().lower()
+    m = re.fullmatch(r"([0-9]*\.?[0-9]+)\s*(%)?\s*(relative|rel)", text)
+    if m:
+        x = float(m.group(1)) / (100.0 if m.group(2) else 1.0)
+        return ("rel", x) if math.isfinite(x) else None
+    words = ("points", "point", "pt", "pts", "pp") if unit == "points" else ("steps", "step")
+    m = re.fullmatch(r"([0-9]*\.?[0-9]+)\s*([a-z]+)", text)
+    if m and m.group(2) in words:
+        x = float(m.group(1)) / (100.0 if unit == "points" else 1.0)
+        return ("abs", x) if math.isfinite(x) and (unit != "points" or x <= 1) else None
+    return None
+
+
+def _big_enough(before: float, after: float, threshold: tuple[str, float]) -> bool:
+    """Whether the change from ``before`` to ``after`` reaches the minimum effect size."""
+    change = abs(after - before)
+    kind, x = threshold
+    if kind == "rel":
+        return change >= x * abs(before) if before else change > 0
+    return change >= x - 1e-12
+
+
+def _show_threshold(t: tuple[str, float], unit: str) -> str:
+    if t[0] == "rel":
+        return f"{100 * t[1]:g}% relative"
+    return f"{100 * t[1]:g} points" if unit == "points" else f"{t[1]:g} steps"
+
+
 class RegressionRule(Rule):
-    id = "TC110-significant-regression"
+    id = "TC110-no-regression"
     kind = "no-regression"
-    short_description = "A significant change against the baseline snapshot."
+    aliases = ("TC110-significant-regression",)  # the id of earlier releases
+    short_description = "Behaviour got worse against the baseline snapshot, significantly and by a minimum amount."
     full_description = (
-        "The traces are compared with the baseline snapshot's counts by the compare test "
-        "(tracechain.analyze.compare): a per-state chi-square test of homogeneity of the outgoing "
-        "transitions with Benjamini-Hochberg control of the false discovery rate 'fdr' across states, "
-        "and the change in conversion from the start with a Dirichlet-posterior interval. A state whose "
-        "exits changed significantly is a finding; so is a drop in conversion whose interval lies "
-        "entirely below zero."
+        "The traces are compared with the baseline snapshot's counts. By default the rule is one-sided "
+        "('direction: worse'): a finding is a change for the worse only, namely (1) a state (not a goal or "
+        "terminal state) from which a larger share of visits ended the session ([end]), by a one-sided Fisher "
+        "exact test per state with Benjamini-Hochberg control of the false discovery rate 'fdr' across states; "
+        "(2) a fall in conversion from [start] to the goals, and (3) a rise in the expected steps from "
+        "[start] to a goal, given one is reached (to the end when no goal is set), each when the one-sided Dirichlet-posterior bound at 'level' excludes no change. Each change "
+        "must also be at least 'min_change' (exit shares and conversion; default 2 points) or "
+        "'min_steps_change' (steps; default 10% relative). 'direction: both' reports changes either way, "
+        "and also states whose exits were redistributed (chi-square test of homogeneity, with the total "
+        "variation distance at least 'min_change')."
     )
-    help = "Parameters: fdr (default 0.05), level (default 0.95), seed (default 0). Needs --baseline or 'baseline:'."
+    help = ("Parameters: direction (worse | both; default worse), min_change (default '2 points'; or e.g. "
+            "'10% relative'), min_steps_change (default '10% relative'; or e.g. '0.5 steps'), fdr (default 0.05), "
+            "level (default 0.95), seed (default 0). Needs --baseline or 'baseline:'.")
     default_severity = "error"
     needs_baseline = True
 
     def configure(self, params: Params):
-        return {
-            "fdr": params.number("fdr", 0.05, minimum=1e-9),
-            "level": params.number("level", 0.95, minimum=1e-9),
-            "seed": params.number("seed", 0, minimum=0, integer=True),
-        }
+        direction = params.choice("direction", ("worse", "both"), "worse")
+        out = {"direction": direction}
+        for key, unit, default in (("min_change", "points", ("abs", 0.02)),
+                                   ("min_steps_change", "steps", ("rel", 0.10))):
+            if params.has(key):
+                t = parse_min_change(params.data[key], params._raw(key), unit)
+                if t is None:
+                    example = "'2 points' or '10% relative'" if unit == "points" else "'0.5 steps' or '10% relative'"
+                    raise params.error(f"'{key}' must be an effect size such as {example}, not "
+                                       f"{params._raw(key) or params.data[key]!r}", key)
+                out[key] = t
+            else:
+                out[key] = default
+        fdr = params.number("fdr", 0.05, above=0)
+        level = params.number("level", 0.95, above=0)
+        for key, v in (("fdr", fdr), ("level", level)):
+            if not 0 < v < 1:
+                raise params.error(f"'{key}' must be strictly between 0 and 1, not {v!r}", key)
+        out.update(fdr=fdr, level=level, seed=params.number("seed", 0, minimum=0, integer=True))
+        return out
 
     def evaluate(self, ctx, options):
+        from scipy.stats import false_discovery_control, fisher_exact
+
         from ..analyze.compare import compare_counts
         from ..counts import END as _END
         from ..counts import START as _START
-        from ..counts import TransitionCounts
+        from ..counts import TransitionCounts, state_label
 
+        worse = options["direction"] == "worse"
         edges = {}
         for (a, b), n in ctx.baseline.counts.items():
             key = (_START if a == START_NAME else a, _END if b == END_NAME else b)
             edges[key] = edges.get(key, 0) + int(n)
         base = TransitionCounts.from_edges(edges, _START, _END)
-        goals = [g for g in ctx.goals if g not in ctx.missing_goals]
-        cmp = compare_counts(base, ctx.counts, goals=goals, names=("baseline", "traces"), fdr=options["fdr"],
-                             level=options["level"], seed=int(options["seed"]), draws=400)
-        for t in cmp.tests:
-            if t.significant:
-                idx = ctx.resolve(t.label)
-                loc = ctx.state_location(idx) if idx is not None and hasattr(ctx, "state_location") else None
-                yield Issue(
-                    f"the exits of {t.label!r} changed significantly against the baseline "
-                    f"(chi-square {t.statistic:.1f}, df {t.df}, q = {t.q_value:.3g}; "
-                    f"{t.n_a} exits in the baseline, {t.n_b} now)",
-                    states=(t.label,), location=loc,
-                    properties={"statistic": t.statistic, "df": t.df, "p_value": t.p_value, "q_value": t.q_value},
-                )
-        c = cmp.conversion
-        if c is not None and c.diff is not None and c.diff_high is not None and c.diff_high < 0:
+
+        # (1) exit shares per state: visits that ended the session
+        def exits(c):
+            v, e = c.visits(), c.ends
+            return {state_label(s): (int(e[k]), int(v[k])) for k, s in enumerate(c.states)}
+
+        before, now = exits(base), exits(ctx.counts)
+        closed = set(ctx.goals) | {ctx.label(int(i)) for i in range(ctx.chain.n)
+                                   if ctx.chain.roles[i] in ("goal", "terminal")}
+        rows, pvals = [], []
+        for name in sorted(set(before) & set(now)):
+            if name in closed:
+                continue
+            (ea, na), (eb, nb) = before[name], now[name]
+            if na == 0 or nb == 0:
+                continue
+            alternative = "less" if worse else "two-sided"  # a's end share below b's: more exits now
+            _odds, p = fisher_exact([[ea, na - ea], [eb, nb - eb]], alternative=alternative)
+            rows.append((name, ea, na, eb, nb))
+            pvals.append(float(p))
+        q = false_discovery_control(pvals, method="bh") if pvals else []
+        share_t = options["min_change"]
+        for (name, ea, na, eb, nb), p, qv in zip(rows, pvals, q):
+            sa, sb = ea / na, eb / nb
+            if qv > options["fdr"] or not _big_enough(sa, sb, share_t) or (worse and sb <= sa):
+                continue
+            idx = ctx.resolve(name)
+            word = "more" if sb > sa else "fewer"
             yield Issue(
-                f"conversion from the start fell from {100 * c.a:.1f}% to {100 * c.b:.1f}% "
-                f"(change {100 * c.diff:.1f} points, {100 * options['level']:g}% interval "
-                f"{100 * c.diff_low:.1f} to {100 * c.diff_high:.1f})",
-                states=(START_NAME,), key="conversion-from-start",
-                properties={"baseline": c.a, "now": c.b, "change": c.diff},
+                f"{word} sessions end at {name!r} than in the baseline: {_pct(sa)} of {na} visits then, "
+                f"{_pct(sb)} of {nb} now (Fisher exact test, {'one' if worse else 'two'}-sided, q = {qv:.3g}; "
+                f"at least {_show_threshold(share_t, 'points')} asked)",
+                states=(name,), location=ctx.state_location(idx) if idx is not None else None,
+                key=f"exits\x1f{name}",
+                properties={"exit_share_baseline": sa, "exit_share_now": sb, "visits_baseline": na,
+                            "visits_now": nb, "p_value": p, "q_value": float(qv)},
             )
+
+        # (2), (3) conversion and steps from the start; a one-sided bound at `level` is one end of the
+        # two-sided interval at 2 * level - 1
+        goals = [g for g in ctx.goals if g not in ctx.missing_goals]
+        level = options["level"]
+        inner = 2 * level - 1 if worse else level
+        cmp = compare_counts(base, ctx.counts, goals=goals, names=("baseline", "traces"), fdr=options["fdr"],
+                             level=max(inner, 1e-6), seed=int(options["seed"]), draws=400, steps_given=True)
+        sided = "one-sided" if worse else "two-sided"
+        c = cmp.conversion
+        if c is not None and c.diff is not None and c.diff_low is not None and c.diff_high is not None:
+            fell, rose = c.diff_high < 0, c.diff_low > 0 and not worse
+            if (fell or rose) and _big_enough(c.a, c.b, share_t):
+                bound = (f"{sided} {100 * level:g}% bound {100 * c.diff_high:.1f}" if worse else
+                         f"{100 * level:g}% interval {100 * c.diff_low:.1f} to {100 * c.diff_high:.1f}")
+                yield Issue(
+                    f"conversion from the start {'fell' if fell else 'rose'} from {100 * c.a:.1f}% to "
+                    f"{100 * c.b:.1f}% (change {100 * c.diff:+.1f} points, {bound}; at least "
+                    f"{_show_threshold(share_t, 'points')} asked)",
+                    states=(START_NAME,), key="conversion-from-start",
+                    properties={"baseline": c.a, "now": c.b, "change": c.diff, "low": c.diff_low,
+                                "high": c.diff_high, "level": level, "sided": sided},
+                )
+        # steps to a goal given one is reached: more conversions alone must not read as more steps
+        s = cmp.steps_given if goals else cmp.steps
+        if s is not None and s.diff is not None and s.diff_low is not None and s.diff_high is not None:
+            up, down = s.diff_low > 0, s.diff_high < 0 and not worse
+            if (up or down) and _big_enough(s.a, s.b, options["min_steps_change"]):
+                bound = (f"{sided} {100 * level:g}% bound {s.diff_low:+.2f}" if worse else
+                         f"{100 * level:g}% interval {s.diff_low:+.2f} to {s.diff_high:+.2f}")
+                yield Issue(
+                    f"{s.name} {'rose' if up else 'fell'} from {s.a:.2f} to {s.b:.2f} "
+                    f"({bound}; at least {_show_threshold(options['min_steps_change'], 'steps')} asked)",
+                    states=(START_NAME,), key="steps-from-start",
+                    properties={"baseline": s.a, "now": s.b, "change": s.diff, "low": s.diff_low,
+                                "high": s.diff_high, "level": level, "sided": sided},
+                )
+
+        # two-sided only: exits redistributed among the next states
+        if not worse:
+            for t in cmp.tests:
+                big = t.tvd is not None and (t.tvd >= share_t[1] - 1e-12 if share_t[0] == "abs" else True)
+                if t.significant and big:
+                    idx = ctx.resolve(t.label)
+                    yield Issue(
+                        f"the exits of {t.label!r} changed significantly against the baseline "
+                        f"(chi-square {t.statistic:.1f}, df {t.df}, q = {t.q_value:.3g}; total variation "
+                        f"distance {t.tvd:.3f}; {t.n_a} exits in the baseline, {t.n_b} now)",
+                        states=(t.label,), location=ctx.state_location(idx) if idx is not None else None,
+                        properties={"statistic": t.statistic, "df": t.df, "p_value": t.p_value,
+                                    "q_value": t.q_value, "tvd": t.tvd},
+                    )
 
 
 _BUILTIN_CLASSES = (DeadEndRule, GoalReachableRule, ConversionFloorRule, StepsCeilingRule, TrapRule,
@@ -589,7 +737,7 @@ def get_rule(kind: str, source: str | None = None, line: int | None = None, rule
     if kind in rules:
         return rules[kind]
     for r in rules.values():
-        if kind == r.id or kind == r.id.split("-", 1)[0]:
+        if kind == r.id or kind == r.id.split("-", 1)[0] or kind in getattr(r, "aliases", ()):
             return r
     hint = difflib.get_close_matches(kind, list(rules), n=2)
     more = f"; did you mean {' or '.join(repr(h) for h in hint)}?" if hint else ""

@@ -87,8 +87,9 @@ def _location(f: Finding, fallback: str | None, base: str | None) -> dict[str, A
 
 def sarif_document(result: CheckResult, base: str | None = None) -> dict[str, Any]:
     """The SARIF log of a check; URIs are relative to ``base`` (default: the current directory)."""
-    rules = [descriptor(r) for r in result.descriptors]
-    index = {r.id: k for k, r in enumerate(result.descriptors)}
+    kinds = list({r.id: r for r in reversed(result.descriptors)}.values())[::-1]  # one per id (SARIF: uniqueItems)
+    rules = [descriptor(r) for r in kinds]
+    index = {r.id: k for k, r in enumerate(kinds)}
     fallback = result.sources[0] if result.sources else None
     results = []
     for f in result.findings:

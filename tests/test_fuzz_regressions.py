@@ -95,7 +95,7 @@ def test_xes_corrupt_gzip_is_an_error_whatever_the_read_size(tmp_path):
 
 @pytest.mark.parametrize("fmt,good,deep", [
     ("cloudevents", CE, b"[" * 20000 + b"]" * 20000 + b"\n"),
-    ("otlp", SPAN, b'{"resourceSpans": ' + b"[" * 5000 + b"]" * 5000 + b"}\n"),
+    ("otlp", SPAN, b'{"resourceSpans": ' + b"[" * 20000 + b"]" * 20000 + b"}\n"),
 ])
 def test_json_nested_too_deeply_is_a_skipped_value(fmt, good, deep, tmp_path):
     """RecursionError used to escape the stream reader; now the value is 'invalid JSON' and the

@@ -185,6 +185,7 @@ def test_output_file_and_summary(tmp_path, monkeypatch, capsys, validator):
     monkeypatch.chdir(tmp_path)
     write_sessions(tmp_path / "shop.jsonl", SHOP)
     write_rules(tmp_path / "rules.yaml", RULES)
+    (tmp_path / "out").mkdir()  # a missing output folder is refused (tests/test_output_safety.py)
     status = cli_main(["check", "shop.jsonl", "--rules", "rules.yaml", "--output", "out/gate.sarif"])
     out, err = capsys.readouterr()
     assert status == 1

@@ -61,6 +61,7 @@ def test_json_to_stdout_only(run_cli, shop_log, strict_json, schema_validator):
 
 def test_quiet_writes_files_only(run_cli, shop_log, tmp_path, strict_json):
     target = tmp_path / "out" / "result.json"
+    target.parent.mkdir()  # tracechain refuses a missing output folder (tests/test_output_safety.py)
     status, out, err = run_cli("analyze", shop_log, "--goal", "Paid", "--json", target, "-q")
     assert status == 0 and out == ""
     assert f"wrote {target}" in err

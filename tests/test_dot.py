@@ -216,6 +216,7 @@ def shop_log(tmp_path):
 
 def test_cli_writes_diagrams(run_cli, shop_log, tmp_path):
     dot, svg, png = tmp_path / "d.dot", tmp_path / "d.svg", tmp_path / "sub" / "d.png"
+    png.parent.mkdir()  # a missing output folder is refused (tests/test_output_safety.py)
     status, out, err = run_cli("analyze", shop_log, "--goal", "Paid", "--dot", dot, "--svg", svg, "--png", png, "-q")
     assert status == 0, err
     for p in (dot, svg, png):

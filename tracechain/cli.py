@@ -28,6 +28,7 @@ from .pipeline import ShapeOptions, count_sources  # noqa: F401  (part of this m
 from .report.dot import render_dot, render_image
 from .report.json_report import analysis_document, dumps
 from .report.text import render_text
+from .outputs import check_outputs
 from .report.writer import write_output
 from .shape.cases import CasePolicy
 from .shape.mapping import load_mapping
@@ -358,6 +359,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
+            check_outputs(args)
             return args.handler(args)
     except TracechainError as err:
         print(f"tracechain: error: {err}", file=sys.stderr)

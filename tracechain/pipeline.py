@@ -13,6 +13,7 @@ Both take ``progress`` (default off): see :func:`tracechain.progress.make_meter`
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field, replace
 from typing import Any, BinaryIO
@@ -174,9 +175,11 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
             if parser.kind == "counts":
                 pre = pre + parser.read_counts(read_src, options, report)
             else:
-                for chunk in read_ahead(parser.read(read_src, options, report)):
-                    any_events = True
-                    counter.add(chunk)
+                # closed at once on an error, not whenever the garbage collector finds it
+                with contextlib.closing(read_ahead(parser.read(read_src, options, report))) as chunks:
+                    for chunk in chunks:
+                        any_events = True
+                        counter.add(chunk)
             if meter is not None:
                 meter.finished(i)
         counts = counter.finish(finish_session, cases=shape.cases) if any_events else TransitionCounts.empty()

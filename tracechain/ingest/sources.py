@@ -525,14 +525,25 @@ def read_ahead(items: Iterable[T]) -> Iterator[T]:
 
     def work() -> None:
         try:
-            for item in it:
-                if not hand_over((True, item)):
-                    return
-                del item
-        except BaseException as err:  # handed to the consumer, raised there
-            hand_over((False, err))
-            return
-        hand_over((True, _DONE))
+            try:
+                for item in it:
+                    if not hand_over((True, item)):
+                        return
+                    del item
+            except BaseException as err:  # handed to the consumer, raised there
+                hand_over((False, err))
+                return
+            hand_over((True, _DONE))
+        finally:
+            # Only this thread ever runs the iterator, so only this thread closes it: closing it
+            # from the consumer (or from a finalizer at exit, when this daemon thread is frozen
+            # inside it) raised "generator already executing".
+            close = getattr(it, "close", None)
+            if close is not None:
+                try:
+                    close()
+                except BaseException:  # an error while closing is not the consumer's error
+                    pass
 
     thread = threading.Thread(target=work, name="tracechain-read-ahead", daemon=True)
     thread.start()
@@ -548,10 +559,8 @@ def read_ahead(items: Iterable[T]) -> Iterator[T]:
             del item
     finally:
         stop.set()
-        thread.join()
-        close = getattr(it, "close", None)
-        if close is not None:
-            close()
+        if thread is not threading.current_thread():
+            thread.join()  # the producer closes the iterator before it ends
 
 
 _DONE = object()

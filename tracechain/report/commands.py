@@ -56,6 +56,7 @@ def _diagram_options(p: argparse.ArgumentParser) -> None:
 
 def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
+    from ..analyze.commands import add_interval_options, add_level_option
     from ..cli import _add_input_options
 
     r = subparsers.add_parser(
@@ -71,6 +72,7 @@ def register(subparsers) -> None:
     o.add_argument("--title", metavar="TEXT", help="title of the report")
     o.add_argument("--top", type=int, default=15, metavar="N", help="rows in the loss tables (default 15)")
     o.add_argument("--seed", type=int, default=0, help="seed of the interval draws (default 0)")
+    add_interval_options(o)
     o.add_argument("--order-test", action="store_true",
                    help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
                         "memory) and state the result among the assumptions")
@@ -93,7 +95,7 @@ def register(subparsers) -> None:
     t.add_argument("--fdr", type=float, default=0.05, metavar="Q", help="false discovery rate (default 0.05)")
     t.add_argument("--min-expected", type=float, default=5.0, metavar="N",
                    help="pool successors with an expected count below N (default 5)")
-    t.add_argument("--level", type=float, default=0.95, help="interval level (default 0.95)")
+    add_level_option(t)
     t.add_argument("--draws", type=int, default=1000, help="Dirichlet draws per side (default 1000)")
     t.add_argument("--seed", type=int, default=0, help="seed of the draws (default 0)")
     o = c.add_argument_group("output")
@@ -153,6 +155,17 @@ def _order_test(args):
         return None
 
 
+def _interval_options(args) -> dict:
+    """``level``/``intervals`` (and the sessions for the bootstrap) for the extended analysis."""
+    from ..analyze.commands import interval_method, sessions_from_args
+
+    method = interval_method(args)
+    opts = {"level": args.level, "intervals": method}
+    if method == "bootstrap":
+        opts["interval_sessions"] = sessions_from_args(args, "report --intervals bootstrap")
+    return opts
+
+
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
     from ..cli import EXIT_OK, build_chain
@@ -193,7 +206,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         doc = build_report(result, title=args.title, svg=None if args.no_diagram else svg,
                            diagram=None if args.no_diagram else diagram,
                            diagram_missing=None if args.no_diagram else missing, pseudonymizer=pseudo,
-                           top=args.top, seed=args.seed, order_test=order_table)
+                           top=args.top, seed=args.seed, order_test=order_table,
+                           extended_options=_interval_options(args))
         if args.html:
             written.append(write_output(args.html, render_html(doc)))
         if args.markdown:

@@ -32,12 +32,9 @@ def _subparsers_action(parser: argparse.ArgumentParser):
 
 
 def _privacy_options(p: argparse.ArgumentParser) -> None:
-    g = p.add_argument_group("session keys (personal data)")
-    k = g.add_mutually_exclusive_group()
-    k.add_argument("--salt", metavar="TEXT",
-                   help="salt of the keyed hash that pseudonymises session keys (default: a new random salt, "
-                        "stated in the report)")
-    k.add_argument("--raw-keys", action="store_true", help="show session keys as they are (not pseudonymised)")
+    from ..privacy import add_privacy_options
+
+    add_privacy_options(p)
 
 
 def _diagram_options(p: argparse.ArgumentParser) -> None:
@@ -113,9 +110,11 @@ def register(subparsers) -> None:
 
 # -- report ---------------------------------------------------------------------------------
 def _pseudonymizer(args):
-    from ..privacy import Pseudonymizer
+    from ..privacy import announce_salt, pseudonymizer_from_args
 
-    return Pseudonymizer(salt=args.salt, raw=args.raw_keys)
+    pseudo = pseudonymizer_from_args(args)
+    announce_salt(pseudo)
+    return pseudo
 
 
 def _diagram(result, args, groups):

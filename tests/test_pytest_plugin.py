@@ -271,3 +271,22 @@ def test_drawn_salt_gives_pseudonyms_and_is_written_nowhere(shop_project):
 
     assert re.search(r"k:[0-9a-f]{16}", text) and "'o2'" not in text and '"o2"' not in text
     assert "salt" not in text.lower()
+
+
+def test_dead_end_without_goals_says_that_a_named_goal_is_never_one(pytester):
+    # the goal Paid, not named, ends every session that reaches it: reported, with the way out;
+    # named (goals=...), it is no dead end (a goal is absorbing; common practice, no source)
+    pytester.makepyfile(test_goals=SHOP + '''
+
+def test_unnamed_goal(trace_recorder):
+    checkout("o1", ["Home", "Cart", "Paid"])
+    trace_recorder.assert_no_dead_ends()
+
+
+def test_named_goal(trace_recorder):
+    checkout("o1", ["Home", "Cart", "Paid"])
+    trace_recorder.assert_no_dead_ends(goals=["Paid"])
+''')
+    result = pytester.runpytest(*plugin_args())
+    result.assert_outcomes(passed=1, failed=1)
+    result.stdout.fnmatch_lines(["*dead end 'Paid'*", "*no goal is set*a goal is never a dead end once named*"])

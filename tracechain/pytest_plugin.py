@@ -217,7 +217,7 @@ class TraceRecorder:
             self._raw_key(finding_loc.session), None if ended else finding_loc.line, ended=ended, goals=goals)
 
     # -- assertions -------------------------------------------------------------------
-    def _run(self, rule: Any, options: Any, helper: str, goals: tuple[str, ...], explain) -> None:
+    def _run(self, rule: Any, options: Any, helper: str, goals: tuple[str, ...], explain, hint: str = "") -> None:
         __tracebackhide__ = True
         from .check.findings import Finding
         from .counts import Location
@@ -238,6 +238,8 @@ class TraceRecorder:
             lines = [f"{helper}: {len(issues)} problem{'s' if len(issues) != 1 else ''} in the recorded traces"]
             for i in issues:
                 lines.append(f"  {i.message}{explain(ctx, i)}")
+            if hint:
+                lines.append(hint)
             raise AssertionError("\n".join(lines))
 
     def assert_no_dead_ends(self, allow: Iterable[str] = (), goals: Iterable[str] | str | None = None) -> None:
@@ -249,7 +251,9 @@ class TraceRecorder:
             loc = ctx.edge_location(ctx.resolve(issue.states[0]), ctx.chain.end)
             return self._explain(ctx, loc, (issue.states[0], _END), g)
 
-        self._run(_rules_mod().DeadEndRule(), {"allow": frozenset(allow)}, "assert_no_dead_ends", g, explain)
+        hint = "" if g else ("  (no goal is set, so a goal state counts as a dead end here: a goal is never a dead "
+                             "end once named with goals=..., trace_recorder.goals or the ini option tracechain_goals)")
+        self._run(_rules_mod().DeadEndRule(), {"allow": frozenset(allow)}, "assert_no_dead_ends", g, explain, hint)
 
     def assert_goal_reachable(self, goal: Iterable[str] | str | None = None) -> None:
         """Each goal (default: every goal) occurs and can be reached from the start."""

@@ -111,3 +111,21 @@ def test_shipped_schema_carries_the_extended_schema_and_validates_bootstrap_outp
     assert main(["analyze", str(log[0]), "--goal", "Goal", "--extended", "--intervals", "bootstrap",
                  "--json", str(out), "-q"]) == 0
     jsonschema.Draft202012Validator(shipped).validate(json.loads(out.read_text()))
+
+
+@pytest.mark.parametrize("method,label", [("posterior", "Dirichlet posterior"), ("bootstrap", "session bootstrap")])
+def test_report_csv_names_the_method_beside_the_start_intervals(log, tmp_path, method, label):
+    import csv
+
+    out = tmp_path / "r.csv"
+    assert main(["report", str(log[0]), "--goal", "Goal", "--intervals", method, "--level", "0.8", "--seed", "4",
+                 "--csv", str(out)]) == 0
+    rows = list(csv.DictReader(out.read_text(encoding="utf-8").splitlines()))
+    start = [r for r in rows if r["role"] == "start"]
+    assert len(start) == 1 and start[0]["interval"] == f"80% {label}"
+    assert all(r["interval"] == "" for r in rows if r["role"] != "start")
+    chain = chain_of(log[1])
+    ref = (bootstrap_intervals(chain, log[1], level=0.8, draws=200, seed=4) if method == "bootstrap"
+           else dirichlet_intervals(chain, level=0.8, draws=200, seed=4))
+    assert float(start[0]["p_any_goal_low"]) == pytest.approx(ref.conversion.low, rel=1e-5)
+    assert float(start[0]["expected_steps_high"]) == pytest.approx(ref.steps.high, rel=1e-5)

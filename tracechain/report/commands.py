@@ -198,6 +198,10 @@ def cmd_report(args: argparse.Namespace) -> int:
         if missing:
             print(f"tracechain: warning: no diagram in the report: {missing}", file=sys.stderr)
     order_table = _order_test(args) if args.order_test and (args.html or args.markdown) else None
+    from .html import load_extended
+
+    ext_opts = _interval_options(args)
+    ext, _why = load_extended(result, seed=args.seed, **ext_opts)  # once, for the report and the CSV
     written = []
     if args.svg:
         written.append(write_output(args.svg, svg))
@@ -206,14 +210,14 @@ def cmd_report(args: argparse.Namespace) -> int:
                            diagram=None if args.no_diagram else diagram,
                            diagram_missing=None if args.no_diagram else missing, pseudonymizer=pseudo,
                            top=args.top, seed=args.seed, order_test=order_table,
-                           extended_options=_interval_options(args))
+                           extended=ext if ext is not None else "auto", extended_options=ext_opts)
         if args.html:
             written.append(write_output(args.html, render_html(doc)))
         if args.markdown:
             ref = args.html or args.svg
             written.append(write_output(args.markdown, render_markdown(doc, figure_ref=ref if ref != "-" else None)))
     if args.csv:
-        written.append(write_output(args.csv, render_csv(result)))
+        written.append(write_output(args.csv, render_csv(result, extended=ext)))
     for w in written:
         if w != "-":
             print(f"wrote {w}", file=sys.stderr)

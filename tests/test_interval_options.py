@@ -129,3 +129,10 @@ def test_report_csv_names_the_method_beside_the_start_intervals(log, tmp_path, m
            else dirichlet_intervals(chain, level=0.8, draws=200, seed=4))
     assert float(start[0]["p_any_goal_low"]) == pytest.approx(ref.conversion.low, rel=1e-5)
     assert float(start[0]["expected_steps_high"]) == pytest.approx(ref.steps.high, rel=1e-5)
+
+
+def test_interval_options_without_extended_warn(log, capsys):
+    assert main(["analyze", str(log[0]), "--goal", "Goal", "--intervals", "bootstrap", "-q"]) == 0
+    assert "apply to the intervals of --extended" in capsys.readouterr().err
+    assert main(["analyze", str(log[0]), "--goal", "Goal", "-q"]) == 0
+    assert "--extended" not in capsys.readouterr().err

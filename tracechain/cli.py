@@ -307,6 +307,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings)
     ext = None
+    if not args.extended and (args.intervals != "posterior" or args.level != 0.95):
+        print("tracechain: warning: --intervals and --level apply to the intervals of --extended; add it to see them",
+              file=sys.stderr)
     if args.extended:
         from .analyze.commands import interval_method, sessions_from_args
         from .analyze.extended import extended_analysis

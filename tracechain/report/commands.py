@@ -200,8 +200,10 @@ def cmd_report(args: argparse.Namespace) -> int:
     order_table = _order_test(args) if args.order_test and (args.html or args.markdown) else None
     from .html import load_extended
 
-    ext_opts = _interval_options(args)
-    ext, _why = load_extended(result, seed=args.seed, **ext_opts)  # once, for the report and the CSV
+    ext_opts, ext = {}, None
+    if args.html or args.markdown or args.csv:
+        ext_opts = _interval_options(args)
+        ext, _why = load_extended(result, seed=args.seed, **ext_opts)  # once, for the report and the CSV
     written = []
     if args.svg:
         written.append(write_output(args.svg, svg))

@@ -253,6 +253,8 @@ def test_session_keys_are_pseudonymised_by_default_in_messages_and_every_report(
         for raw in ("'o2'", "'o3'", '"o2"', '"o3"', ">o2<"):
             assert raw not in text, (report, raw)
         assert p("o2") in text and p("o3") in text, report
+        assert "session keys are pseudonymised" in text and "--tracechain-raw-keys" in text, report  # says so
+        assert "given with --tracechain-salt" in text  # the plugin's own option names
     out = result.stdout.str()
     assert "'o2'" not in out and "'o3'" not in out and "'o5'" not in out
     result.stdout.fnmatch_lines([
@@ -262,15 +264,18 @@ def test_session_keys_are_pseudonymised_by_default_in_messages_and_every_report(
     result.stdout.fnmatch_lines([f"*session '{p('o5')}': [[]start] -> Home -> Cart -> [[]end]"])
 
 
-def test_drawn_salt_gives_pseudonyms_and_is_written_nowhere(shop_project):
+def test_drawn_salt_gives_pseudonyms_and_is_written_nowhere(shop_project, monkeypatch):
+    import tracechain.privacy as privacy
+    from tracechain.privacy import Pseudonymizer
+
+    drawn = "c0ffee00" * 4
+    monkeypatch.setattr(privacy.secrets, "token_hex", lambda n=16: drawn)  # the run's salt, known here
     shop_project.makepyfile(test_shop_bad=FAILING)
-    result = shop_project.runpytest(*plugin_args(), "--tracechain-report", "out/t.sarif")
+    result = shop_project.runpytest(*plugin_args(), "--tracechain-report", "out/t.sarif")  # in-process run
     result.assert_outcomes(failed=3)
     text = (shop_project.path / "out" / "t.sarif").read_text(encoding="utf-8")
-    import re
-
-    assert re.search(r"k:[0-9a-f]{16}", text) and "'o2'" not in text and '"o2"' not in text
-    assert "salt" not in text.lower()
+    assert Pseudonymizer(salt=drawn)("o2") in text and "'o2'" not in text and '"o2"' not in text
+    assert drawn not in text and drawn not in result.stdout.str() and drawn not in result.stderr.str()
 
 
 def test_dead_end_without_goals_says_that_a_named_goal_is_never_one(pytester):

@@ -83,10 +83,11 @@ class RecordHandler(logging.Handler):
 class _Collector:
     """The helpers' results over a test run, for the optional report."""
 
-    def __init__(self) -> None:
+    def __init__(self, keys: Any = None) -> None:
         self.outcomes: list[Any] = []
         self.descriptors: list[Any] = []
         self.started = time.time()
+        self.keys = keys
 
     def add(self, rule: Any, name: str, findings: list, seconds: float) -> None:
         from .check.findings import RuleOutcome
@@ -101,8 +102,13 @@ class _Collector:
     def result(self):
         from .check.findings import CheckResult
 
+        notes: tuple[str, ...] = ()
+        if self.keys is not None:
+            from .check.command import key_note
+
+            notes = (key_note(self.keys, "--tracechain-raw-keys", "--tracechain-salt", "--tracechain-salt TEXT"),)
         return CheckResult(outcomes=tuple(self.outcomes), descriptors=tuple(self.descriptors), fail_on="error",
-                           started=self.started, seconds=time.time() - self.started)
+                           started=self.started, seconds=time.time() - self.started, notes=notes)
 
 
 class TraceRecorder:
@@ -402,7 +408,7 @@ def pytest_configure(config: pytest.Config) -> None:
     path = _report_path(config)
     if path is not None:
         _report_format(path)  # fail early on a bad name
-        config.stash[_COLLECTOR] = _Collector()
+        config.stash[_COLLECTOR] = _Collector(keys=_keys(config))
 
 
 def pytest_sessionfinish(session: pytest.Session, exitstatus: int) -> None:

@@ -208,14 +208,18 @@ def cmd_check(args: argparse.Namespace) -> int:
     return result.exit_status
 
 
-def key_note(keys) -> str:
+def key_note(keys, raw_option: str = "--raw-keys", salt_option: str = "--salt",
+             stable: str = "--salt or --salt-file") -> str:
     """How findings show session keys (a note in every report format; never the salt)."""
     if keys.raw:
-        return "session keys are shown raw (--raw-keys); they may identify people"
-    how = ("with a salt drawn for this run (not stored; --salt or --salt-file give stable pseudonyms)"
-           if keys.generated and keys.salt_file is None else
-           f"with the salt {'in ' + keys.salt_file if keys.salt_file else 'given with --salt'} (not stored here)")
-    return f"session keys are pseudonymised (k: + HMAC-SHA256) {how}; --raw-keys shows them as they are"
+        return f"session keys are shown raw ({raw_option}); they may identify people"
+    if keys.salt_file is not None:
+        how = f"with the salt in {keys.salt_file} (not stored here)"
+    elif keys.generated:
+        how = f"with a salt drawn for this run (not stored; for stable pseudonyms use {stable})"
+    else:
+        how = f"with the salt given with {salt_option} (not stored here)"
+    return f"session keys are pseudonymised (k: + HMAC-SHA256) {how}; {raw_option} shows them as they are"
 
 
 def cmd_snapshot(args: argparse.Namespace) -> int:

@@ -33,7 +33,8 @@ def check(tmp_path, capsys):
 
     def run(trace, rules_text: str, *extra: str):
         rules = write_rules(tmp_path / "rules.yaml", rules_text)
-        status = cli_main(["check", str(trace), "--rules", str(rules), "--output-format", "json", *extra])
+        keys = [] if any(x in ("--salt", "--salt-file") for x in extra) else ["--raw-keys"]  # keys checked raw here
+        status = cli_main(["check", str(trace), "--rules", str(rules), "--output-format", "json", *keys, *extra])
         out, err = capsys.readouterr()
         doc = json.loads(out) if status in (0, 1) else None
         return status, doc, err

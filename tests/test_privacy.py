@@ -35,13 +35,14 @@ def test_stable_per_salt_and_different_across_salts():
     assert not any(k and k in x for k, x in zip(keys, pa))
 
 
-def test_generated_salt_is_random_and_stated():
+def test_generated_salt_is_random_and_never_stated():
     p, q = Pseudonymizer(), Pseudonymizer()
     assert p.generated and q.generated
     assert re.fullmatch(r"[0-9a-f]{32}", p.salt) and p.salt != q.salt
-    assert p.salt in p.statement() and "secrets" in p.statement()
+    # the statement says where the salt is, never the salt (a report is a shared artefact)
+    assert p.salt not in p.statement() and "standard error" in p.statement() and "secrets" in p.statement()
     given = Pseudonymizer(salt="team-salt")
-    assert not given.generated and "--salt" in given.statement() and "team-salt" in given.statement()
+    assert not given.generated and "--salt" in given.statement() and "team-salt" not in given.statement()
 
 
 def test_raw_mode_passes_keys_and_says_so():
@@ -80,7 +81,7 @@ def test_reports_pseudonymise_keys_by_default(personal_log, tmp_path, capsys):
     h = html.read_text(encoding="utf-8")
     # the dead end's example session is the first visit that ended at Returns: person0
     assert p("person0@example.org") in h
-    assert "pseudonymised" in h and "fixed-salt" in h
+    assert "pseudonymised" in h and "fixed-salt" not in h and "fixed-salt" not in md.read_text(encoding="utf-8")
     assert DATA_PROTECTION_CAUTION.split(",")[0] in h
     m = md.read_text(encoding="utf-8")
     assert "pseudonymised" in m and "data\\-protection" not in m  # '-' is not escaped mid-line
@@ -101,3 +102,46 @@ def test_salt_and_raw_keys_exclude_each_other(personal_log, tmp_path, capsys):
         _run("report", personal_log, "--html", tmp_path / "r.html", "--raw-keys", "--salt", "x")
     assert err.value.code == 2
     assert "not allowed with" in capsys.readouterr().err
+
+
+def test_drawn_salt_goes_to_standard_error_only(personal_log, tmp_path, capsys):
+    html, md = tmp_path / "r.html", tmp_path / "r.md"
+    assert _run("report", personal_log, "--goal", "Paid", "--html", html, "--markdown", md, "--no-diagram") == 0
+    err = capsys.readouterr().err
+    salt = re.search(r"pseudonymised with the salt ([0-9a-f]{32})", err).group(1)
+    h, m = html.read_text(encoding="utf-8"), md.read_text(encoding="utf-8")
+    assert salt not in h and salt not in m
+    assert "printed to standard error" in h and "printed to standard error" in m  # and the report says where
+    # the printed salt reproduces the report's pseudonyms
+    assert Pseudonymizer(salt=salt)("person0@example.org") in h
+
+
+def test_salt_file_is_created_private_reused_and_named_not_copied(personal_log, tmp_path, capsys):
+    import os
+    import stat
+
+    salt_file = tmp_path / "keys" / "salt.txt"
+    salt_file.parent.mkdir()
+    runs = []
+    for k in range(2):
+        html = tmp_path / f"r{k}.html"
+        assert _run("report", personal_log, "--goal", "Paid", "--html", html, "--salt-file", salt_file,
+                    "--no-diagram") == 0
+        err = capsys.readouterr().err
+        assert "pseudonymised with the salt" not in err  # nothing printed: the file holds it
+        runs.append(html.read_text(encoding="utf-8"))
+    salt = salt_file.read_text(encoding="utf-8").strip()
+    assert re.fullmatch(r"[0-9a-f]{32}", salt)
+    assert stat.S_IMODE(os.stat(salt_file).st_mode) == 0o600  # readable by the owner only
+    p = Pseudonymizer(salt=salt)
+    for h in runs:
+        assert salt not in h and str(salt_file) in h
+        assert p("person0@example.org") in h  # same pseudonyms in both runs
+
+
+def test_empty_salt_file_is_a_usage_error(personal_log, tmp_path, capsys):
+    empty = tmp_path / "salt"
+    empty.write_text("\n", encoding="utf-8")
+    assert _run("report", personal_log, "--html", tmp_path / "r.html", "--salt-file", empty) == 2
+    err = capsys.readouterr().err
+    assert "--salt-file" in err and "empty" in err and "Traceback" not in err

@@ -108,7 +108,7 @@ def test_passing_run(shop_project):
 
 def test_failing_run_shows_the_offending_paths(shop_project):
     shop_project.makepyfile(test_shop_bad=FAILING)
-    result = shop_project.runpytest(*plugin_args())
+    result = shop_project.runpytest(*plugin_args(), "--tracechain-raw-keys")
     result.assert_outcomes(failed=3)
     result.stdout.fnmatch_lines([
         "*transition 'Cart' -> 'Refund' is not an allowed transition (1 time; first in session 'o2')*",
@@ -163,6 +163,7 @@ def test_against_the_rules_file(trace_recorder):
     checkout("o2", ["Home", "Cart", "Home"])
     trace_recorder.check("rules.yaml")
 ''')
+    pytester.makeini("[pytest]\ntracechain_raw_keys = true\n")
     result = pytester.runpytest(*plugin_args())
     result.assert_outcomes(failed=1)
     # o2 ends in Home after Cart -> Home; Cart -> Home is outside the table
@@ -236,3 +237,61 @@ def test_bad_report_name_is_a_usage_error(shop_project):
     result = shop_project.runpytest(*plugin_args(), "--tracechain-report=traces.txt")
     assert result.ret == pytest.ExitCode.USAGE_ERROR
     result.stderr.fnmatch_lines(["*use a .sarif, .xml or .json file name*"])
+
+
+def test_session_keys_are_pseudonymised_by_default_in_messages_and_every_report(shop_project):
+    # the default of every tracechain output: k: + 16 hex digits of HMAC-SHA256(salt, key) (RFC 2104;
+    # the HMAC itself is checked against RFC 4231 in test_privacy.py); --tracechain-salt fixes the salt
+    from tracechain.privacy import Pseudonymizer
+
+    p = Pseudonymizer(salt="s")
+    shop_project.makepyfile(test_shop_bad=FAILING)
+    for report in ("out/t.sarif", "out/t.xml", "out/t.json"):
+        result = shop_project.runpytest(*plugin_args(), "--tracechain-salt", "s", "--tracechain-report", report)
+        result.assert_outcomes(failed=3)
+        text = (shop_project.path / report).read_text(encoding="utf-8")
+        for raw in ("'o2'", "'o3'", '"o2"', '"o3"', ">o2<"):
+            assert raw not in text, (report, raw)
+        assert p("o2") in text and p("o3") in text, report
+        assert "session keys are pseudonymised" in text and "--tracechain-raw-keys" in text, report  # says so
+        assert "given with --tracechain-salt" in text  # the plugin's own option names
+    out = result.stdout.str()
+    assert "'o2'" not in out and "'o3'" not in out and "'o5'" not in out
+    result.stdout.fnmatch_lines([
+        f"*transition 'Cart' -> 'Refund' is not an allowed transition (1 time; first in session '{p('o2')}')*",
+        f"*session '{p('o2')}': [[]start] -> Home -> Cart -> Refund",  # the path is still found
+    ])
+    result.stdout.fnmatch_lines([f"*session '{p('o5')}': [[]start] -> Home -> Cart -> [[]end]"])
+
+
+def test_drawn_salt_gives_pseudonyms_and_is_written_nowhere(shop_project, monkeypatch):
+    import tracechain.privacy as privacy
+    from tracechain.privacy import Pseudonymizer
+
+    drawn = "c0ffee00" * 4
+    monkeypatch.setattr(privacy.secrets, "token_hex", lambda n=16: drawn)  # the run's salt, known here
+    shop_project.makepyfile(test_shop_bad=FAILING)
+    result = shop_project.runpytest(*plugin_args(), "--tracechain-report", "out/t.sarif")  # in-process run
+    result.assert_outcomes(failed=3)
+    text = (shop_project.path / "out" / "t.sarif").read_text(encoding="utf-8")
+    assert Pseudonymizer(salt=drawn)("o2") in text and "'o2'" not in text and '"o2"' not in text
+    assert drawn not in text and drawn not in result.stdout.str() and drawn not in result.stderr.str()
+
+
+def test_dead_end_without_goals_says_that_a_named_goal_is_never_one(pytester):
+    # the goal Paid, not named, ends every session that reaches it: reported, with the way out;
+    # named (goals=...), it is no dead end (a goal is absorbing; common practice, no source)
+    pytester.makepyfile(test_goals=SHOP + '''
+
+def test_unnamed_goal(trace_recorder):
+    checkout("o1", ["Home", "Cart", "Paid"])
+    trace_recorder.assert_no_dead_ends()
+
+
+def test_named_goal(trace_recorder):
+    checkout("o1", ["Home", "Cart", "Paid"])
+    trace_recorder.assert_no_dead_ends(goals=["Paid"])
+''')
+    result = pytester.runpytest(*plugin_args())
+    result.assert_outcomes(passed=1, failed=1)
+    result.stdout.fnmatch_lines(["*dead end 'Paid'*", "*no goal is set*a goal is never a dead end once named*"])

@@ -94,7 +94,8 @@ def check_against(tmp_path, capsys, snap):
         base, _doc = snap(baseline_sessions, "--goal", "Paid")
         trace = write_sessions(tmp_path / "now.jsonl", SHOP)
         rules = write_rules(tmp_path / "rules.yaml", rules_text)
-        status = cli_main(["check", trace, "--rules", rules, "--baseline", base, "--output-format", "json", *extra])
+        status = cli_main(["check", trace, "--rules", rules, "--baseline", base, "--output-format", "json",
+                           "--raw-keys", *extra])
         out, err = capsys.readouterr()
         return status, (json.loads(out) if status in (0, 1) else None), err
 

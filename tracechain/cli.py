@@ -170,6 +170,9 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--extended", action="store_true",
                    help="also report times, removal effects, most likely paths and intervals (see --seed)")
     o.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
+    from .analyze.commands import add_interval_options
+
+    add_interval_options(o)
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
     f.set_defaults(handler=cmd_formats)
@@ -304,10 +307,17 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings)
     ext = None
+    if not args.extended and (args.intervals != "posterior" or args.level != 0.95):
+        print("tracechain: warning: --intervals and --level apply to the intervals of --extended; add it to see them",
+              file=sys.stderr)
     if args.extended:
+        from .analyze.commands import interval_method, sessions_from_args
         from .analyze.extended import extended_analysis
 
-        ext = extended_analysis(chain, seed=args.seed, top=args.top or None)
+        method = interval_method(args)
+        boot = sessions_from_args(args, "analyze --intervals bootstrap") if method == "bootstrap" else None
+        ext = extended_analysis(chain, seed=args.seed, top=args.top or None, level=args.level, intervals=method,
+                                interval_sessions=boot)
     written = []
     if args.json:
         written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))

@@ -30,6 +30,12 @@ ini option ``tracechain_goals`` (one per line). With ``--tracechain-report FILE`
 option ``tracechain_report``) the helpers' results for the whole run are written as SARIF
 (``.sarif``), JUnit XML (``.xml``) or JSON (``.json``): one test case per helper call.
 
+Session keys: every message and report shows them pseudonymised (``k:`` and 16 hexadecimal
+digits of HMAC-SHA256 under a salt drawn once per test run, never written anywhere), the
+default of every tracechain output; ``--tracechain-raw-keys`` (or the ini option
+``tracechain_raw_keys = true``) shows them as recorded, ``--tracechain-salt TEXT`` gives stable
+pseudonyms across runs.
+
 Registered through the ``pytest11`` entry point; in a checkout where it is not installed,
 enable it with ``-p tracechain.pytest_plugin``.
 """
@@ -77,10 +83,11 @@ class RecordHandler(logging.Handler):
 class _Collector:
     """The helpers' results over a test run, for the optional report."""
 
-    def __init__(self) -> None:
+    def __init__(self, keys: Any = None) -> None:
         self.outcomes: list[Any] = []
         self.descriptors: list[Any] = []
         self.started = time.time()
+        self.keys = keys
 
     def add(self, rule: Any, name: str, findings: list, seconds: float) -> None:
         from .check.findings import RuleOutcome
@@ -95,16 +102,24 @@ class _Collector:
     def result(self):
         from .check.findings import CheckResult
 
+        notes: tuple[str, ...] = ()
+        if self.keys is not None:
+            from .check.command import key_note
+
+            notes = (key_note(self.keys, "--tracechain-raw-keys", "--tracechain-salt", "--tracechain-salt TEXT"),)
         return CheckResult(outcomes=tuple(self.outcomes), descriptors=tuple(self.descriptors), fail_on="error",
-                           started=self.started, seconds=time.time() - self.started)
+                           started=self.started, seconds=time.time() - self.started, notes=notes)
 
 
 class TraceRecorder:
     """Events recorded during one test, and assertions on the chain they make."""
 
     def __init__(self, name: str = "test", goals: Iterable[str] = (), session_field: str = "session",
-                 event_field: str = "event", collector: _Collector | None = None):
+                 event_field: str = "event", collector: _Collector | None = None, keys=None):
+        from .privacy import Pseudonymizer
+
         self.name = name
+        self.keys = keys if keys is not None else Pseudonymizer()  # how messages and reports show session keys
         self.goals = list(goals)
         self._sessions: list[str] = []
         self._events: list[str] = []
@@ -167,7 +182,7 @@ class TraceRecorder:
         counts = count_chunks([chunk], ShapeOptions(goals=goals))
         present = [g for g in goals if g in set(counts.states)]
         chain = Chain.from_counts(counts, goals=present)
-        ctx = CheckContext(chain, goals=goals)
+        ctx = CheckContext(chain, goals=goals, keys=self.keys)
         self._cache = (key, ctx)
         return ctx
 
@@ -194,15 +209,21 @@ class TraceRecorder:
             steps = steps[:12] + ["..."] + steps[-12:]
         return " -> ".join(_show(x) for x in steps)
 
+    def _raw_key(self, shown: str) -> str:
+        """The recorded key behind a key as findings show it."""
+        if getattr(self.keys, "raw", False):
+            return shown
+        return {self.keys(s): s for s in dict.fromkeys(self._sessions)}.get(shown, shown)
+
     def _explain(self, ctx, finding_loc, transition: tuple[str, str] | None, goals: tuple[str, ...]) -> str:
         if finding_loc is None:
             return ""
         ended = transition is not None and transition[1] == _END
         return f"\n    session {finding_loc.session!r}: " + self.path(
-            finding_loc.session, None if ended else finding_loc.line, ended=ended, goals=goals)
+            self._raw_key(finding_loc.session), None if ended else finding_loc.line, ended=ended, goals=goals)
 
     # -- assertions -------------------------------------------------------------------
-    def _run(self, rule: Any, options: Any, helper: str, goals: tuple[str, ...], explain) -> None:
+    def _run(self, rule: Any, options: Any, helper: str, goals: tuple[str, ...], explain, hint: str = "") -> None:
         __tracebackhide__ = True
         from .check.findings import Finding
         from .counts import Location
@@ -223,6 +244,8 @@ class TraceRecorder:
             lines = [f"{helper}: {len(issues)} problem{'s' if len(issues) != 1 else ''} in the recorded traces"]
             for i in issues:
                 lines.append(f"  {i.message}{explain(ctx, i)}")
+            if hint:
+                lines.append(hint)
             raise AssertionError("\n".join(lines))
 
     def assert_no_dead_ends(self, allow: Iterable[str] = (), goals: Iterable[str] | str | None = None) -> None:
@@ -234,7 +257,9 @@ class TraceRecorder:
             loc = ctx.edge_location(ctx.resolve(issue.states[0]), ctx.chain.end)
             return self._explain(ctx, loc, (issue.states[0], _END), g)
 
-        self._run(_rules_mod().DeadEndRule(), {"allow": frozenset(allow)}, "assert_no_dead_ends", g, explain)
+        hint = "" if g else ("  (no goal is set, so a goal state counts as a dead end here: a goal is never a dead "
+                             "end once named with goals=..., trace_recorder.goals or the ini option tracechain_goals)")
+        self._run(_rules_mod().DeadEndRule(), {"allow": frozenset(allow)}, "assert_no_dead_ends", g, explain, hint)
 
     def assert_goal_reachable(self, goal: Iterable[str] | str | None = None) -> None:
         """Each goal (default: every goal) occurs and can be reached from the start."""
@@ -251,7 +276,8 @@ class TraceRecorder:
                 return self._explain(ctx, ctx.state_location(gi), None, ())
             shown = list(self.sessions())[:3]
             more = f"\n    ... {len(self.sessions()) - 3} more sessions" if len(self.sessions()) > 3 else ""
-            return "".join(f"\n    session {s!r}: {self.path(s, ended=True, goals=all_goals)}" for s in shown) + more
+            return "".join(f"\n    session {self.keys(s)!r}: {self.path(s, ended=True, goals=all_goals)}"
+                           for s in shown) + more
 
         self._run(_rules_mod().GoalReachableRule(), {"goals": g}, "assert_goal_reachable", all_goals, explain)
 
@@ -321,6 +347,19 @@ def _relocate(issue, where: tuple[str, int], Location):
 # -- pytest hooks -----------------------------------------------------------------------
 
 _COLLECTOR = pytest.StashKey[_Collector]()
+_KEYS = pytest.StashKey[Any]()
+
+
+def _keys(config: pytest.Config):
+    """One pseudonymiser for the whole run (the same key gets the same pseudonym in every test)."""
+    got = config.stash.get(_KEYS, None)
+    if got is None:
+        from .privacy import Pseudonymizer
+
+        raw = bool(config.getoption("tracechain_raw_keys") or config.getini("tracechain_raw_keys"))
+        got = Pseudonymizer(salt=config.getoption("tracechain_salt"), raw=raw)
+        config.stash[_KEYS] = got
+    return got
 
 
 def pytest_addoption(parser: pytest.Parser) -> None:
@@ -332,6 +371,13 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                   default="")
     parser.addini("tracechain_goals", "default goal states of trace_recorder (one per line)", type="linelist",
                   default=[])
+    group.addoption("--tracechain-raw-keys", action="store_true", default=False,
+                    help="show session keys as recorded in trace_recorder messages and reports (default: "
+                         "pseudonymised)")
+    group.addoption("--tracechain-salt", metavar="TEXT", default=None,
+                    help="salt of the pseudonyms of session keys (default: drawn for the run, not stored)")
+    parser.addini("tracechain_raw_keys", "show session keys as recorded (default: pseudonymised)", type="bool",
+                  default=False)
     parser.addini("tracechain_session_field", "log-record attribute holding the session key", default="session")
     parser.addini("tracechain_event_field", "log-record attribute holding the event name", default="event")
     parser.addini("tracechain_log_level", "root logger level while a trace_recorder test runs (default: unchanged)",
@@ -362,7 +408,7 @@ def pytest_configure(config: pytest.Config) -> None:
     path = _report_path(config)
     if path is not None:
         _report_format(path)  # fail early on a bad name
-        config.stash[_COLLECTOR] = _Collector()
+        config.stash[_COLLECTOR] = _Collector(keys=_keys(config))
 
 
 def pytest_sessionfinish(session: pytest.Session, exitstatus: int) -> None:
@@ -391,7 +437,7 @@ def trace_recorder(request: pytest.FixtureRequest) -> Iterator[TraceRecorder]:
         name=request.node.nodeid, goals=config.getini("tracechain_goals"),
         session_field=config.getini("tracechain_session_field") or "session",
         event_field=config.getini("tracechain_event_field") or "event",
-        collector=config.stash.get(_COLLECTOR, None),
+        collector=config.stash.get(_COLLECTOR, None), keys=_keys(config),
     )
     root = logging.getLogger()
     root.addHandler(rec.handler)

@@ -58,6 +58,40 @@ def _level(text: str) -> float:
     return v
 
 
+def add_level_option(group, default: float = 0.95) -> None:
+    """The ``--level`` of every command that shows intervals (one definition for all)."""
+    group.add_argument("--level", type=_level, default=default, metavar="LEVEL",
+                       help=f"interval level, between 0 and 1 (default {default:g})")
+
+
+def add_interval_options(group) -> None:
+    """``--level`` and ``--intervals posterior|bootstrap`` (analyze, report)."""
+    add_level_option(group)
+    group.add_argument("--intervals", choices=("posterior", "bootstrap"), default="posterior",
+                       help="how intervals are made: 'posterior' draws each row from its Dirichlet posterior "
+                            "(default); 'bootstrap' resamples whole sessions (reads the input again, holds the "
+                            "sessions in memory, native engine only); both seeded with --seed")
+
+
+def interval_method(args) -> str:
+    """The analysis-side name of ``--intervals`` ("dirichlet" or "bootstrap")."""
+    return "bootstrap" if getattr(args, "intervals", "posterior") == "bootstrap" else "dirichlet"
+
+
+def sessions_from_args(args, what: str):
+    """The input's shaped sessions in memory (native engine only)."""
+    from ..cli import native_only, progress_from_args, shape_from_args
+    from ..ingest.base import ReadOptions
+    from ..pipeline import read_events
+    from .order import session_sequences
+
+    native_only(args, what)
+    shape, fields, _, _ = shape_from_args(args)
+    return session_sequences(read_events(args.paths, format=args.format,
+                                         options=ReadOptions(fields=fields, strict=args.strict),
+                                         progress=progress_from_args(args)), shape)
+
+
 def register(subparsers) -> None:
     """Add ``order``, ``simulate`` and ``whatif`` to the ``tracechain`` subparsers action."""
     from ..cli import _add_input_options
@@ -106,7 +140,7 @@ def register(subparsers) -> None:
                    help="route SHARE (0-1 or a percentage) of S's exits to TARGET")
     w.add_argument("--draws", type=_positive_int, default=200, metavar="N", help="posterior draws (default 200; 0: no intervals)")
     w.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
-    w.add_argument("--level", type=_level, default=0.95, help="interval level (default 0.95)")
+    add_level_option(w)
     w.add_argument("--prior", type=float, default=0.5, help="Dirichlet prior per cell (default 0.5, Jeffreys)")
     w.set_defaults(handler=cmd_whatif, edits=None)
 

@@ -10,8 +10,8 @@
 * the most likely path from the start to each goal (:mod:`.paths`);
 * for a chain without absorbing states: the stationary distribution, mean recurrence
   times and entropy rate (:mod:`.stationary`);
-* Dirichlet-posterior intervals for the conversion from the start and the expected steps
-  (:mod:`.uncertainty`);
+* intervals for the conversion from the start and the expected steps, from the Dirichlet
+  posterior or a bootstrap over sessions (:mod:`.uncertainty`);
 * with sessions: the most common observed paths and the least likely sessions
   (:mod:`.paths`, :mod:`.surprise`).
 
@@ -37,7 +37,7 @@ from .paths import common_paths, most_likely_paths
 from .stationary import stationary_analysis
 from .surprise import surprise
 from .timing import state_gaps, timing_analysis
-from .uncertainty import Interval, dirichlet_intervals
+from .uncertainty import METHOD_NAMES, Interval, bootstrap_intervals, dirichlet_intervals
 
 __all__ = ["ExtendedAnalysis", "extended_analysis", "extended_document", "extended_lines", "EXTENDED_SCHEMA"]
 
@@ -119,6 +119,7 @@ class ExtendedAnalysis:
     common_paths: tuple[CommonPathRow, ...] = ()
     least_likely: tuple[SurpriseRow, ...] = ()
     notes: tuple[str, ...] = field(default=())
+    interval_method: str = "dirichlet"
 
 
 def _with_counts(chain: Chain, counts: TransitionCounts | None) -> Chain:
@@ -133,7 +134,8 @@ def _with_counts(chain: Chain, counts: TransitionCounts | None) -> Chain:
 
 
 def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sessions=None, *, level: float = 0.95,
-                      seed: int = 0, draws: int | None = None, top: int = 10, prior: float = 0.5) -> ExtendedAnalysis:
+                      seed: int = 0, draws: int | None = None, top: int = 10, prior: float = 0.5,
+                      intervals: str = "dirichlet", interval_sessions=None) -> ExtendedAnalysis:
     """Run the cheap extended analyses of ``chain``.
 
     Parameters
@@ -156,11 +158,19 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
         Rows of the removal-effect, common-path and least-likely tables.
     prior : float
         Dirichlet prior concentration.
+    intervals : str
+        ``"dirichlet"`` (the row-wise Dirichlet posterior, default) or ``"bootstrap"``
+        (resampling whole sessions; needs ``sessions`` or ``interval_sessions``).
+    interval_sessions : Sessions or sequence of sequences of str, optional
+        Sessions used by the bootstrap only (no observed paths or session keys in the
+        result); default ``sessions``.
 
     Returns
     -------
     ExtendedAnalysis
     """
+    if intervals not in METHOD_NAMES:
+        raise AnalysisError(f"unknown interval method {intervals!r} (one of: {', '.join(METHOD_NAMES)})")
     chain = _with_counts(chain, counts)
     lab = chain.label
     notes: list[str] = []
@@ -225,7 +235,13 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
             m = len(StartBlock(chain.P, chain.start, chain.absorbing_mask).T)
             draws = 200 if m <= DENSE_MAX else 20
         try:
-            u = dirichlet_intervals(chain, level=level, draws=draws, seed=seed, prior=prior)
+            if intervals == "bootstrap":
+                boot = interval_sessions if interval_sessions is not None else sessions
+                if boot is None:
+                    raise AnalysisError("the session bootstrap needs the sessions")
+                u = bootstrap_intervals(chain, boot, level=level, draws=draws, seed=seed)
+            else:
+                u = dirichlet_intervals(chain, level=level, draws=draws, seed=seed, prior=prior)
         except AnalysisError as err:
             notes.append(f"no intervals: {err}")
         else:
@@ -248,16 +264,17 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
         dwell=dwell, time_from_start=_num(t_start), time_to_goal=t_goal, removal=removal, removal_exact=removal_exact,
         likely_paths=paths, stationary=stat, entropy_rate_bits=H, period=period, conversion_interval=conv_i,
         steps_interval=steps_i, level=float(level), draws=int(used_draws), seed=int(seed),
-        prior=float(prior) if used_draws else None, common_paths=cp, least_likely=ll, notes=tuple(dict.fromkeys(notes)),
+        prior=float(prior) if used_draws and intervals == "dirichlet" else None, common_paths=cp, least_likely=ll,
+        notes=tuple(dict.fromkeys(notes)), interval_method=intervals,
     )
 
 
 # -- JSON ---------------------------------------------------------------------------------
-def _interval_doc(iv: Interval | None):
+def _interval_doc(iv: Interval | None, method: str = "dirichlet"):
     if iv is None:
         return None
     return {"estimate": _num(iv.estimate), "low": _num(iv.low), "high": _num(iv.high), "mean": _num(iv.mean),
-            "draws": int(iv.draws)}
+            "draws": int(iv.draws), "method": method}
 
 
 def extended_document(ext: ExtendedAnalysis) -> dict:
@@ -284,13 +301,14 @@ def extended_document(ext: ExtendedAnalysis) -> dict:
             "period": ext.period,
         },
         "intervals": {
-            "method": "dirichlet",
+            "method": ext.interval_method,
+            "method_name": METHOD_NAMES[ext.interval_method],
             "level": float(ext.level),
             "draws": int(ext.draws),
             "seed": int(ext.seed),
             "prior": _num(ext.prior),
-            "conversion": _interval_doc(ext.conversion_interval),
-            "expected_steps": _interval_doc(ext.steps_interval),
+            "conversion": _interval_doc(ext.conversion_interval, ext.interval_method),
+            "expected_steps": _interval_doc(ext.steps_interval, ext.interval_method),
         },
         "common_paths": [{"states": list(c.states), "sessions": int(c.sessions), "share": _num(c.share),
                           "converted": bool(c.converted), "conversion_share": _num(c.conversion_share)}
@@ -312,10 +330,11 @@ _INTERVAL = {
         {"type": "null"},
         {
             "type": "object",
-            "required": ["estimate", "low", "high", "mean", "draws"],
+            "required": ["estimate", "low", "high", "mean", "draws", "method"],
             "additionalProperties": False,
             "properties": {"estimate": _NUM, "low": _NUM, "high": _NUM, "mean": _NUM,
-                           "draws": {"type": "integer", "minimum": 0}},
+                           "draws": {"type": "integer", "minimum": 0},
+                           "method": {"enum": ["dirichlet", "bootstrap"]}},
         },
     ]
 }
@@ -325,7 +344,7 @@ EXTENDED_SCHEMA: dict = {
     "$schema": "https://json-schema.org/draft/2020-12/schema",
     "title": "tracechain extended analysis",
     "description": "Dwell and expected times (seconds), removal effects, most likely paths, the long run of chains "
-                   "without absorbing states, Dirichlet intervals, and with sessions the common and least likely "
+                   "without absorbing states, intervals (Dirichlet posterior or session bootstrap), and with sessions the common and least likely "
                    "sessions. Undefined figures are null, never NaN.",
     "type": "object",
     "required": ["time", "removal_effects", "most_likely_paths", "stationary", "intervals", "common_paths",
@@ -375,10 +394,11 @@ EXTENDED_SCHEMA: dict = {
             }}]},
         "intervals": {
             "type": "object",
-            "required": ["method", "level", "draws", "seed", "prior", "conversion", "expected_steps"],
+            "required": ["method", "method_name", "level", "draws", "seed", "prior", "conversion", "expected_steps"],
             "additionalProperties": False,
             "properties": {
-                "method": {"const": "dirichlet"},
+                "method": {"enum": ["dirichlet", "bootstrap"]},
+                "method_name": {"enum": ["Dirichlet posterior", "session bootstrap"]},
                 "level": {"type": "number", "exclusiveMinimum": 0, "exclusiveMaximum": 1},
                 "draws": {"type": "integer", "minimum": 0},
                 "seed": {"type": "integer"},
@@ -433,11 +453,14 @@ def extended_lines(ext: ExtendedAnalysis, max_rows: int = 10) -> list[str]:
     out: list[str] = []
     pct = int(round(100 * ext.level))
     if ext.conversion_interval is not None or ext.steps_interval is not None:
-        out.append(f"Intervals ({pct}%, Dirichlet posterior, {ext.draws} draws)")
+        how = METHOD_NAMES[ext.interval_method]
+        unit = "resamples" if ext.interval_method == "bootstrap" else "draws"
+        out.append(f"Intervals ({pct}%, {how}, {ext.draws} {unit}, seed {ext.seed})")
         for name, iv, is_p in (("conversion from the start", ext.conversion_interval, True),
                                ("expected steps from the start", ext.steps_interval, False)):
             if iv is not None:
-                out.append(f"  {name}: {_fmt(iv.estimate, is_p)} [{_fmt(iv.low, is_p)}, {_fmt(iv.high, is_p)}]")
+                out.append(f"  {name}: {_fmt(iv.estimate, is_p)} [{_fmt(iv.low, is_p)}, {_fmt(iv.high, is_p)}] "
+                           f"({pct}% {how})")
         out.append("")
     if ext.time_from_start is not None or ext.time_to_goal:
         out.append("Time")

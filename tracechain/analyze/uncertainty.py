@@ -14,7 +14,9 @@ Two ways of putting an interval around a figure computed from a fitted chain, bo
     not used here; the prior takes its place.
 (b) *Bootstrap over sessions* (Efron 1979). Sessions are resampled with replacement (as
     many as observed), the chain is re-estimated from the resampled sessions, and the figure
-    recomputed. This needs the session sequences.
+    recomputed. This needs the session sequences; sessions with the same transition counts
+    are drawn together (multinomial counts over the distinct count vectors, see
+    :func:`unique_rows`), which gives the same resamples at a fraction of the cost.
 
 Figures: the conversion probability from the start (into any goal), the expected steps
 from the start to absorption, and the removal effects of chosen states
@@ -44,7 +46,11 @@ from .attribution import StartBlock, removal_effects, start_figures
 from .surprise import session_transitions
 
 __all__ = ["SMALL_BLOCK", "Interval", "UncertaintyResult", "DirichletSampler", "dirichlet_intervals",
-           "bootstrap_intervals", "percentile_interval"]
+           "bootstrap_intervals", "percentile_interval",
+           "unique_rows", "METHOD_NAMES"]
+
+#: How each method is named next to its intervals in every output.
+METHOD_NAMES = {"dirichlet": "Dirichlet posterior", "bootstrap": "session bootstrap"}
 
 #: Transient blocks up to this size are solved for all draws at once (dense stacks).
 SMALL_BLOCK = 150
@@ -95,6 +101,33 @@ def percentile_interval(values, estimate: float | None, level: float) -> Interva
     lo, hi = np.quantile(v[ok], [(1.0 - level) / 2.0, (1.0 + level) / 2.0])
     return Interval(None if estimate is None else float(estimate), float(lo), float(hi), float(v[ok].mean()),
                     int(ok.sum()), int((~ok).sum()))
+
+
+def unique_rows(M: sp.csr_array) -> tuple[sp.csr_array, np.ndarray]:
+    """The distinct rows of a sparse matrix and how often each occurs.
+
+    The bootstrap resamples whole sessions; a resample's counts depend on a session only
+    through its row of transition counts, so drawing ``N`` sessions with replacement is the
+    same as drawing multinomial counts ``(N; m_1/N, ..., m_U/N)`` over the ``U`` distinct
+    rows occurring ``m_u`` times (the multinomial is the sum of ``N`` independent uniform
+    picks grouped by their row). ``U`` is usually far smaller than ``N``.
+    """
+    M = sp.csr_array(M)
+    M.sum_duplicates()
+    M.sort_indices()
+    seen: dict = {}
+    first, mult = [], []
+    ind, dat, ptr = M.indices, M.data, M.indptr
+    for i in range(M.shape[0]):
+        key = (ind[ptr[i]:ptr[i + 1]].tobytes(), dat[ptr[i]:ptr[i + 1]].tobytes())
+        u = seen.get(key)
+        if u is None:
+            seen[key] = len(first)
+            first.append(i)
+            mult.append(1)
+        else:
+            mult[u] += 1
+    return M[np.asarray(first, dtype=np.int64)], np.asarray(mult, dtype=np.float64)
 
 
 def _check_level(level: float, draws: int) -> None:
@@ -366,6 +399,7 @@ def bootstrap_intervals(chain: Chain, sessions, *, level: float = 0.95, draws: i
     uc, edge = np.unique(code, return_inverse=True)
     es, ed = uc // n, uc % n
     inc = sp.csr_array((np.ones(len(edge)), (sid, edge)), shape=(nsess, len(uc)))  # session × edge counts
+    inc, weight = unique_rows(inc)  # sessions with the same counts, with how many there are
     row_of = sp.csr_array((np.ones(len(uc)), (np.arange(len(uc)), es)), shape=(len(uc), n))
     absorbing = chain.absorbing_mask
     rng = np.random.default_rng(seed)
@@ -388,8 +422,8 @@ def bootstrap_intervals(chain: Chain, sessions, *, level: float = 0.95, draws: i
         notes.append(f"removal-effect intervals are computed for blocks of at most {SMALL_BLOCK} states only")
         rem_states, rem = [], {}
     for lo, k in _chunks(draws, per):
-        pick = rng.integers(0, nsess, size=(k, nsess))
-        mult = np.stack([np.bincount(p, minlength=nsess) for p in pick]).astype(np.float64)
+        # nsess sessions drawn with replacement = multinomial counts over the distinct count vectors
+        mult = rng.multinomial(nsess, weight / nsess, size=k).astype(np.float64)
         C = np.asarray((sp.csr_array(mult) @ inc).toarray())  # k × edges
         rs = np.asarray((sp.csr_array(C) @ row_of).toarray())  # k × states
         with np.errstate(invalid="ignore", divide="ignore"):

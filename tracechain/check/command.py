@@ -57,6 +57,9 @@ def register(subparsers: Any) -> None:
                    help="exit with status 1 when a finding is at least this severe (default: error; never: report only)")
     g.add_argument("--quiet", "-q", action="store_true",
                    help="with --output FILE: no text summary on standard output")
+    from ..privacy import add_privacy_options
+
+    add_privacy_options(c)
     c.set_defaults(handler=cmd_check)
 
     s = subparsers.add_parser(
@@ -189,7 +192,11 @@ def cmd_check(args: argparse.Namespace) -> int:
     seen = [state_label(st) for st in chain.counts.states]
     seen += sorted({str(_last_name(st)) for st in chain.counts.states} - set(seen))
     rules.check_names(seen, baseline.state_names if baseline is not None else (), goals)
-    ctx = CheckContext(chain, goals=goals, report=report, baseline=baseline, settings=settings)
+    from ..privacy import pseudonymizer_from_args
+
+    keys = pseudonymizer_from_args(args)
+    notes.append(key_note(keys))
+    ctx = CheckContext(chain, goals=goals, report=report, baseline=baseline, settings=settings, keys=keys)
     result = run_check(ctx, rules.rules, fail_on=args.fail_on, rules_file=args.rules, notes=notes)
     fmt = _format_for(args.output, args.output_format)
     written = write_output(args.output, render(result, fmt))
@@ -199,6 +206,20 @@ def cmd_check(args: argparse.Namespace) -> int:
             sys.stdout.flush()
         print(f"wrote {written}", file=sys.stderr)
     return result.exit_status
+
+
+def key_note(keys, raw_option: str = "--raw-keys", salt_option: str = "--salt",
+             stable: str = "--salt or --salt-file") -> str:
+    """How findings show session keys (a note in every report format; never the salt)."""
+    if keys.raw:
+        return f"session keys are shown raw ({raw_option}); they may identify people"
+    if keys.salt_file is not None:
+        how = f"with the salt in {keys.salt_file} (not stored here)"
+    elif keys.generated:
+        how = f"with a salt drawn for this run (not stored; for stable pseudonyms use {stable})"
+    else:
+        how = f"with the salt given with {salt_option} (not stored here)"
+    return f"session keys are pseudonymised (k: + HMAC-SHA256) {how}; {raw_option} shows them as they are"
 
 
 def cmd_snapshot(args: argparse.Namespace) -> int:

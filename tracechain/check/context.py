@@ -39,10 +39,16 @@ class CheckContext:
         For the rules that compare with a saved snapshot.
     settings : dict
         How the chain was built (for reports).
+    keys : callable, optional
+        Turns a session key into what findings show (a
+        :class:`~tracechain.privacy.Pseudonymizer`). Default: pseudonymised with a new random
+        salt, as every output of tracechain shows keys unless raw keys are asked for
+        (``Pseudonymizer(raw=True)``, ``--raw-keys``). Every location this context hands out
+        carries the shown key, so rule messages, SARIF, JUnit and JSON agree.
     """
 
     def __init__(self, chain: Chain, goals: tuple[str, ...] | list[str] = (), report: ParseReport | None = None,
-                 baseline: Any = None, settings: dict | None = None):
+                 baseline: Any = None, settings: dict | None = None, keys=None):
         if chain.counts is None:
             raise ValueError("a check needs a chain built from counts (Chain.from_counts)")
         self.chain = chain
@@ -53,6 +59,11 @@ class CheckContext:
         self.report = report
         self.baseline = baseline
         self.settings = dict(settings or {})
+        if keys is None:
+            from ..privacy import Pseudonymizer
+
+            keys = Pseudonymizer()
+        self.keys = keys
         self._off = 1 if chain.start is not None else 0
         self._by_label = {state_label(s): i + self._off for i, s in enumerate(self.counts.states)}
         order = list(report.sources) if report is not None else []
@@ -129,9 +140,15 @@ class CheckContext:
     def _rank(self, loc: Location) -> tuple:
         return (self._source_rank.get(loc.source, len(self._source_rank)), loc.source, loc.line)
 
+    def _shown(self, loc: Location | None) -> Location | None:
+        if loc is None or getattr(self.keys, "raw", False):
+            return loc
+        return Location(loc.source, loc.line, self.keys(loc.session) if loc.session else loc.session)
+
     def edge_location(self, i: int, j: int) -> Location | None:
-        """Where the transition i -> j (chain indices) first occurs, if the counter recorded it."""
-        return self.counts.first_seen.get((self._to_counts(i), self._to_counts(j)))
+        """Where the transition i -> j (chain indices) first occurs, if the counter recorded it
+        (the session key as :attr:`keys` shows it)."""
+        return self._shown(self.counts.first_seen.get((self._to_counts(i), self._to_counts(j))))
 
     def state_location(self, i: int) -> Location | None:
         """Where chain state ``i`` first occurs: the earliest recorded transition into it
@@ -141,7 +158,7 @@ class CheckContext:
             found = [loc for (a, _b), loc in self.counts.first_seen.items() if a == START]
         else:
             found = [loc for (_a, b), loc in self.counts.first_seen.items() if b == k]
-        return min(found, key=self._rank) if found else None
+        return self._shown(min(found, key=self._rank)) if found else None
 
     def first_location(self, locations) -> Location | None:
         found = [loc for loc in locations if loc is not None]

@@ -63,6 +63,7 @@ def junit_xml(result: CheckResult, suite_name: str = "tracechain check") -> str:
     pairs = [("rules_file", result.rules_file or ""), ("fail_on", result.fail_on)]
     pairs += [(k, str(v)) for k, v in result.summary.items() if isinstance(v, (int, str))]
     pairs += [("source", s) for s in result.sources]
+    pairs += [("note", n) for n in result.notes]  # e.g. how session keys are shown
     for name, value in pairs:
         ET.SubElement(props, "property", {"name": xml_safe(name, True), "value": xml_safe(value, True)})
     for o in result.outcomes:

@@ -32,12 +32,9 @@ def _subparsers_action(parser: argparse.ArgumentParser):
 
 
 def _privacy_options(p: argparse.ArgumentParser) -> None:
-    g = p.add_argument_group("session keys (personal data)")
-    k = g.add_mutually_exclusive_group()
-    k.add_argument("--salt", metavar="TEXT",
-                   help="salt of the keyed hash that pseudonymises session keys (default: a new random salt, "
-                        "stated in the report)")
-    k.add_argument("--raw-keys", action="store_true", help="show session keys as they are (not pseudonymised)")
+    from ..privacy import add_privacy_options
+
+    add_privacy_options(p)
 
 
 def _diagram_options(p: argparse.ArgumentParser) -> None:
@@ -56,6 +53,7 @@ def _diagram_options(p: argparse.ArgumentParser) -> None:
 
 def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
+    from ..analyze.commands import add_interval_options, add_level_option
     from ..cli import _add_input_options
 
     r = subparsers.add_parser(
@@ -71,6 +69,7 @@ def register(subparsers) -> None:
     o.add_argument("--title", metavar="TEXT", help="title of the report")
     o.add_argument("--top", type=int, default=15, metavar="N", help="rows in the loss tables (default 15)")
     o.add_argument("--seed", type=int, default=0, help="seed of the interval draws (default 0)")
+    add_interval_options(o)
     o.add_argument("--order-test", action="store_true",
                    help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
                         "memory) and state the result among the assumptions")
@@ -93,7 +92,7 @@ def register(subparsers) -> None:
     t.add_argument("--fdr", type=float, default=0.05, metavar="Q", help="false discovery rate (default 0.05)")
     t.add_argument("--min-expected", type=float, default=5.0, metavar="N",
                    help="pool successors with an expected count below N (default 5)")
-    t.add_argument("--level", type=float, default=0.95, help="interval level (default 0.95)")
+    add_level_option(t)
     t.add_argument("--draws", type=int, default=1000, help="Dirichlet draws per side (default 1000)")
     t.add_argument("--seed", type=int, default=0, help="seed of the draws (default 0)")
     o = c.add_argument_group("output")
@@ -111,9 +110,11 @@ def register(subparsers) -> None:
 
 # -- report ---------------------------------------------------------------------------------
 def _pseudonymizer(args):
-    from ..privacy import Pseudonymizer
+    from ..privacy import announce_salt, pseudonymizer_from_args
 
-    return Pseudonymizer(salt=args.salt, raw=args.raw_keys)
+    pseudo = pseudonymizer_from_args(args)
+    announce_salt(pseudo)
+    return pseudo
 
 
 def _diagram(result, args, groups):
@@ -153,6 +154,17 @@ def _order_test(args):
         return None
 
 
+def _interval_options(args) -> dict:
+    """``level``/``intervals`` (and the sessions for the bootstrap) for the extended analysis."""
+    from ..analyze.commands import interval_method, sessions_from_args
+
+    method = interval_method(args)
+    opts = {"level": args.level, "intervals": method}
+    if method == "bootstrap":
+        opts["interval_sessions"] = sessions_from_args(args, "report --intervals bootstrap")
+    return opts
+
+
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
     from ..cli import EXIT_OK, build_chain
@@ -186,6 +198,12 @@ def cmd_report(args: argparse.Namespace) -> int:
         if missing:
             print(f"tracechain: warning: no diagram in the report: {missing}", file=sys.stderr)
     order_table = _order_test(args) if args.order_test and (args.html or args.markdown) else None
+    from .html import load_extended
+
+    ext_opts, ext = {}, None
+    if args.html or args.markdown or args.csv:
+        ext_opts = _interval_options(args)
+        ext, _why = load_extended(result, seed=args.seed, **ext_opts)  # once, for the report and the CSV
     written = []
     if args.svg:
         written.append(write_output(args.svg, svg))
@@ -193,14 +211,15 @@ def cmd_report(args: argparse.Namespace) -> int:
         doc = build_report(result, title=args.title, svg=None if args.no_diagram else svg,
                            diagram=None if args.no_diagram else diagram,
                            diagram_missing=None if args.no_diagram else missing, pseudonymizer=pseudo,
-                           top=args.top, seed=args.seed, order_test=order_table)
+                           top=args.top, seed=args.seed, order_test=order_table,
+                           extended=ext if ext is not None else "auto", extended_options=ext_opts)
         if args.html:
             written.append(write_output(args.html, render_html(doc)))
         if args.markdown:
             ref = args.html or args.svg
             written.append(write_output(args.markdown, render_markdown(doc, figure_ref=ref if ref != "-" else None)))
     if args.csv:
-        written.append(write_output(args.csv, render_csv(result)))
+        written.append(write_output(args.csv, render_csv(result, extended=ext)))
     for w in written:
         if w != "-":
             print(f"wrote {w}", file=sys.stderr)

@@ -2,7 +2,9 @@
 
 One row per state of the data (plus the start): role, visits, sessions lost, whether it is a
 dead end, sessions still open, the probability of reaching each goal, expected steps (empty
-when infinite or undefined), and the mean time to the next event in seconds.
+when infinite or undefined), and the mean time to the next event in seconds. Given the extended
+analysis, the start's row also carries the intervals of its conversion and expected steps, with
+the level and the method named in the column ``interval`` (e.g. ``95% session bootstrap``).
 
 State names are untrusted. Written with :mod:`csv` (RFC 4180 quoting: a cell with a comma,
 quote or line break is quoted, quotes doubled), and every text cell that begins with
@@ -40,7 +42,7 @@ def _f(x, digits: int = 6) -> str:
     return "" if x is None else f"{x:.{digits}g}"
 
 
-def render_csv(a: Analysis) -> str:
+def render_csv(a: Analysis, extended=None) -> str:
     ch = a.chain
     goals = a.goal_labels
     dead = {d.state for d in a.dead_ends}
@@ -54,6 +56,15 @@ def render_csv(a: Analysis) -> str:
     header = ["state", "role", "visits", "sessions_lost", "dead_end", "still_open"]
     header += [f"p_reach:{g}" for g in goals]
     header += ["p_any_goal", "expected_steps", "steps_sd", "mean_seconds_to_next_event"]
+    civ = getattr(extended, "conversion_interval", None)
+    siv = getattr(extended, "steps_interval", None)
+    with_iv = civ is not None or siv is not None
+    if with_iv:
+        from ..analyze.uncertainty import METHOD_NAMES
+
+        header += ["p_any_goal_low", "p_any_goal_high", "expected_steps_low", "expected_steps_high", "interval"]
+        how = (f"{100 * extended.level:.0f}% "
+               f"{METHOD_NAMES.get(getattr(extended, 'interval_method', 'dirichlet'), 'Dirichlet posterior')}")
     w.writerow([csv_cell(h) for h in header])
     for r in a.state_rows():
         if r.role == "end":
@@ -63,5 +74,11 @@ def render_csv(a: Analysis) -> str:
                str(opened.get(r.index, 0))]
         row += [_f(r.p_goal.get(g)) for g in goals]
         row += [_f(r.p_any_goal), _f(r.steps), _f(r.steps_sd), _f(d[0]) if d else ""]
+        if with_iv:
+            if r.index == ch.start:
+                row += [_f(getattr(civ, "low", None)), _f(getattr(civ, "high", None)),
+                        _f(getattr(siv, "low", None)), _f(getattr(siv, "high", None)), how]
+            else:
+                row += ["", "", "", "", ""]
         w.writerow(row)
     return buf.getvalue()

@@ -170,8 +170,18 @@ def duration(seconds: float | None) -> str:
     return f"{s / 86400:.1f} d"
 
 
+def _method_name(ext) -> str:
+    from ..analyze.uncertainty import METHOD_NAMES
+
+    return METHOD_NAMES.get(getattr(ext, "interval_method", "dirichlet"), "Dirichlet posterior")
+
+
+def _draw_unit(ext) -> str:
+    return "resamples" if getattr(ext, "interval_method", "dirichlet") == "bootstrap" else "draws"
+
+
 # -- optional extended analysis ------------------------------------------------------------
-def load_extended(a: Analysis, seed: int = 0) -> tuple[Any, str | None]:
+def load_extended(a: Analysis, seed: int = 0, **options) -> tuple[Any, str | None]:
     """The extended analysis of ``a``'s chain, or ``(None, reason)`` when it is not available.
 
     Looks for :func:`tracechain.analyze.extended.extended_analysis`; missing or failing, it is
@@ -187,7 +197,7 @@ def load_extended(a: Analysis, seed: int = 0) -> tuple[Any, str | None]:
     if fn is None:
         return None, "tracechain.analyze.extended offers no extended_analysis"
     try:
-        return fn(a.chain, seed=seed), None
+        return fn(a.chain, seed=seed, **options), None
     except Exception as err:  # an optional add-on must not stop the report; the reason is shown
         return None, f"the extended analyses could not be run ({type(err).__name__}: {err})"
 
@@ -315,8 +325,8 @@ def _headline(a: Analysis, ext: Any, ext_reason: str | None) -> list:
     if conv:
         text = _pct(total)
         if civ is not None and getattr(civ, "low", None) is not None and total is not None:
-            text += (f" ({100 * level:.0f}% interval {_pct(civ.low)} to {_pct(civ.high)}, Dirichlet posterior, "
-                     f"{getattr(ext, 'draws', '?')} draws, seed {getattr(ext, 'seed', '?')})")
+            text += (f" ({100 * level:.0f}% interval {_pct(civ.low)} to {_pct(civ.high)}, {_method_name(ext)}, "
+                     f"{getattr(ext, 'draws', '?')} {_draw_unit(ext)}, seed {getattr(ext, 'seed', '?')})")
         facts.append(("conversion from the start", text))
         if len(conv) > 1:
             for g in conv:
@@ -330,7 +340,7 @@ def _headline(a: Analysis, ext: Any, ext_reason: str | None) -> list:
         siv = getattr(ext, "steps_interval", None) if ext is not None else None
         if siv is not None and getattr(siv, "low", None) is not None and r.steps is not None:
             # (no interval beside an infinite estimate: draws that escape a closed loop do not describe it)
-            text += f"; {100 * level:.0f}% interval {_num(siv.low)} to {_num(siv.high)}"
+            text += f"; {100 * level:.0f}% interval {_num(siv.low)} to {_num(siv.high)}, {_method_name(ext)}"
         facts.append(("expected steps from the start", text))
         t0 = getattr(ext, "time_from_start", None) if ext is not None else None
         if t0 is not None:
@@ -595,7 +605,7 @@ def build_report(
     a: Analysis, *, title: str | None = None, svg: str | bytes | None = None, diagram=None,
     diagram_missing: str | None = None, pseudonymizer: Pseudonymizer | None = None, extended: Any = "auto",
     top: int = 15, max_states: int = 60, comparison_sections: list[Section] | None = None, seed: int = 0,
-    order_test=None,
+    order_test=None, extended_options: dict | None = None,
 ) -> Report:
     """The report's content (see the module docstring).
 
@@ -604,11 +614,13 @@ def build_report(
     ``extended`` is an extended analysis, ``None`` for none, or ``"auto"`` to run
     :func:`load_extended`. ``order_test`` is an
     :class:`~tracechain.analyze.order.OrderTable` to state among the assumptions.
+    ``extended_options`` go to ``extended_analysis`` with ``"auto"`` (``level``,
+    ``intervals``, ``sessions``).
     """
     pseudo = pseudonymizer or Pseudonymizer()
     ext_reason = None
     if isinstance(extended, str) and extended == "auto":
-        ext, ext_reason = load_extended(a, seed=seed)
+        ext, ext_reason = load_extended(a, seed=seed, **(extended_options or {}))
     else:
         ext = extended
         if ext is None:

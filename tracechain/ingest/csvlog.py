@@ -3,8 +3,19 @@
 Blocks of lines are parsed by Arrow's CSV reader, reading only the needed columns.
 A block Arrow refuses (a row with the wrong number of fields, for example) is parsed
 again with Python's :mod:`csv` module so each bad row is counted and reported with
-its line number. A quoted field spanning lines is supported on the slow path only
-when it does not cross a block boundary (blocks are 16 MiB).
+its line number.
+
+Records and lines (the same on every tier and for every block size):
+
+- lines end in LF (a CRLF ending is one line end, RFC 4180 section 2 rule 1); a CR not
+  followed by LF is no line end: inside a quoted field it is part of the value,
+  elsewhere the line is malformed (RFC 4180 section 2 rule 6 asks for such fields to
+  be quoted);
+- a record is one line: a quoted field does not span lines. A line whose quote does
+  not close on that line is one bad line ("malformed CSV"), and the next line is read
+  as a record of its own, so a stray quote costs one line, never the rest of the file;
+- fields have no length limit of their own (the csv module's 131,072-character limit
+  is lifted, as Arrow has none): a field is bounded by the length of its line.
 
 A file is taken for CSV only when its first line reads as a header (two or more
 distinct, name-like cells) and the lines after it split into as many fields; the
@@ -30,6 +41,13 @@ from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, 
 from .tabular import table_to_chunk
 
 __all__ = ["CsvParser", "read_header", "choose_delimiter"]
+
+# Arrow's reader has no field size limit; the csv module's (131,072 characters by
+# default) made a long field a bad line on one tier only. Lifted for the process (it
+# only ever grows, so no other reader of the csv module loses a field it read).
+_FIELD_LIMIT = 2**31 - 1
+if csv.field_size_limit() < _FIELD_LIMIT:
+    csv.field_size_limit(_FIELD_LIMIT)
 
 EDGE_HEADERS = ({"from", "to"}, {"source", "target"}, {"src", "dst"})
 
@@ -201,15 +219,17 @@ class CsvParser:
             nlines = newlines + (0 if block.endswith(b"\n") else 1)
             report.lines_read += nlines
             table = None
-            if time_type is not None or names[1] is None:
+            # a bare CR: Arrow would end a record there, the line rule does not
+            fast = not _bare_cr(block)
+            if fast and (time_type is not None or names[1] is None):
                 # all types known: Arrow may parse the block in pieces on its threads
                 table = _fast_parse(block, header, delim, wanted, names, time_type, pieces=True)
-            if table is None:
+            if table is None and fast:
                 table = _fast_parse(block, header, delim, wanted, names)
                 if table is not None and names[1] is not None and time_type is None:
                     time_type = _known_type(table.schema.field(names[1]).type)
             pending = None  # strict mode: a bad row, raised once the rows before it are checked
-            if table is not None and table.num_rows == nlines:
+            if table is not None and table.num_rows == nlines and not _open_quote_at_end(block, delim):
                 cols = {c: table.column(c) for c in wanted}
                 lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
             else:
@@ -223,6 +243,35 @@ class CsvParser:
             if chunk is not None:
                 yield chunk
             del chunk
+
+
+def _bare_cr(block: bytes) -> bool:
+    """Whether ``block`` holds a CR that is not part of a CRLF line end."""
+    n = block.count(b"\r")
+    return n != 0 and n != block.count(b"\r\n")
+
+
+def _open_quote_at_end(block: bytes, delim: str) -> bool:
+    """Whether the last line of ``block`` opens a quoted field it does not close.
+
+    Arrow lets such a field run on to the end of the block (and, earlier in the block,
+    over the lines after it, which then leaves fewer rows than lines). When Arrow gives
+    one row per line, only the last line can be one: it is checked here as the csv
+    module would read it, so the block goes to the line-by-line tier that reports it.
+    """
+    end = len(block) - 1 if block.endswith(b"\n") else len(block)
+    start = block.rfind(b"\n", 0, end) + 1
+    if block.find(b'"', start, end) < 0:
+        return False
+    line = block[start:end].decode("utf-8", "replace")
+    if line.endswith("\r"):
+        line = line[:-1]
+    reader = csv.reader((line, ""), delimiter=delim)
+    try:
+        next(reader)
+    except (csv.Error, StopIteration):
+        return True
+    return reader.line_num > 1
 
 
 def _known_type(typ: pa.DataType) -> pa.DataType | None:
@@ -278,25 +327,31 @@ def _slow_parse(block, first_line, header, delim, wanted, name, report: ParseRep
     out: dict[str, list] = {w: [] for w in wanted}
     line_nos: list[int] = []
     text = block.decode("utf-8", errors="replace")
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delim)
-    prev_end = 0
+    lines = text.split("\n")
+    if text.endswith("\n"):
+        lines.pop()  # (nothing after the last line end)
     pending: IngestError | None = None
-    while True:
-        ln = first_line + prev_end
+    width = len(header)
+    for k, line in enumerate(lines):
+        ln = first_line + k
+        if line.endswith("\r"):
+            line = line[:-1]  # CRLF
+        # one record per line: a second item after the line shows a quote left open
+        reader = csv.reader((line, ""), delimiter=delim)
         try:
             row = next(reader)
-        except StopIteration:
-            break
         except csv.Error as err:
-            # the reader drops the rest of the row and goes on with the next line
-            prev_end = reader.line_num
             pending = _bad(report, name, ln, "malformed CSV", strict, str(err))
+        except StopIteration:  # pragma: no cover - a reader always yields for a line
+            row = []
         else:
-            prev_end = reader.line_num
-            if not row or all(not c.strip() for c in row):
+            if reader.line_num > 1:
+                pending = _bad(report, name, ln, "malformed CSV", strict,
+                               "a quoted field does not close on its line (a record is one line)")
+            elif not row or all(not c.strip() for c in row):
                 pending = _bad(report, name, ln, "blank line", strict)
-            elif len(row) != len(header):
-                detail = f"{len(row)} fields, header has {len(header)}"
+            elif len(row) != width:
+                detail = f"{len(row)} fields, header has {width}"
                 pending = _bad(report, name, ln, "wrong number of fields", strict, detail)
             else:
                 for w, i in zip(wanted, idx):

@@ -65,7 +65,11 @@ def register(subparsers) -> None:
     o.add_argument("--html", metavar="FILE", help="write the HTML report")
     o.add_argument("--markdown", "--md", dest="markdown", metavar="FILE", help="write the Markdown summary")
     o.add_argument("--csv", metavar="FILE", help="write per-state figures as CSV")
-    o.add_argument("--svg", metavar="FILE", help="also write the diagram as SVG")
+    o.add_argument("--svg", metavar="FILE", help="also write the diagram as SVG (and each chart beside it, "
+                   "FILE's name + '-CHART.svg')")
+    o.add_argument("--png", metavar="FILE", help="write the diagram as PNG for slides (and each chart beside it)")
+    o.add_argument("--pdf", metavar="FILE", help="write the diagram as PDF (and each chart beside it)")
+    o.add_argument("--no-charts", action="store_true", help="leave the charts out")
     o.add_argument("--title", metavar="TEXT", help="title of the report")
     o.add_argument("--top", type=int, default=15, metavar="N", help="rows in the loss tables (default 15)")
     o.add_argument("--seed", type=int, default=0, help="seed of the interval draws (default 0)")
@@ -165,6 +169,84 @@ def _interval_options(args) -> dict:
     return opts
 
 
+def _charts(result, args) -> list:
+    """The report's charts, or one line saying why there are none."""
+    from .charts import available, missing_reason, report_charts
+
+    if args.no_charts:
+        return []
+    if not available():
+        if args.png or args.pdf or args.svg:
+            print(f"tracechain: warning: no charts: {missing_reason()}", file=sys.stderr)
+        return [f"No charts: {missing_reason()}."]
+    return report_charts(result, top=args.top)
+
+
+def _chart_path(image: str, name: str, fmt: str) -> str:
+    import os
+
+    stem, _ = os.path.splitext(image)
+    return f"{stem}-{name}.{fmt}"
+
+
+def _chart_files(args, images: dict, charts: list) -> list:
+    """(path, chart, format) for each chart beside each image output; checked like the other outputs."""
+    import argparse as _ap
+
+    from ..errors import UsageError
+    from ..outputs import check_outputs
+
+    out = []
+    for fmt, path in images.items():
+        if path == "-":
+            continue
+        for c in charts:
+            out.append((_chart_path(path, c.name, fmt), c, fmt))
+    given = {p for p in (args.html, args.markdown, args.csv, args.svg, args.png, args.pdf) if p}
+    for path, _, _ in out:
+        if path in given:
+            raise UsageError(f"{path}: the chart file would replace another output (name the image differently)")
+        probe = _ap.Namespace(**{k: v for k, v in vars(args).items()
+                                 if k in ("paths", "from_paths", "mapping", "rules", "baseline")})
+        probe.output = path
+        check_outputs(probe)
+    return out
+
+
+def _rel(markdown: str, path: str) -> str:
+    import os
+
+    if markdown == "-":
+        return path
+    return os.path.relpath(os.path.abspath(path), os.path.dirname(os.path.abspath(markdown)))
+
+
+def _image_ref(markdown: str, images: dict) -> str | None:
+    for fmt in ("svg", "png"):
+        if images.get(fmt) and images[fmt] != "-":
+            return _rel(markdown, images[fmt])
+    return None
+
+
+def _set_chart_refs(doc, markdown: str, chart_files: list) -> None:
+    from .html import ChartFigure
+
+    best = {}
+    for path, c, fmt in chart_files:
+        if fmt in ("svg", "png") and (c.name not in best or fmt == "svg"):
+            best[c.name] = _rel(markdown, path)
+    for s in doc.sections:
+        for b in s.blocks:
+            if isinstance(b, ChartFigure):
+                b.ref = best.get(b.name)
+
+
+def _render_diagram(diagram, fmt: str) -> bytes:
+    from .dot import render_image
+
+    return render_image(diagram.dot, fmt)
+
+
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
     from ..cli import EXIT_OK, build_chain
@@ -175,13 +257,14 @@ def cmd_report(args: argparse.Namespace) -> int:
     from .markdown import render_markdown
     from .writer import write_output
 
-    if not (args.html or args.markdown or args.csv or args.svg):
-        raise UsageError("name at least one output: --html FILE, --markdown FILE, --csv FILE or --svg FILE")
+    if not (args.html or args.markdown or args.csv or args.svg or args.png or args.pdf):
+        raise UsageError("name at least one output: --html FILE, --markdown FILE, --csv FILE, --svg FILE, "
+                         "--png FILE or --pdf FILE")
     if args.top < 1:
         raise UsageError("--top must be at least 1")
     if args.max_states < 1:
         raise UsageError("--max-states must be at least 1")
-    outs = [x for x in (args.html, args.markdown, args.csv, args.svg) if x]
+    outs = [x for x in (args.html, args.markdown, args.csv, args.svg, args.png, args.pdf) if x]
     if outs.count("-") > 1:
         raise UsageError("only one output can go to standard output ('-')")
     chain, report, settings = build_chain(args)
@@ -189,14 +272,17 @@ def cmd_report(args: argparse.Namespace) -> int:
     groups = (load_mapping(args.mapping).groups or None) if args.mapping else None
     pseudo = _pseudonymizer(args)
     diagram = svg = missing = None
-    if not args.no_diagram or args.svg:
+    images = {fmt: getattr(args, fmt) for fmt in ("svg", "png", "pdf") if getattr(args, fmt)}
+    if not args.no_diagram or images:
         diagram, svg, missing = _diagram(result, args, groups)
-        if svg is None and args.svg:
+        if svg is None and images:
             from ..errors import RenderError
 
             raise RenderError(missing)
         if missing:
             print(f"tracechain: warning: no diagram in the report: {missing}", file=sys.stderr)
+    charts = _charts(result, args)
+    chart_files = _chart_files(args, images, [c for c in charts if not isinstance(c, str)])
     order_table = _order_test(args) if args.order_test and (args.html or args.markdown) else None
     from .html import load_extended
 
@@ -205,18 +291,22 @@ def cmd_report(args: argparse.Namespace) -> int:
         ext_opts = _interval_options(args)
         ext, _why = load_extended(result, seed=args.seed, **ext_opts)  # once, for the report and the CSV
     written = []
-    if args.svg:
-        written.append(write_output(args.svg, svg))
+    for fmt, path in images.items():
+        written.append(write_output(path, svg if fmt == "svg" else _render_diagram(diagram, fmt)))
+    for path, chart, fmt in chart_files:
+        written.append(write_output(path, chart.render(fmt)))
     if args.html or args.markdown:
         doc = build_report(result, title=args.title, svg=None if args.no_diagram else svg,
                            diagram=None if args.no_diagram else diagram,
                            diagram_missing=None if args.no_diagram else missing, pseudonymizer=pseudo,
                            top=args.top, seed=args.seed, order_test=order_table,
-                           extended=ext if ext is not None else "auto", extended_options=ext_opts)
+                           extended=ext if ext is not None else "auto", extended_options=ext_opts,
+                           charts=charts)
         if args.html:
             written.append(write_output(args.html, render_html(doc)))
         if args.markdown:
-            ref = args.html or args.svg
+            _set_chart_refs(doc, args.markdown, chart_files)
+            ref = _image_ref(args.markdown, images) or args.html
             written.append(write_output(args.markdown, render_markdown(doc, figure_ref=ref if ref != "-" else None)))
     if args.csv:
         written.append(write_output(args.csv, render_csv(result, extended=ext)))

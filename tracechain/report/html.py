@@ -41,7 +41,7 @@ from ..analyze.summary import Analysis
 from ..privacy import DATA_PROTECTION_CAUTION, Pseudonymizer
 
 __all__ = [
-    "Report", "Section", "Para", "Facts", "Table", "Bullets", "Callout", "Figure",
+    "Report", "Section", "Para", "Facts", "Table", "Bullets", "Callout", "Figure", "ChartFigure", "charts_section",
     "build_report", "render_html", "html_report", "sanitize_svg", "safe_name", "READING_CAUTIONS",
     "load_extended", "notebook_html",
 ]
@@ -104,6 +104,15 @@ class Figure:
     caption: list[str]
     alt: str
     missing: str | None = None  # why there is no diagram
+
+
+@dataclass
+class ChartFigure:
+    svg: str  # cleaned chart SVG (tracechain.report.charts.inline_svg)
+    caption: list[str]
+    alt: str
+    name: str  # file-name stem of the chart
+    ref: str | None = None  # the chart written as a file (relative to the Markdown), if any
 
 
 @dataclass
@@ -605,7 +614,7 @@ def build_report(
     a: Analysis, *, title: str | None = None, svg: str | bytes | None = None, diagram=None,
     diagram_missing: str | None = None, pseudonymizer: Pseudonymizer | None = None, extended: Any = "auto",
     top: int = 15, max_states: int = 60, comparison_sections: list[Section] | None = None, seed: int = 0,
-    order_test=None, extended_options: dict | None = None,
+    order_test=None, extended_options: dict | None = None, charts=None,
 ) -> Report:
     """The report's content (see the module docstring).
 
@@ -644,6 +653,8 @@ def build_report(
     ]
     if clean_svg is not None or diagram_missing:
         sections.append(_diagram_section(a, clean_svg, diagram, diagram_missing))
+    if charts:
+        sections.append(charts_section(charts))
     if comparison_sections:
         sections.extend(comparison_sections)
     sections.extend(_loss_sections(a, pseudo, top))
@@ -655,6 +666,23 @@ def build_report(
     sections.append(_cautions(pseudo))
     return Report(title=title or "tracechain report", subtitle=" · ".join(sub), sections=sections,
                   key_mode=pseudo.mode)
+
+
+def charts_section(charts, key: str = "charts", title: str = "Charts", note: str | None = None) -> Section:
+    """A section holding ``charts`` (:class:`tracechain.report.charts.Chart`), or saying why there are none."""
+    from .charts import inline_svg
+
+    blocks: list = []
+    for c in charts:
+        if isinstance(c, str):  # why there is no chart
+            blocks.append(Para(c))
+            continue
+        svg = inline_svg(c.render("svg"), c.name, c.title)
+        blocks.append(ChartFigure(svg, [safe_name(c.title, 300)] + list(getattr(c, "notes", []) or []),
+                                  safe_name(c.title, 300), c.name))
+    if note:
+        blocks.insert(0, Para(note))
+    return Section(key, title, blocks)
 
 
 # -- HTML rendering -------------------------------------------------------------------------
@@ -697,6 +725,8 @@ figure { margin: .5rem 0 1rem; }
 #diagram-toggle:checked ~ figure .diagram.fit svg { width: auto; max-width: none; }
 #diagram-toggle:checked ~ figure .diagram.full svg { width: 100%; }
 label.switch { font-size: .9rem; color: var(--muted); }
+figure.chart { max-width: 60rem; border: 1px solid var(--rule); padding: .5rem; }
+figure.chart svg { display: block; width: 100%; height: auto; }
 figcaption { color: var(--muted); font-size: .9rem; margin-top: .4rem; }
 figcaption p { margin: .15rem 0; }
 .missing { border: 2px dashed var(--rule); padding: 1rem; }
@@ -737,6 +767,9 @@ def _block_html(b) -> str:
         more = f'<p class="more">{_e(b.more)}</p>' if b.more else ""
         return (f'<div class="table-wrap"><table>{cap}<thead><tr>{head}</tr></thead><tbody>{"".join(body)}'
                 f"</tbody></table></div>{more}")
+    if isinstance(b, ChartFigure):
+        cap = "".join(f"<p>{_e(c)}</p>" for c in b.caption)
+        return f'<figure class="chart" id="chart-{b.name}">{b.svg}<figcaption>{cap}</figcaption></figure>'
     if isinstance(b, Figure):
         cap = "".join(f"<p>{_e(c)}</p>" for c in b.caption)
         if b.svg is None:
@@ -939,7 +972,7 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
 
 def build_compare_report(cmp, analyses: tuple, *, diff_svg=None, diff_missing: str | None = None,
                          pseudonymizer: Pseudonymizer | None = None, title: str | None = None,
-                         top: int = 20) -> Report:
+                         top: int = 20, charts=None) -> Report:
     """A report of a comparison: its sections, each side's input, the assumptions and cautions.
 
     ``analyses`` are the :class:`Analysis` of side A and side B (for their parse reports and
@@ -947,6 +980,8 @@ def build_compare_report(cmp, analyses: tuple, *, diff_svg=None, diff_missing: s
     """
     pseudo = pseudonymizer or Pseudonymizer()
     sections = comparison_sections(cmp, diff_svg, pseudo, top, diff_missing)
+    if charts:
+        sections.insert(1, charts_section(charts, "compare-charts", "What changed, as charts"))
     seen_reports = []
     for name, a in zip(cmp.names, analyses):
         if a is None or a.report is None or any(a.report is r for r in seen_reports):

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import re
 
-from .html import Bullets, Callout, Facts, Figure, Para, Report, Table, safe_name
+from .html import Bullets, Callout, ChartFigure, Facts, Figure, Para, Report, Table, safe_name
 
 __all__ = ["render_markdown", "md_escape"]
 
@@ -82,15 +82,29 @@ def _block(b, figure_ref: str | None) -> list[str]:
         return lines
     if isinstance(b, Table):
         return _table(b)
+    if isinstance(b, ChartFigure):
+        if b.ref:
+            return [f"![{md_escape(b.alt, 300)}]({_url(b.ref)})"]
+        return [md_escape(f"Chart: {b.alt} (drawn in the HTML report).", line_start=True)]
     if isinstance(b, Figure):
         if b.svg is None:
             where = f"No diagram: {b.missing or 'not drawn'}."
+        elif figure_ref and not figure_ref.lower().endswith((".html", ".htm")):
+            return [f"![{md_escape(b.alt, 300)}]({_url(figure_ref)})", "",
+                    *[f"- {md_escape(c)}" for c in b.caption]]
         elif figure_ref:
             where = f"The diagram is in {figure_ref}."
         else:
             where = "The diagram is in the HTML report."
         return [md_escape(where, line_start=True)] + ["", *[f"- {md_escape(c)}" for c in b.caption]]
     raise TypeError(f"unknown block {type(b).__name__}")
+
+
+def _url(path: str) -> str:
+    """A relative file path as a CommonMark link destination (percent-encoded: no space, bracket or parenthesis)."""
+    from urllib.parse import quote
+
+    return quote(path.replace("\\", "/"), safe="/._-~")
 
 
 def render_markdown(doc: Report, figure_ref: str | None = None) -> str:

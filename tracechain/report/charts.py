@@ -1,0 +1,305 @@
+"""Charts of the analysis, drawn with matplotlib as SVG (or PNG/PDF for slides).
+
+Every chart is a :class:`Chart`: a name (used for file names), a title, and the figure
+drawn by matplotlib (no pyplot, no window) as SVG with a fixed ``svg.hashsalt`` and no date in
+the metadata, so the same analysis gives the same bytes. Each bar or point carries its
+figures as data attributes (``data-state``, ``data-value``, ``data-low``, ``data-high``,
+``data-count``) so tests can read back what was drawn and compare it with the analysis.
+
+Visual vocabulary (ours): bars are a dark blue-grey with a label at the bar's end giving
+the figure in text; in comparisons a rise in a loss (worse) is the warm orange with a
+forward-hatch and a ▲ in its label, a fall (better) the cool blue with dots and a ▼, so
+colour is never the only cue (the two colours are from the Okabe–Ito colour-blind safe
+palette, from memory). Intervals are black whiskers with caps.
+
+matplotlib is an optional extra (``pip install 'tracechain[charts]'``): without it,
+:func:`available` is False and the report says how to get the charts.
+"""
+
+from __future__ import annotations
+
+import io
+import xml.etree.ElementTree as ET
+from dataclasses import dataclass, field
+
+__all__ = ["Chart", "available", "missing_reason", "report_charts", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
+
+CHARTS_EXTRA = "pip install 'tracechain[charts]'"
+INK = "#33475b"  # bars: dark blue-grey
+WORSE = "#d55e00"  # Okabe-Ito vermillion (warm)
+BETTER = "#0072b2"  # Okabe-Ito blue (cool)
+NEUTRAL = "#999999"
+_SVG_NS = "http://www.w3.org/2000/svg"
+
+
+@dataclass
+class Chart:
+    name: str  # file-name stem, our own letters
+    title: str
+    figure: object = field(repr=False)  # a matplotlib Figure
+    points: list[dict] = field(default_factory=list)  # what each mark shows (gid -> data attributes)
+
+    def render(self, fmt: str = "svg") -> bytes:
+        """The chart as ``svg``, ``png`` or ``pdf`` bytes (SVG with the data attributes)."""
+        import matplotlib
+
+        buf = io.BytesIO()
+        with matplotlib.rc_context({"svg.hashsalt": "tracechain", "svg.fonttype": "none"}):
+            meta = {"Date": None} if fmt in ("svg", "pdf") else {}
+            if fmt == "pdf":
+                meta["CreationDate"] = None
+                meta.pop("Date")
+            self.figure.savefig(buf, format=fmt, metadata=meta, dpi=150 if fmt == "png" else None)
+        data = buf.getvalue()
+        if fmt == "svg":
+            data = _attach(data, self.points)
+        return data
+
+
+def available() -> bool:
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def missing_reason() -> str:
+    return f"matplotlib is not installed ({CHARTS_EXTRA} draws the charts)"
+
+
+def _attach(svg: bytes, points: list[dict]) -> bytes:
+    """Set each point's data attributes on the SVG element whose id is its gid."""
+    ET.register_namespace("", _SVG_NS)
+    ET.register_namespace("xlink", "http://www.w3.org/1999/xlink")
+    root = ET.fromstring(svg)
+    by_id = {el.get("id"): el for el in root.iter() if el.get("id")}
+    for p in points:
+        el = by_id.get(p["gid"])
+        if el is None:
+            raise RuntimeError(f"chart mark {p['gid']} missing from the SVG")
+        for k, v in p.items():
+            if k != "gid" and v is not None:
+                el.set(f"data-{k}", repr(float(v)) if isinstance(v, float) else str(v))
+    return ET.tostring(root, encoding="utf-8")
+
+
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    from matplotlib.figure import Figure
+
+    return Figure
+
+
+def _short(text: str, limit: int = 40) -> str:
+    from .html import safe_name
+
+    s = safe_name(text, limit)
+    return s.replace("$", "\\$")  # no mathtext from a state name
+
+
+def _hbar(title: str, xlabel: str, labels: list[str], values: list[float], texts: list[str], name: str,
+          points: list[dict], lows=None, highs=None, colors=None, hatches=None, xlim=None) -> Chart:
+    Figure = _plt()
+    n = len(labels)
+    fig = Figure(figsize=(9, max(2.2, 0.42 * n + 1.3)), layout="constrained")
+    ax = fig.subplots()
+    ys = list(range(n))[::-1]
+    bars = ax.barh(ys, values, color=colors or INK, edgecolor="black", linewidth=0.6, height=0.65)
+    for k, b in enumerate(bars):
+        b.set_gid(f"tc-{name}-{k}")
+        if hatches and hatches[k]:
+            b.set_hatch(hatches[k])
+        points[k]["gid"] = f"tc-{name}-{k}"
+    if lows is not None:
+        import numpy as np
+
+        lo = np.array([v - (lo if lo is not None else v) for v, lo in zip(values, lows)])
+        hi = np.array([(h if h is not None else v) - v for v, h in zip(values, highs)])
+        ax.errorbar(values, ys, xerr=[lo, hi], fmt="none", ecolor="black", capsize=4, elinewidth=1.2)
+    ax.set_yticks(ys, [_short(x) for x in labels], fontsize=12)
+    ax.set_xlabel(xlabel, fontsize=12)
+    ax.set_title(_short(title, 120), fontsize=14, loc="left")
+    ax.tick_params(axis="x", labelsize=11)
+    ax.spines[["top", "right"]].set_visible(False)
+    if xlim:
+        ax.set_xlim(*xlim)
+    span = (ax.get_xlim()[1] - ax.get_xlim()[0]) or 1.0
+    for y, v, t, hi in zip(ys, values, texts, highs or [None] * n):
+        end = max(v, hi if hi is not None else v, 0)
+        ax.text(end + 0.01 * span, y, _short(t, 60), va="center", fontsize=11)
+    ax.margins(x=0.18)
+    return Chart(name, title, fig, points)
+
+
+def exit_chart(a, top: int = 15) -> Chart | None:
+    """Exit rate per state (bars), with the sessions lost there in the bar's label."""
+    rows = list(a.exits)[:top]
+    if not rows:
+        return None
+    labels = [a.chain.label(e.state) for e in rows]
+    values = [float(e.exit_rate or 0.0) for e in rows]
+    texts = [f"{100 * v:.1f}% exit · {e.sessions_lost:,} lost" for v, e in zip(values, rows)]
+    points = [{"state": lab, "value": v, "count": int(e.sessions_lost)} for lab, v, e in zip(labels, values, rows)]
+    return _hbar("Where sessions end without converting: exit rate (ordered by sessions lost)", "exit rate (share of visits that "
+                 "end the session there)", labels, values, texts, "exits", points, xlim=(0, 1))
+
+
+def conversion_chart(a, max_states: int = 15) -> Chart | None:
+    """P(reach a goal) from each state, the most visited states."""
+    if not a.chain.goals.size:
+        return None
+    rows = [r for r in a.state_rows() if r.role in ("start", "transient", "sink", "terminal")
+            and r.p_any_goal is not None]
+    rows.sort(key=lambda r: (r.role != "start", -r.visits))
+    rows = rows[:max_states]
+    if not rows:
+        return None
+    labels = [r.state for r in rows]
+    values = [float(r.p_any_goal) for r in rows]
+    texts = [f"{100 * v:.1f}% reach a goal" for v in values]
+    points = [{"state": r.state, "value": v, "count": int(r.visits)} for r, v in zip(rows, values)]
+    top = min(1.0, max(values) * 1.3) or 1.0
+    return _hbar("Conversion from each state: probability of reaching a goal (most visited states)",
+                 "probability of reaching a goal", labels, values, texts, "conversion", points, xlim=(0, top))
+
+
+def report_charts(a, top: int = 15) -> list[Chart]:
+    """The charts of a report (those that have data)."""
+    out = []
+    for make in (exit_chart, conversion_chart):
+        c = make(a, top)
+        if c is not None:
+            out.append(c)
+    return out
+
+
+def compare_charts(cmp) -> list[Chart]:
+    """The comparison: change in conversion and steps with intervals; per-state exit shift."""
+    out = []
+    A, B = cmp.names
+    figs = [(fc, pct) for fc, pct in ((cmp.conversion, True), (cmp.steps, False)) if fc is not None and fc.diff is not None]
+    if figs:
+        labels, values, lows, highs, texts, colors, hatches, points = [], [], [], [], [], [], [], []
+        for fc, pct in figs:
+            worse = (fc.diff < 0) if pct else (fc.diff > 0)  # less conversion, more steps: worse
+            unit = 100 if pct else 1
+            v = fc.diff * unit
+            labels.append(fc.name + (" (points)" if pct else ""))
+            values.append(v)
+            lows.append(None if fc.diff_low is None else fc.diff_low * unit)
+            highs.append(None if fc.diff_high is None else fc.diff_high * unit)
+            sign = "▲" if fc.diff > 0 else ("▼" if fc.diff < 0 else "=")
+            word = "worse" if worse and fc.diff != 0 else ("better" if fc.diff != 0 else "no change")
+            texts.append(f"{sign} {v:+.2f} ({word})")
+            colors.append(WORSE if worse and fc.diff != 0 else (BETTER if fc.diff != 0 else NEUTRAL))
+            hatches.append("//" if worse and fc.diff != 0 else ("..") if fc.diff != 0 else None)
+            points.append({"state": fc.name, "value": float(fc.diff), "low": fc.diff_low, "high": fc.diff_high,
+                           "direction": word})
+        c = _hbar(f"Change {B} − {A} with intervals (warm, hatched //: worse; cool, dotted: better)",
+                  f"change {B} − {A}", labels, values, texts, "compare-figures", points, lows=lows, highs=highs,
+                  colors=colors, hatches=hatches)
+        c.figure.axes[0].axvline(0, color="black", linewidth=1)
+        out.append(c)
+    tested = [t for t in cmp.tests if t.tvd is not None]
+    tested.sort(key=lambda t: (not t.significant, -(t.tvd or 0)))
+    tested = tested[:15]
+    if tested:
+        labels = [t.label for t in tested]
+        values = [float(t.tvd) for t in tested]
+        texts = [f"{100 * v:.1f}% moved" + (f" · changed (q = {t.q_value:.2g})" if t.significant else " · no change")
+                 for v, t in zip(values, tested)]
+        colors = [INK if t.significant else "#cfd6dd" for t in tested]
+        hatches = ["xx" if t.significant else None for t in tested]
+        points = [{"state": t.label, "value": v, "significant": "yes" if t.significant else "no"}
+                  for t, v in zip(tested, values)]
+        out.append(_hbar("Per state: share of exits that moved between the sides (hatched: changed)",
+                         "total variation distance of the exits", labels, values, texts, "compare-states", points,
+                         colors=colors, hatches=hatches, xlim=(0, 1)))
+    return out
+
+
+# -- inlining in HTML -----------------------------------------------------------------------
+_TAGS = {"svg", "g", "defs", "path", "rect", "use", "pattern", "clipPath", "text", "tspan", "title", "desc"}
+_ATTRS = {"width", "height", "viewBox", "transform", "d", "x", "y", "fill", "stroke", "stroke-width",
+          "stroke-linecap", "stroke-linejoin", "stroke-dasharray", "stroke-opacity", "fill-opacity", "opacity",
+          "font-size", "font-family", "font-style", "font-weight", "text-anchor", "patternUnits", "clip-path",
+          "fill-rule", "stroke-miterlimit", "id", "href", "dominant-baseline"}
+_STYLE_PROPS = _ATTRS - {"width", "height", "viewBox", "transform", "d", "x", "y", "id", "href", "patternUnits"}
+
+
+def _local(tag: str) -> str:
+    return tag.split("}", 1)[-1] if tag.startswith("{") else tag
+
+
+def inline_svg(svg: bytes, name: str, label: str) -> str:
+    """A chart's SVG rebuilt from an allow-list for inlining in the report.
+
+    The report's Content-Security-Policy allows no inline style, so matplotlib's ``style``
+    attributes become presentation attributes; ids are prefixed with the chart's name, and
+    the only references kept are local (``url(#...)``, ``href="#..."``). No script, no
+    links, no foreign content. Data attributes (``data-...``) are kept.
+    """
+    import re
+
+    from .html import safe_name
+
+    pre = "c-" + "".join(ch for ch in name if ch.isalnum() or ch == "-")[:30] + "-"
+    root = ET.fromstring(svg)
+
+    def ref(v: str) -> str | None:
+        m = re.fullmatch(r"url\(#([\w.-]+)\)", v.strip())
+        if m:
+            return f"url(#{pre}{m.group(1)})"
+        return None if "url(" in v or "(" in v else v
+
+    def clean(el):
+        tag = _local(el.tag)
+        if tag not in _TAGS:
+            return None
+        new = ET.Element(tag)
+        items = list(el.attrib.items())
+        style = el.get("style")
+        if style:
+            for decl in style.split(";"):
+                if ":" in decl:
+                    k, v = (x.strip() for x in decl.split(":", 1))
+                    if k in _STYLE_PROPS:
+                        items.append((k, v))
+        for k, v in items:
+            n = _local(k)
+            if n.startswith("data-") and "{" not in k and re.fullmatch(r"data-[a-z-]+", n):
+                new.set(n, v)
+                continue
+            if n not in _ATTRS or n.lower().startswith("on"):
+                continue
+            if n == "id":
+                v = pre + "".join(ch for ch in v if ch.isalnum() or ch in "-_")[:60]
+            elif n == "href":
+                if not v.startswith("#"):
+                    continue
+                v = "#" + pre + "".join(ch for ch in v[1:] if ch.isalnum() or ch in "-_")[:60]
+            else:
+                v = ref(v)
+                if v is None:
+                    continue
+            new.set(n, v)
+        new.text = el.text if tag in ("text", "tspan", "title", "desc") else None
+        for child in el:
+            c = clean(child)
+            if c is not None:
+                new.append(c)
+                c.tail = None
+        return new
+
+    out = clean(root)
+    if out is None or out.tag != "svg":
+        raise ValueError("not an SVG document")
+    out.set("xmlns", _SVG_NS)
+    out.set("role", "img")
+    out.set("aria-label", safe_name(label, 200))
+    for k in ("width", "height"):
+        out.attrib.pop(k, None)
+    return ET.tostring(out, encoding="unicode", method="xml")

@@ -15,7 +15,8 @@ Records and lines (the same on every tier and for every block size):
   not close on that line is one bad line ("malformed CSV"), and the next line is read
   as a record of its own, so a stray quote costs one line, never the rest of the file;
 - fields have no length limit of their own (the csv module's 131,072-character limit
-  is lifted, as Arrow has none): a field is bounded by the length of its line.
+  is lifted in ``tracechain/ingest/__init__.py``, as Arrow has none): a field is
+  bounded by the length of its line.
 
 A file is taken for CSV only when its first line reads as a header (two or more
 distinct, name-like cells) and the lines after it split into as many fields; the
@@ -41,13 +42,6 @@ from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, 
 from .tabular import table_to_chunk
 
 __all__ = ["CsvParser", "read_header", "choose_delimiter"]
-
-# Arrow's reader has no field size limit; the csv module's (131,072 characters by
-# default) made a long field a bad line on one tier only. Lifted for the process (it
-# only ever grows, so no other reader of the csv module loses a field it read).
-_FIELD_LIMIT = 2**31 - 1
-if csv.field_size_limit() < _FIELD_LIMIT:
-    csv.field_size_limit(_FIELD_LIMIT)
 
 EDGE_HEADERS = ({"from", "to"}, {"source", "target"}, {"src", "dst"})
 

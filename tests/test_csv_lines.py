@@ -122,3 +122,32 @@ def test_strict_mode_names_the_stray_quote_line(tmp_path, block_bytes):
         read(path, block_bytes, strict=True)
     assert info.value.line == 3
     assert "stray.csv" in str(info.value)
+
+
+TIME_CASES = [
+    # (time text, an event?) -- Python's float() reads "1e999" and a 5,000-digit number
+    # as infinity (IEEE 754 overflow, its documentation): no time, so an unreadable one;
+    # "nan", "NULL", "N/A" are text that is no time; an empty field is a missing time.
+    ("1e999", False), ("9" * 5000, False), ("-inf", False), ("nan", False), ("NULL", False), ("N/A", False),
+    ("", True), ("12", True),
+]
+
+
+@pytest.mark.parametrize("block_bytes", BLOCKS)
+@pytest.mark.parametrize("with_bad_row", [False, True], ids=["clean-block", "block-with-a-bad-row"])
+@pytest.mark.parametrize("text,event", TIME_CASES, ids=[c[0][:8] or "empty" for c in TIME_CASES])
+def test_a_time_reads_the_same_whatever_its_neighbours(tmp_path, block_bytes, with_bad_row, text, event):
+    # a bad row sends its block to the csv module tier; a clean block is Arrow's: the
+    # same time must be read alike on both, and for every block size
+    lines = [b"session_id,ts,event", b"s1,10,a", b"s1," + text.encode() + b",b", b"s1,30,c"]
+    if with_bad_row:
+        lines.append(b"only,two")
+    path = tmp_path / "times.csv"
+    path.write_bytes(b"\n".join(lines) + b"\n")
+    events, report = read(path, block_bytes)
+    want = [("s1", "a", 2)] + ([("s1", "b", 3)] if event else []) + [("s1", "c", 4)]
+    assert events == want
+    skipped = Counter() if event else Counter({"unreadable time in field 'ts'": 1})
+    if with_bad_row:
+        skipped["wrong number of fields"] += 1
+    assert report.skipped == skipped

@@ -301,7 +301,8 @@ def _fast_parse(
             read_options=pcsv.ReadOptions(column_names=header, block_size=size),
             parse_options=pcsv.ParseOptions(delimiter=delim, newlines_in_values=False),
             convert_options=pcsv.ConvertOptions(
-                include_columns=wanted, column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False
+                include_columns=wanted, column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False,
+                null_values=[""],  # ("NULL", "nan", "N/A" are text, as for the csv module tier)
             ),
         )
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):

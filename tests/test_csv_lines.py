@@ -151,3 +151,14 @@ def test_a_time_reads_the_same_whatever_its_neighbours(tmp_path, block_bytes, wi
     if with_bad_row:
         skipped["wrong number of fields"] += 1
     assert report.skipped == skipped
+
+
+@pytest.mark.parametrize("header", [b"session_id,t\rs,event", b'session_id,"ts,event'])
+def test_a_header_that_is_not_one_csv_line_is_an_input_error(tmp_path, header):
+    # fuzz campaign (seed 5, input 741): a bare CR in the header row ended in the csv
+    # module's "new-line character seen in unquoted field" traceback
+    path = tmp_path / "head.csv"
+    path.write_bytes(header + b"\ns1,1,a\n")
+    with pytest.raises(IngestError) as info:
+        read(path)
+    assert info.value.line == 1 and "head.csv" in str(info.value)

@@ -161,14 +161,21 @@ def read_header(source: Source) -> tuple[list[str], str]:
         raise IngestError("the first line is empty; a CSV log needs a header row", source.name, 1)
     found = choose_delimiter(head) or choose_delimiter(head, need_header=False)
     if found is not None:
-        delim, rows, _ = found
-        names = rows[0]
+        delim = found[0]
     else:
         counts = {d: first.count(d) for d in (",", "\t", ";", "|")}
         delim = max(counts, key=lambda d: counts[d])
         if counts[delim] == 0:
             delim = ","
-        names = next(csv.reader([first], delimiter=delim))
+    # the header is line 1, read as every record is: one line (see the module notes)
+    reader = csv.reader((first, ""), delimiter=delim)
+    try:
+        names = next(reader)
+    except csv.Error as err:
+        raise IngestError(f"the header row is not CSV: {err}", source.name, 1) from None
+    if reader.line_num > 1:
+        raise IngestError("the header row opens a quoted field it does not close (a record is one line)",
+                          source.name, 1)
     return [n.strip() for n in names], delim
 
 

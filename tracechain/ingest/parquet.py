@@ -15,7 +15,8 @@ binary column) is read with U+FFFD in place of each bad byte sequence, as the CS
 reader reads such bytes; in the time column that makes the time unreadable for the
 row. A file that cannot be read (not Parquet, damaged, or a compressed stream that
 is cut off or corrupt) is an input error naming the file (and the row after which
-reading failed).
+reading failed); so is a file whose data gives fewer rows than its footer declares
+(damage pyarrow may read without an error, depending on the batch size).
 
 Settings (``ReadOptions.extra``): ``batch_rows`` (int, default 65536), rows per batch.
 """
@@ -77,6 +78,12 @@ class ParquetParser:
                 chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
                 if chunk is not None:
                     yield chunk
+            declared = pf.metadata.num_rows
+            if row - 1 != declared:
+                # damaged column data may decode to fewer rows without an error from
+                # pyarrow, depending on the batch size: the footer's count tells
+                raise IngestError(f"damaged Parquet file: {row - 1} rows read, its footer declares {declared}",
+                                  source.name, row)
 
 
 def _why(err: BaseException) -> str:

@@ -162,3 +162,15 @@ def test_a_header_that_is_not_one_csv_line_is_an_input_error(tmp_path, header):
     with pytest.raises(IngestError) as info:
         read(path)
     assert info.value.line == 1 and "head.csv" in str(info.value)
+
+
+@pytest.mark.parametrize("block_bytes", BLOCKS)
+def test_a_quote_closed_on_a_later_line_still_costs_one_line(tmp_path, block_bytes):
+    # line 3 opens a quote that line 4 would close: line 3 is malformed, line 4 is read on
+    # its own (a quote inside an unquoted field is a plain character there, as Python's
+    # csv module and Arrow both read it: 'c"'), and line 5 is an event
+    path = tmp_path / "stray.csv"
+    path.write_bytes(b'session_id,ts,event\ns1,1,a\ns1,2,"b\ns1,3,c"\ns1,4,d\n')
+    events, report = read(path, block_bytes)
+    assert events == [("s1", "a", 2), ("s1", 'c"', 4), ("s1", "d", 5)]
+    assert [(p.line, p.reason) for p in report.problems] == [(3, "malformed CSV")]

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 import re
 from collections.abc import Iterator
 
@@ -334,32 +335,48 @@ def _slow_parse(block, first_line, header, delim, wanted, name, report: ParseRep
         lines.pop()  # (nothing after the last line end)
     pending: IngestError | None = None
     width = len(header)
-    for k, line in enumerate(lines):
-        ln = first_line + k
-        if line.endswith("\r"):
-            line = line[:-1]  # CRLF
-        # one record per line: a second item after the line shows a quote left open
-        reader = csv.reader((line, ""), delimiter=delim)
-        try:
-            row = next(reader)
-        except csv.Error as err:
-            pending = _bad(report, name, ln, "malformed CSV", strict, str(err))
-        except StopIteration:  # pragma: no cover - a reader always yields for a line
-            row = []
-        else:
-            if reader.line_num > 1:
-                pending = _bad(report, name, ln, "malformed CSV", strict,
-                               "a quoted field does not close on its line (a record is one line)")
-            elif not row or all(not c.strip() for c in row):
-                pending = _bad(report, name, ln, "blank line", strict)
-            elif len(row) != width:
-                detail = f"{len(row)} fields, header has {width}"
-                pending = _bad(report, name, ln, "wrong number of fields", strict, detail)
+    n = len(lines)
+    lines = [ln[:-1] if ln.endswith("\r") else ln for ln in lines]  # (CRLF)
+    lines.append("")  # a quote left open on the last line runs into this, which shows it
+    pos = 0  # the line a reader starts at
+    while pos < n and pending is None:
+        # one reader over the lines; a record that took more than one line had a quote
+        # left open on its first line: that line is bad, and a new reader starts after it
+        reader = csv.reader(itertools.islice(lines, pos, None), delimiter=delim)
+        used = 0  # lines this reader has taken
+        restart = False
+        while pos + used < n:
+            k = pos + used  # the record's (first) line
+            ln = first_line + k
+            try:
+                row = next(reader)
+            except StopIteration:  # pragma: no cover - the sentinel line stops it first
+                break
+            except csv.Error as err:
+                pending = _bad(report, name, ln, "malformed CSV", strict, str(err))
+                restart = reader.line_num - used > 1
+                used = reader.line_num
             else:
-                for w, i in zip(wanted, idx):
-                    out[w].append(row[i])
-                line_nos.append(ln)
-        if pending is not None:
+                if reader.line_num - used > 1:
+                    pending = _bad(report, name, ln, "malformed CSV", strict,
+                                   "a quoted field does not close on its line (a record is one line)")
+                    restart = True
+                elif not row or all(not c.strip() for c in row):
+                    pending = _bad(report, name, ln, "blank line", strict)
+                elif len(row) != width:
+                    detail = f"{len(row)} fields, header has {width}"
+                    pending = _bad(report, name, ln, "wrong number of fields", strict, detail)
+                else:
+                    for w, i in zip(wanted, idx):
+                        out[w].append(row[i])
+                    line_nos.append(ln)
+                used = reader.line_num
+            if pending is not None or restart:
+                pos = k + 1
+                break
+        else:
+            break  # every line read
+        if not restart:
             break
     cols = {w: pa.array(v, type=pa.string()) for w, v in out.items()}
     return cols, np.asarray(line_nos, dtype=np.int64), pending

@@ -15,7 +15,8 @@ Records and lines (the same on every tier and for every block size):
   not close on that line is one bad line ("malformed CSV"), and the next line is read
   as a record of its own, so a stray quote costs one line, never the rest of the file;
 - fields have no length limit of their own (the csv module's 131,072-character limit
-  is lifted, as Arrow has none): a field is bounded by the length of its line.
+  is lifted in ``tracechain/ingest/__init__.py``, as Arrow has none): a field is
+  bounded by the length of its line.
 
 A file is taken for CSV only when its first line reads as a header (two or more
 distinct, name-like cells) and the lines after it split into as many fields; the
@@ -26,6 +27,7 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 import re
 from collections.abc import Iterator
 
@@ -41,13 +43,6 @@ from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, 
 from .tabular import table_to_chunk
 
 __all__ = ["CsvParser", "read_header", "choose_delimiter"]
-
-# Arrow's reader has no field size limit; the csv module's (131,072 characters by
-# default) made a long field a bad line on one tier only. Lifted for the process (it
-# only ever grows, so no other reader of the csv module loses a field it read).
-_FIELD_LIMIT = 2**31 - 1
-if csv.field_size_limit() < _FIELD_LIMIT:
-    csv.field_size_limit(_FIELD_LIMIT)
 
 EDGE_HEADERS = ({"from", "to"}, {"source", "target"}, {"src", "dst"})
 
@@ -167,14 +162,21 @@ def read_header(source: Source) -> tuple[list[str], str]:
         raise IngestError("the first line is empty; a CSV log needs a header row", source.name, 1)
     found = choose_delimiter(head) or choose_delimiter(head, need_header=False)
     if found is not None:
-        delim, rows, _ = found
-        names = rows[0]
+        delim = found[0]
     else:
         counts = {d: first.count(d) for d in (",", "\t", ";", "|")}
         delim = max(counts, key=lambda d: counts[d])
         if counts[delim] == 0:
             delim = ","
-        names = next(csv.reader([first], delimiter=delim))
+    # the header is line 1, read as every record is: one line (see the module notes)
+    reader = csv.reader((first, ""), delimiter=delim)
+    try:
+        names = next(reader)
+    except csv.Error as err:
+        raise IngestError(f"the header row is not CSV: {err}", source.name, 1) from None
+    if reader.line_num > 1:
+        raise IngestError("the header row opens a quoted field it does not close (a record is one line)",
+                          source.name, 1)
     return [n.strip() for n in names], delim
 
 
@@ -307,7 +309,8 @@ def _fast_parse(
             read_options=pcsv.ReadOptions(column_names=header, block_size=size),
             parse_options=pcsv.ParseOptions(delimiter=delim, newlines_in_values=False),
             convert_options=pcsv.ConvertOptions(
-                include_columns=wanted, column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False
+                include_columns=wanted, column_types=types, strings_can_be_null=False, quoted_strings_can_be_null=False,
+                null_values=[""],  # ("NULL", "nan", "N/A" are text, as for the csv module tier)
             ),
         )
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):
@@ -332,32 +335,48 @@ def _slow_parse(block, first_line, header, delim, wanted, name, report: ParseRep
         lines.pop()  # (nothing after the last line end)
     pending: IngestError | None = None
     width = len(header)
-    for k, line in enumerate(lines):
-        ln = first_line + k
-        if line.endswith("\r"):
-            line = line[:-1]  # CRLF
-        # one record per line: a second item after the line shows a quote left open
-        reader = csv.reader((line, ""), delimiter=delim)
-        try:
-            row = next(reader)
-        except csv.Error as err:
-            pending = _bad(report, name, ln, "malformed CSV", strict, str(err))
-        except StopIteration:  # pragma: no cover - a reader always yields for a line
-            row = []
-        else:
-            if reader.line_num > 1:
-                pending = _bad(report, name, ln, "malformed CSV", strict,
-                               "a quoted field does not close on its line (a record is one line)")
-            elif not row or all(not c.strip() for c in row):
-                pending = _bad(report, name, ln, "blank line", strict)
-            elif len(row) != width:
-                detail = f"{len(row)} fields, header has {width}"
-                pending = _bad(report, name, ln, "wrong number of fields", strict, detail)
+    n = len(lines)
+    lines = [ln[:-1] if ln.endswith("\r") else ln for ln in lines]  # (CRLF)
+    lines.append("")  # a quote left open on the last line runs into this, which shows it
+    pos = 0  # the line a reader starts at
+    while pos < n and pending is None:
+        # one reader over the lines; a record that took more than one line had a quote
+        # left open on its first line: that line is bad, and a new reader starts after it
+        reader = csv.reader(itertools.islice(lines, pos, None), delimiter=delim)
+        used = 0  # lines this reader has taken
+        restart = False
+        while pos + used < n:
+            k = pos + used  # the record's (first) line
+            ln = first_line + k
+            try:
+                row = next(reader)
+            except StopIteration:  # pragma: no cover - the sentinel line stops it first
+                break
+            except csv.Error as err:
+                pending = _bad(report, name, ln, "malformed CSV", strict, str(err))
+                restart = reader.line_num - used > 1
+                used = reader.line_num
             else:
-                for w, i in zip(wanted, idx):
-                    out[w].append(row[i])
-                line_nos.append(ln)
-        if pending is not None:
+                if reader.line_num - used > 1:
+                    pending = _bad(report, name, ln, "malformed CSV", strict,
+                                   "a quoted field does not close on its line (a record is one line)")
+                    restart = True
+                elif not row or all(not c.strip() for c in row):
+                    pending = _bad(report, name, ln, "blank line", strict)
+                elif len(row) != width:
+                    detail = f"{len(row)} fields, header has {width}"
+                    pending = _bad(report, name, ln, "wrong number of fields", strict, detail)
+                else:
+                    for w, i in zip(wanted, idx):
+                        out[w].append(row[i])
+                    line_nos.append(ln)
+                used = reader.line_num
+            if pending is not None or restart:
+                pos = k + 1
+                break
+        else:
+            break  # every line read
+        if not restart:
             break
     cols = {w: pa.array(v, type=pa.string()) for w, v in out.items()}
     return cols, np.asarray(line_nos, dtype=np.int64), pending

@@ -239,6 +239,13 @@ def _read_arrow(data: bytes, rows: _Rows):
 
     if body:
         try:
+            # pyarrow hands a bad row to the handler as text: with invalid UTF-8 in it
+            # that fails inside pyarrow ("Exception ignored ... UnicodeDecodeError" on
+            # stderr); such data goes to the slow tier, which reads it as it always has
+            pa.array([body], pa.binary()).cast(pa.string())
+        except pa.ArrowInvalid:
+            return None
+        try:
             table = pcsv.read_csv(
                 pa.py_buffer(body),
                 read_options=pcsv.ReadOptions(column_names=[f"c{k}" for k in range(width)], use_threads=True,

@@ -148,8 +148,7 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
             vals = to_numpy(pc.cast(arr, pa.float64(), safe=False)).astype(np.float64, copy=True)
         else:  # (one pass from the buffer; astype copies)
             vals = to_numpy(arr).astype(np.float64)
-        vals *= _epoch_scale(vals, spec.time_unit)
-        return vals, np.zeros(n, dtype=bool)
+        return _numeric_times(vals, arr, spec)
     if pa.types.is_boolean(typ):
         return np.full(n, np.nan), ~arr.is_null().to_numpy(zero_copy_only=False)
     # strings (or anything else, as text)
@@ -170,7 +169,7 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
         try:
             num = pc.cast(arr, pa.float64())
             vals = num.to_numpy(zero_copy_only=False).astype(np.float64, copy=True)
-            return vals * _epoch_scale(vals, spec.time_unit), np.zeros(n, dtype=bool)
+            return _numeric_times(vals, num, spec)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             pass
         try:
@@ -184,6 +183,23 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             pass
     return _times_one_by_one(arr, spec, n)
+
+
+def _numeric_times(vals: np.ndarray, arr: pa.Array, spec: FieldSpec) -> tuple[np.ndarray, np.ndarray]:
+    """Epoch numbers as seconds; a value that is not finite (NaN, or an infinity such as
+    ``1e999`` or a number of thousands of digits overflows to) is no time: bad, as on the
+    one-by-one path, so that a value reads the same whatever the other values of its
+    column. Nulls stay NaN and are not bad."""
+    finite = np.isfinite(vals)
+    if finite.all():
+        vals *= _epoch_scale(vals, spec.time_unit)
+        return vals, np.zeros(len(vals), dtype=bool)
+    bad = ~finite
+    if arr.null_count:
+        bad &= ~to_numpy(arr.is_null())
+    vals[~finite] = np.nan
+    vals *= _epoch_scale(vals, spec.time_unit)
+    return vals, bad
 
 
 def _times_one_by_one(arr: pa.Array, spec: FieldSpec, n: int) -> tuple[np.ndarray, np.ndarray]:

@@ -10,6 +10,14 @@ other tabular formats (:func:`tracechain.ingest.tabular.table_to_chunk`). Timest
 columns (any unit, with or without a time zone), epoch numbers and ISO 8601 text are
 all read as times.
 
+Text that is not valid UTF-8 (a string column written without validation, or a
+binary column) is read with U+FFFD in place of each bad byte sequence, as the CSV
+reader reads such bytes; in the time column that makes the time unreadable for the
+row. A file that cannot be read (not Parquet, damaged, or a compressed stream that
+is cut off or corrupt) is an input error naming the file (and the row after which
+reading failed); so is a file whose data gives fewer rows than its footer declares
+(damage pyarrow may read without an error, depending on the batch size).
+
 Settings (``ReadOptions.extra``): ``batch_rows`` (int, default 65536), rows per batch.
 """
 
@@ -25,7 +33,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
-from .sources import Source, open_binary
+from .sources import DECOMPRESS_ERRORS, Source, open_binary
 from .tabular import table_to_chunk
 
 __all__ = ["ParquetParser"]
@@ -47,8 +55,8 @@ class ParquetParser:
             try:
                 pf = pq.ParquetFile(f)
                 columns = list(pf.schema_arrow.names)
-            except (pa.ArrowException, OSError, ValueError) as err:
-                raise IngestError(f"not a readable Parquet file: {err}", source.name) from None
+            except (pa.ArrowException, ValueError, *DECOMPRESS_ERRORS) as err:
+                raise IngestError(f"not a readable Parquet file: {_why(err)}", source.name) from None
             names = resolve_fields(options.fields, columns, source.name)
             report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
             wanted = list(dict.fromkeys(n for n in names if n is not None))
@@ -59,14 +67,57 @@ class ParquetParser:
                     batch = next(batches)
                 except StopIteration:
                     break
-                except (pa.ArrowException, OSError, ValueError) as err:
-                    raise IngestError(f"cannot read Parquet data after row {row - 1}: {err}", source.name,
+                except (pa.ArrowException, ValueError, *DECOMPRESS_ERRORS) as err:
+                    raise IngestError(f"cannot read Parquet data after row {row - 1}: {_why(err)}", source.name,
                                       row) from None
                 n = batch.num_rows
                 report.lines_read += n
-                cols = {c: batch.column(c) for c in wanted}
+                cols = {c: _utf8(batch.column(c)) for c in wanted}
                 lines = np.arange(row, row + n, dtype=np.int64)
                 row += n
                 chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
                 if chunk is not None:
                     yield chunk
+            declared = pf.metadata.num_rows
+            if row - 1 != declared:
+                # damaged column data may decode to fewer rows without an error from
+                # pyarrow, depending on the batch size: the footer's count tells
+                raise IngestError(f"damaged Parquet file: {row - 1} rows read, its footer declares {declared}",
+                                  source.name, row)
+
+
+def _why(err: BaseException) -> str:
+    """The reason for a read error, saying so when a compressed stream is damaged."""
+    if isinstance(err, pa.ArrowException):
+        return str(err)
+    if isinstance(err, DECOMPRESS_ERRORS) and not type(err) is OSError:
+        return f"cannot decompress ({type(err).__name__}: {err})"
+    if isinstance(err, OSError):
+        return f"cannot read ({err})"
+    return str(err)
+
+
+def _utf8(arr: pa.Array) -> pa.Array:
+    """A text column whose values are all valid UTF-8 (bad byte sequences become U+FFFD);
+    other columns are returned as they are."""
+    if pa.types.is_dictionary(arr.type) and (pa.types.is_string(arr.type.value_type)
+                                             or pa.types.is_binary(arr.type.value_type)
+                                             or pa.types.is_large_string(arr.type.value_type)
+                                             or pa.types.is_large_binary(arr.type.value_type)):
+        arr = arr.dictionary_decode()
+    typ = arr.type
+    if pa.types.is_string(typ) or pa.types.is_large_string(typ):
+        try:
+            arr.validate(full=True)  # (checks the UTF-8, in C)
+            return arr
+        except pa.ArrowInvalid:
+            raw = arr.cast(pa.large_binary() if pa.types.is_large_string(typ) else pa.binary())
+    elif pa.types.is_binary(typ) or pa.types.is_large_binary(typ):
+        raw = arr
+        try:
+            return arr.cast(pa.string())
+        except pa.ArrowInvalid:
+            pass
+    else:
+        return arr
+    return pa.array([None if v is None else v.decode("utf-8", "replace") for v in raw.to_pylist()], pa.string())

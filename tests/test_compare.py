@@ -121,6 +121,12 @@ def test_benjamini_hochberg_matches_scipy():
         ours = benjamini_hochberg(p)
         ref = stats.false_discovery_control(p, method="bh")
         assert np.allclose(ours, ref, rtol=1e-12, atol=0)
+    # ties, ones and an empty input; the step-up rule by hand (Benjamini & Hochberg 1995):
+    # sorted p = .01 .02 .02 .5 1 (m = 5): m p(i)/i = .05 .05 .0333 .625 1, then the running
+    # minimum from the top: .0333 .0333 .0333 .625 1
+    p = [0.02, 1.0, 0.01, 0.5, 0.02]
+    assert benjamini_hochberg(p) == pytest.approx([0.1 / 3, 1.0, 0.1 / 3, 0.625, 0.1 / 3])
+    assert len(benjamini_hochberg([])) == 0
 
 
 # -- behaviour on seeded samples ----------------------------------------------------------------

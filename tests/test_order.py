@@ -272,3 +272,118 @@ def test_order_command_bad_input_is_one_line(tmp_path, capsys):
     out, err = capsys.readouterr()
     assert status == 2
     assert "Traceback" not in err and err.startswith("tracechain: error: ")
+
+
+# -- issue 16: size of the test, an independent oracle, the two forms, JSON and periods --------
+@pytest.mark.parametrize("include_end", [True, False])
+def test_false_rejection_rate_on_first_order_data_is_nominal(include_end):
+    # Under a first-order source the LR test of order 1 against 2 is asymptotically χ² with the
+    # Anderson–Goodman df (Anderson & Goodman 1957; Billingsley, "Statistical methods in Markov
+    # chains", Ann. Math. Statist. 32(1), 1961): the share of rejections at 5 % must be 0.05
+    # within sampling error. 300 seeded replicates; 0.05 must lie in the 99 % Clopper-Pearson
+    # interval of the observed share (scipy.stats.binomtest).
+    rng = np.random.default_rng(1957)
+    P1 = np.array([[0.2, 0.5, 0.3], [0.4, 0.2, 0.4], [0.3, 0.3, 0.4]])
+    reps, rejected = 300, 0
+    for _ in range(reps):
+        seqs = simulate_first_order(rng, P1, np.ones(3) / 3, np.full(3, 0.05), 40)
+        t = order_table(seqs, max_order=2, include_end=include_end, level=0.05)
+        rejected += t.tests[1].rejected
+    ci = stats.binomtest(rejected, reps, 0.05).proportion_ci(confidence_level=0.99, method="exact")
+    assert ci.low <= 0.05 <= ci.high, (rejected, ci)
+
+
+def test_statistic_equals_scipy_chi2_contingency_g_test():
+    # Oracle: the order-(k) vs (k+1) statistic is the sum, over contexts j of length k, of the
+    # likelihood-ratio (G) statistic of the table "older symbol i × next symbol" given j;
+    # scipy.stats.chi2_contingency(lambda_="log-likelihood") computes each G and its dof.
+    rng = np.random.default_rng(61)
+    s = 3
+    P = rng.dirichlet(np.ones(s) * 4, size=s)
+    seqs = simulate_first_order(rng, P, np.ones(s) / s, np.zeros(s), 15, max_len=300)
+    t = order_table(seqs, max_order=2, start="condition", include_end=False)
+    # order 0 vs 1, conditioning on 2 events: one table previous × next
+    tab = np.zeros((s, s))
+    for q in seqs:
+        for a in range(2, len(q)):
+            tab[int(q[a - 1][1:]), int(q[a][1:])] += 1
+    g = stats.chi2_contingency(tab, correction=False, lambda_="log-likelihood")
+    assert t.tests[0].statistic == pytest.approx(g.statistic, rel=1e-9) and t.tests[0].df == g.dof
+    # order 1 vs 2: one table (two back × next) per middle state j, summed
+    tabs = np.zeros((s, s, s))
+    for q in seqs:
+        for a in range(2, len(q)):
+            tabs[int(q[a - 1][1:]), int(q[a - 2][1:]), int(q[a][1:])] += 1
+    parts = [stats.chi2_contingency(tabs[j], correction=False, lambda_="log-likelihood") for j in range(s)]
+    assert t.tests[1].statistic == pytest.approx(sum(p.statistic for p in parts), rel=1e-9)
+    assert t.tests[1].df == sum(p.dof for p in parts)
+    assert t.tests[1].p_value == pytest.approx(stats.chi2.sf(sum(p.statistic for p in parts),
+                                                             sum(p.dof for p in parts)))
+
+
+def test_order_command_no_end_and_json(tmp_path, capsys):
+    import json
+
+    log = write_jsonl(tmp_path / "shop.jsonl", sessions_to_rows(SESSIONS))
+    seqs = session_sequences([chunk_of(SESSIONS)], ShapeOptions(goals=("Buy",)))
+    for flags, include_end, form in (([], True, "chain-with-end"), (["--no-end"], False, "no-end")):
+        status = run_command(["order", log, "--goal", "Buy", "--max-order", "2", "--json", "-", *flags])
+        out, err = capsys.readouterr()
+        assert status == 0, err
+        doc = json.loads(out)
+        ref = order_table(seqs, 2, include_end=include_end)
+        assert doc["form"] == form and doc["symbols"] == ref.alphabet + include_end
+        assert [o["aic"] for o in doc["orders"]] == pytest.approx([f.aic for f in ref.fits])
+        assert [o["bic"] for o in doc["orders"]] == pytest.approx([f.bic for f in ref.fits])
+        assert [o["test_against_next"]["df"] for o in doc["orders"][:2]] == [x.df for x in ref.tests]
+        assert doc["orders"][2]["test_against_next"] is None
+        assert doc["recommendation"]["order"] == ref.recommended and "lowest order" in doc["recommendation"]["rule"]
+        status = run_command(["order", log, "--goal", "Buy", "--max-order", "2", *flags])
+        out, _ = capsys.readouterr()
+        assert ("textbook form (--no-end)" in out) == (not include_end)
+        assert ("chain-with-end form" in out) == include_end
+        assert f"s = {ref.alphabet + include_end}" in out
+    # the two forms differ on these sessions (the end symbol is predicted in one only)
+    assert order_table(seqs, 1).observations == order_table(seqs, 1, include_end=False).observations + len(seqs)
+
+
+def test_mixture_of_two_periods_is_flagged_and_split_at_tests_within(tmp_path, capsys):
+    import json
+
+    # two first-order chains, one per period: pooled they look second order to the test
+    rng = np.random.default_rng(88)
+    PA = np.array([[0.1, 0.8, 0.1], [0.1, 0.1, 0.8], [0.8, 0.1, 0.1]])
+    PB = np.array([[0.1, 0.1, 0.8], [0.8, 0.1, 0.1], [0.1, 0.8, 0.1]])
+    a = simulate_first_order(rng, PA, np.ones(3) / 3, np.full(3, 0.1), 600)
+    b = simulate_first_order(rng, PB, np.ones(3) / 3, np.full(3, 0.1), 600)
+    t = order_table(a + b, max_order=2)
+    assert t.tests[1].rejected  # memory that is not there in either period
+    rows, sess = [], {}
+    for k, q in enumerate(a + b):
+        base = 1_000_000 if k < len(a) else 2_000_000
+        sess[f"u{k}"] = q
+        for j, ev in enumerate(q):
+            rows.append({"session_id": f"u{k}", "timestamp": base + 10 * k + j, "event": ev})
+    log = write_jsonl(tmp_path / "two.jsonl", rows)
+    status = run_command(["order", log, "--max-order", "2", "--json", "-", "--split-at", "1970-01-24T00:00:00Z"])
+    out, err = capsys.readouterr()
+    assert status == 0, err
+    doc = json.loads(out)
+    assert [p["sessions"] for p in doc["periods"]] == [len(a), len(b)]
+    for p, part in zip(doc["periods"], (a, b)):
+        ref = order_table(part, 2)
+        assert p["table"]["orders"][1]["test_against_next"]["statistic"] == pytest.approx(ref.tests[1].statistic)
+
+
+def test_heterogeneity_note_when_tests_and_criteria_disagree():
+    # a constructed disagreement: the note appears exactly when the sequential recommendation is
+    # above both AIC's and BIC's order
+    rng = np.random.default_rng(3)
+    P1 = np.array([[0.2, 0.5, 0.3], [0.4, 0.2, 0.4], [0.3, 0.3, 0.4]])
+    seen = set()
+    for _ in range(60):
+        t = order_table(simulate_first_order(rng, P1, np.ones(3) / 3, np.full(3, 0.1), 60), max_order=2)
+        flagged = any("look like memory" in n for n in t.notes)
+        assert flagged == (t.recommended > max(t.aic_order, t.bic_order))
+        seen.add(flagged)
+    assert seen == {True, False}

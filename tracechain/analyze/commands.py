@@ -11,7 +11,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from ..errors import UsageError
+from ..errors import AnalysisError, UsageError
 
 __all__ = ["register", "cmd_order", "cmd_simulate", "cmd_whatif"]
 
@@ -92,6 +92,15 @@ def sessions_from_args(args, what: str):
                                          progress=progress_from_args(args)), shape)
 
 
+def _iso_time(text: str) -> float:
+    from .compare import parse_time
+
+    try:
+        return parse_time(text)
+    except UsageError as err:
+        raise argparse.ArgumentTypeError(str(err)) from None
+
+
 def register(subparsers) -> None:
     """Add ``order``, ``simulate`` and ``whatif`` to the ``tracechain`` subparsers action."""
     from ..cli import _add_input_options
@@ -105,6 +114,14 @@ def register(subparsers) -> None:
     o.add_argument("--level", type=_level, default=0.05, metavar="ALPHA", help="significance level of the tests (default 0.05)")
     o.add_argument("--condition", action="store_true",
                    help="condition on the first K events of each session instead of using partial windows")
+    o.add_argument("--no-end", action="store_true",
+                   help="the textbook Anderson-Goodman form: the end of a session is not predicted as a symbol "
+                        "(default: the chain-with-end form, where ending is one more outcome, as in tracechain's "
+                        "chains)")
+    o.add_argument("--json", metavar="FILE", help="write the table and the recommendation as JSON ('-' for stdout)")
+    o.add_argument("--split-at", metavar="TIME", type=_iso_time,
+                   help="also test within each period: sessions starting before TIME (ISO 8601) and the rest; "
+                        "heterogeneity between periods mimics memory")
     o.set_defaults(handler=cmd_order)
 
     s = subparsers.add_parser(
@@ -161,12 +178,70 @@ def cmd_order(args: argparse.Namespace) -> int:
     if not len(sessions):
         raise UsageError("no sessions in the input")
     K = args.max_order
-    table = order_table(sessions, K, start="condition" if args.condition else "partial", goals=tuple(goals),
-                        level=args.level)
+    kw = dict(start="condition" if args.condition else "partial", include_end=not args.no_end, goals=tuple(goals),
+              level=args.level)
+    table = order_table(sessions, K, **kw)
+    periods = []
+    if args.split_at is not None:
+        import math
+
+        from .order import Sessions
+
+        first = [float(t[0]) if len(t) else math.nan for t in sessions.times]
+        if all(math.isnan(x) for x in first):
+            raise UsageError("--split-at needs times, and no session has one (name the time field with --time-field)")
+        for name, pick in (("before", lambda x: x < args.split_at), ("from", lambda x: x >= args.split_at)):
+            idx = [i for i, x in enumerate(first) if not math.isnan(x) and pick(x)]
+            sub = Sessions(tuple(sessions.sequences[i] for i in idx), tuple(sessions.times[i] for i in idx),
+                           tuple(sessions.keys[i] for i in idx), sessions.goals)
+            try:
+                periods.append((name, order_table(sub, K, **kw) if len(sub) else None, len(sub)))
+            except AnalysisError:
+                periods.append((name, None, len(sub)))
+    if args.json:
+        from ..report.json_report import dumps
+        from ..report.writer import write_output
+        from .order import order_document
+
+        doc = order_document(table)
+        if args.split_at is not None:
+            from datetime import datetime, timezone
+
+            when = datetime.fromtimestamp(args.split_at, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+            doc["periods"] = [{"period": f"{name} {when}", "sessions": n,
+                               "table": None if t is None else order_document(t)} for name, t, n in periods]
+        written = write_output(args.json, dumps(doc))
+        if written != "-":
+            print(f"wrote {written}", file=sys.stderr)
+        else:
+            return 0
+    sys.stdout.write("\n".join(_order_lines(table, K, safe_text)) + "\n")
+    for name, t, n in periods:
+        sys.stdout.write(f"\nsessions starting {name} {_when(args.split_at)} ({n:,}):\n")
+        if t is None:
+            sys.stdout.write("  too few sessions to fit\n")
+        else:
+            sys.stdout.write("\n".join(_order_lines(t, K, safe_text)) + "\n")
+    return 0
+
+
+def _when(t: float) -> str:
+    from datetime import datetime, timezone
+
+    return datetime.fromtimestamp(t, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+
+
+def _order_lines(table, K: int, safe_text) -> list[str]:
+    symbols = table.alphabet + (1 if table.include_end else 0)
+    form = ("chain-with-end form: the end of a session is one more outcome" if table.include_end
+            else "textbook form (--no-end): the end of a session is not predicted")
     lines = [
-        f"tracechain order: {table.sessions:,} sessions, {table.observations:,} predicted events "
-        f"(ends included), {table.alphabet:,} states; "
+        f"tracechain order: {table.sessions:,} sessions, {table.observations:,} predicted events"
+        + (" (ends included)" if table.include_end else "") + f", {table.alphabet:,} states; "
         + ("first events as partial windows" if table.start == "partial" else f"conditioning on the first {K} events"),
+        f"{form}; {symbols:,} symbols, so with every transition observed the test of order k against k+1 has "
+        f"s^k (s-1)^2 degrees of freedom with s = {symbols:,} (fewer where transitions are never seen; the df "
+        "column gives the value used)",
         "",
     ]
     rows = []
@@ -191,9 +266,8 @@ def cmd_order(args: argparse.Namespace) -> int:
     if rec == K:
         lines.append(f"note: every test up to order {K} was rejected; try a larger --max-order if the data allow")
     for n in table.notes:
-        lines.append(f"note: {safe_text(n, 200)}")
-    sys.stdout.write("\n".join(lines) + "\n")
-    return 0
+        lines.append(f"note: {safe_text(n, 400)}")
+    return lines
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:

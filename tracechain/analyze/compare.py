@@ -194,17 +194,16 @@ class Comparison:
 
 # -- statistics -----------------------------------------------------------------------------
 def benjamini_hochberg(p_values: Iterable[float]) -> np.ndarray:
-    """Benjamini–Hochberg adjusted p-values (q-values), in the input order."""
+    """Benjamini–Hochberg adjusted p-values (q-values), in the input order.
+
+    A thin wrapper of ``scipy.stats.false_discovery_control(p, method="bh")`` (scipy >= 1.11,
+    the floor in pyproject.toml), kept so that callers get an empty array for no p-values
+    (scipy refuses an empty input).
+    """
     p = np.asarray(list(p_values), dtype=np.float64)
-    m = len(p)
-    if m == 0:
+    if len(p) == 0:
         return p
-    order = np.argsort(p, kind="stable")
-    ranked = p[order] * m / np.arange(1, m + 1)
-    q = np.minimum.accumulate(ranked[::-1])[::-1]
-    out = np.empty(m)
-    out[order] = np.minimum(q, 1.0)
-    return out
+    return np.asarray(stats.false_discovery_control(p, method="bh"), dtype=np.float64)
 
 
 def homogeneity_test(a: np.ndarray, b: np.ndarray, labels: list[str], min_expected: float = 5.0):

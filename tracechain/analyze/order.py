@@ -47,7 +47,9 @@ full-alphabet formula ``s^k (s − 1)^2``. p-values from the χ² distribution.
 Information criteria: ``AIC = −2 L_k + 2 p_k`` (Tong 1975), ``BIC = −2 L_k + p_k log n``
 with n the number of observations (Katz 1981). The recommendation is the lowest order whose
 test against the next order is not rejected at ``level`` (sequential testing from order 0),
-and separately the BIC minimiser.
+and separately the AIC and BIC minimisers (``RULE``). When the tests recommend a higher order
+than both criteria prefer, a note says so: heterogeneity between groups of sessions (a mixture
+of first-order chains, e.g. two periods of a log) mimics memory.
 
 References
 ----------
@@ -75,7 +77,7 @@ from ..events import EventChunk
 
 __all__ = [
     "Sessions", "session_sequences", "as_sequences", "OrderFit", "OrderTest", "OrderTable",
-    "order_table", "order_table_from_chunks",
+    "order_table", "order_table_from_chunks", "RULE", "order_document",
 ]
 
 
@@ -278,6 +280,23 @@ class OrderTable:
     bic_order: int
     aic_order: int
     notes: tuple[str, ...] = ()
+    rule: str = ""
+
+    @property
+    def criteria_disagree(self) -> bool:
+        """The sequential tests recommend a higher order than AIC and BIC both prefer."""
+        return self.recommended > max(self.bic_order, self.aic_order)
+
+
+#: The recommendation rule, stated in every output.
+RULE = ("the lowest order whose likelihood-ratio test against the next order is not rejected at the level "
+        "(sequential tests from order 0, Anderson and Goodman 1957); AIC and BIC are shown beside it, and a "
+        "disagreement is reported")
+
+HETEROGENEITY_NOTE = (
+    "the tests recommend a higher order than AIC and BIC prefer: with many sessions a small departure is "
+    "significant, and sessions from groups or periods that behave differently (a mixture of first-order "
+    "chains) look like memory to the test; test within periods (--split-at TIME) before trusting the higher order")
 
 
 # -- the fit ------------------------------------------------------------------------------
@@ -436,10 +455,12 @@ def order_table(
             f"fewer than 5 observations per free parameter from order {small[0].order + 1} on: "
             "the χ² approximation of the test is rough there"
         )
+    if recommended > max(bic_order, aic_order):
+        notes.append(HETEROGENEITY_NOTE)
     return OrderTable(
         fits=tuple(fits), tests=tuple(tests), observations=n, sessions=len(seqs), sessions_used=used,
         alphabet=s, start=start, include_end=include_end, level=level, recommended=recommended,
-        bic_order=bic_order, aic_order=aic_order, notes=tuple(notes),
+        bic_order=bic_order, aic_order=aic_order, notes=tuple(notes), rule=RULE,
     )
 
 
@@ -448,3 +469,33 @@ def order_table_from_chunks(chunks: Iterable[EventChunk], shape=None, max_order:
     :class:`~tracechain.pipeline.ShapeOptions`; its goals are used)."""
     sessions = session_sequences(chunks, shape)
     return order_table(sessions, max_order, **kw)
+
+
+def _finite(x):
+    return x if x is not None and math.isfinite(x) else None
+
+
+def order_document(table: OrderTable, extra_notes: Sequence[str] = ()) -> dict:
+    """A JSON-ready dict of ``table``: per order the log-likelihood, free parameters, AIC, BIC
+    and the test against the next order; the recommendation with its rule."""
+    tests = {t.order: t for t in table.tests}
+    orders = []
+    for f in table.fits:
+        t = tests.get(f.order)
+        orders.append({
+            "order": f.order, "log_likelihood": _finite(f.log_likelihood), "parameters": f.parameters,
+            "contexts": f.contexts, "aic": _finite(f.aic), "bic": _finite(f.bic),
+            "test_against_next": None if t is None else {
+                "statistic": _finite(t.statistic), "df": t.df, "p_value": _finite(t.p_value), "rejected": t.rejected},
+        })
+    return {
+        "form": "chain-with-end" if table.include_end else "no-end",
+        "start": table.start, "level": table.level, "sessions": table.sessions,
+        "sessions_used": table.sessions_used, "observations": table.observations, "alphabet": table.alphabet,
+        "symbols": table.alphabet + (1 if table.include_end else 0),
+        "orders": orders,
+        "recommendation": {"order": table.recommended, "rule": table.rule or RULE,
+                           "aic_order": table.aic_order, "bic_order": table.bic_order,
+                           "criteria_disagree": table.criteria_disagree},
+        "notes": list(table.notes) + list(extra_notes),
+    }

@@ -30,6 +30,7 @@ WORSE = "#d55e00"  # Okabe-Ito vermillion (warm)
 BETTER = "#0072b2"  # Okabe-Ito blue (cool)
 NEUTRAL = "#999999"
 _SVG_NS = "http://www.w3.org/2000/svg"
+_XLINK = "http://www.w3.org/1999/xlink"
 
 
 @dataclass
@@ -222,7 +223,7 @@ def compare_charts(cmp) -> list[Chart]:
 
 
 # -- inlining in HTML -----------------------------------------------------------------------
-_TAGS = {"svg", "g", "defs", "path", "rect", "use", "pattern", "clipPath", "text", "tspan", "title", "desc"}
+_TAGS = {"svg", "g", "defs", "path", "rect", "pattern", "clipPath", "text", "tspan", "title", "desc"}
 _ATTRS = {"width", "height", "viewBox", "transform", "d", "x", "y", "fill", "stroke", "stroke-width",
           "stroke-linecap", "stroke-linejoin", "stroke-dasharray", "stroke-opacity", "fill-opacity", "opacity",
           "font-size", "font-family", "font-style", "font-weight", "text-anchor", "patternUnits", "clip-path",
@@ -255,8 +256,31 @@ def inline_svg(svg: bytes, name: str, label: str) -> str:
             return f"url(#{pre}{m.group(1)})"
         return None if "url(" in v or "(" in v else v
 
-    def clean(el):
+    by_id = {el.get("id"): el for el in root.iter() if el.get("id")}
+
+    def clean(el, depth: int = 0):
         tag = _local(el.tag)
+        if tag == "use" and depth < 4:  # drawn in place: the report allows no <use> element
+            href = el.get(f"{{{_XLINK}}}href") or el.get("href") or ""
+            target = by_id.get(href[1:]) if href.startswith("#") else None
+            if target is None:
+                return None
+            g = ET.Element("g")
+            try:
+                x, y = float(el.get("x", 0)), float(el.get("y", 0))
+            except ValueError:
+                return None
+            g.set("transform", f"translate({x!r} {y!r})")
+            for decl in (el.get("style") or "").split(";"):
+                if ":" in decl:
+                    k, v = (t.strip() for t in decl.split(":", 1))
+                    if k in _STYLE_PROPS and "(" not in v:
+                        g.set(k, v)
+            c = clean(target, depth + 1)
+            if c is not None:
+                c.attrib.pop("id", None)
+                g.append(c)
+            return g
         if tag not in _TAGS:
             return None
         new = ET.Element(tag)
@@ -288,7 +312,7 @@ def inline_svg(svg: bytes, name: str, label: str) -> str:
             new.set(n, v)
         new.text = el.text if tag in ("text", "tspan", "title", "desc") else None
         for child in el:
-            c = clean(child)
+            c = clean(child, depth)
             if c is not None:
                 new.append(c)
                 c.tail = None

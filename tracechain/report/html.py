@@ -393,12 +393,25 @@ def _loss_sections(a: Analysis, pseudo: Pseudonymizer, top: int) -> list[Section
         off = 1 if ch.start is not None else 0
         visits = c.visits()
         idx = [k for k in np.argsort(-c.open, kind="stable") if c.open[k] > 0]
-        rows = [[safe_name(ch.label(int(k) + off)), _int(c.open[k]), _int(visits[k]),
-                 _pct(c.open[k] / visits[k] if visits[k] else None)] for k in idx[:top]]
+        from ..analyze.stuck import open_cases
+        from ..counts import state_label
+
+        oc = open_cases(c)
+        ages = {r.state: r for r in oc.states} if oc is not None else {}
+        rows = []
+        for k in idx[:top]:
+            st = ages.get(state_label(c.states[k]))
+            rows.append([safe_name(ch.label(int(k) + off)), _int(c.open[k]), _int(visits[k]),
+                         _pct(c.open[k] / visits[k] if visits[k] else None),
+                         duration(st.median_age_s) if st and st.median_age_s is not None else "–",
+                         duration(st.p90_age_s) if st and st.p90_age_s is not None else "–",
+                         duration(st.mean_dwell_s) if st and st.mean_dwell_s is not None else "–"])
         out.append(Section("stuck", "Stuck: sessions still open", [
             Para(f"{_int(c.open.sum())} sessions had not finished when the logs end; they are counted where they "
-                 "stopped, not as exits."),
-            Table(["state", "still open", "visits", "share of visits"], rows, frozenset({1, 2, 3}),
+                 "stopped, not as exits. Age: time since the open case's last event (median and 90th percentile); "
+                 "dwell: the mean time the cases that did leave the state spent in it."),
+            Table(["state", "still open", "visits", "share of visits", "median age", "90% age",
+                   "mean dwell (cases that left)"], rows, frozenset({1, 2, 3, 4, 5, 6}),
                   more=f"… and {len(idx) - top} more" if len(idx) > top else None),
         ]))
     return out

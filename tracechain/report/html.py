@@ -776,7 +776,7 @@ def _block_html(b) -> str:
         if b.svg is None:
             return (f'<figure><div class="missing">No diagram: {_e(b.missing or "not drawn")}</div>'
                     f"<figcaption>{cap}</figcaption></figure>")
-        mode = "fit" if _svg_width_px(b.svg) <= 3200 else "full"
+        mode = "fit"  # report and compare alike: fitted to the page, full size one click away
         other = "full size (scroll to move around)" if mode == "fit" else "fit to the page width"
         return (f'<input type="checkbox" id="diagram-toggle"> <label class="switch" for="diagram-toggle">show the '
                 f'diagram {other}</label>'
@@ -885,6 +885,9 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         change = _signed(fc.diff, pct)
         if fc.diff is not None and fc.diff_low is not None:
             change += f" [{_signed(fc.diff_low, pct)}, {_signed(fc.diff_high, pct)}]"
+        if fc.diff:  # fewer conversions or more steps: worse
+            arrow = "▲" if fc.diff > 0 else "▼"
+            change += f" {arrow} " + ("worse" if (fc.diff < 0 if pct else fc.diff > 0) else "better")
         rows.append([fc.name, _iv(fc.a, fc.a_low, fc.a_high, pct), _iv(fc.b, fc.b_low, fc.b_high, pct), change])
     sig = cmp.significant
     blocks: list = [
@@ -901,12 +904,14 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         clean = sanitize_svg(diff_svg, "Comparison diagram") if diff_svg is not None else None
         out.append(Section("compare-diagram", "What changed, drawn", [Figure(
             clean,
-            ["Edges in states whose exits changed: a rise is thick, solid and blue with ▲, a fall thick, dashed "
-             "and vermillion with ▼; a transition seen on one side only is dotted (◆ only in B, ◇ only in A); "
-             "the rest are thin and grey. Labels: probability in A → probability in B."],
+            ["Drawn: the states whose exits changed and their neighbours. Edges in those states: a rise is thick "
+             "and solid with ▲, a fall thick and dashed with ▼; a change for the worse (more exits into the end, "
+             "fewer transitions into a goal) is warm vermillion and says '(worse)', one for the better cool blue "
+             "and says '(better)', other changes black; a transition seen on one side only is dotted (◆ only in "
+             "B, ◇ only in A); the rest are thin and grey. Labels: probability in A → probability in B."],
             "Comparison diagram", diff_missing)]))
     trows = []
-    for t in cmp.tests:
+    for t in sorted(cmp.tests, key=lambda t: (not t.significant, t.q_value if t.q_value is not None else 2.0)):
         trows.append([
             safe_name(t.label), _int(t.n_a), _int(t.n_b),
             "–" if t.statistic is None else f"{t.statistic:.2f}", str(t.df) if t.statistic is not None else "–",

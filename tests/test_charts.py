@@ -189,3 +189,87 @@ def test_html_stuck_section_has_ages_and_dwell(tmp_path):
     # Dwell in running: d1 1 h, d3 1 h -> mean 1 h; nobody left blocked.
     assert body["running"][4:] == ["9.0 h", "9.0 h", "60.0 min"]
     assert body["blocked"][4:] == ["6.0 h", "6.0 h", "–"]
+
+
+# -- compare ------------------------------------------------------------------------------------
+def _compare_logs(tmp_path):
+    """An invented shop in two weeks: only Cart changes (half pay before, a fifth after); a far branch
+    Blog -> News -> Archive behaves the same on both sides."""
+    from test_compare import _log
+
+    def plans(prefix, pay_every):
+        out = []
+        for k in range(200):
+            if k % 4 == 3:
+                out.append((f"{prefix}{k}", ["Home", "Blog", "News", "Archive"]))
+            else:
+                out.append((f"{prefix}{k}", ["Home", "Cart", "Paid"] if k % pay_every == 0 else ["Home", "Cart"]))
+        return out
+
+    pa = _log(tmp_path / "before.jsonl", plans("a", 2), 1_700_000_000)
+    pb = _log(tmp_path / "after.jsonl", plans("b", 5), 1_700_200_000)
+    return pa, pb
+
+
+def test_compare_opens_on_what_changed(tmp_path, capsys):
+    pa, pb = _compare_logs(tmp_path)
+    html, md, dot = tmp_path / "c.html", tmp_path / "c.md", tmp_path / "c.dot"
+    assert commands_main(["compare", str(pa), str(pb), "--goal", "Paid", "--html", str(html), "--markdown", str(md),
+                          "--dot", str(dot), "--draws", "200", "-q"]) == 0
+    root = dom(html.read_text())
+    order = [n.attrs["id"] for n in root.iter("section")]
+    assert order[:3] == ["compare", "compare-charts", "compare-diagram"]
+    # the tests table lists the changed state first
+    rows = list(tables(root.find_id("compare-tests")).values())[0]
+    assert rows[1][0] == "Cart" and rows[1][7] == "yes"
+    # the signed change carries its meaning in words: conversion fell, which is worse
+    summary = list(tables(root.find_id("compare")).values())[0]
+    conv = next(r for r in summary if r[0].startswith("conversion"))
+    assert conv[3].startswith("-") and conv[3].endswith("▼ worse")
+    # the chart of the figures: values are the comparison's own, drawn warm and hatched as worse
+    marks = [n for n in root.find_id("compare-charts").iter() if n.attrs.get("data-state", "").startswith("conv")]
+    assert marks and marks[0].attrs["data-direction"] == "worse"
+    # by hand: before, the 100 even k (none is 3 mod 4) pay: 100 of 200; after, the 40 multiples of 5 less
+    # the 10 that are 3 mod 4 (15, 35, ...): 30 of 200; change -0.35
+    assert float(marks[0].attrs["data-value"]) == pytest.approx(30 / 200 - 100 / 200)
+    # the diagram shows Cart and its neighbours, not the unchanged far branch
+    import graphviz
+
+    g = json.loads(graphviz.Source(dot.read_text()).pipe(format="json0"))
+    texts = " ".join(o.get("label", "") for o in g["objects"])
+    assert "Cart" in texts and "Paid" in texts and "Home" in texts
+    assert "News" not in texts and "Archive" not in texts
+    assert "3 other states not drawn" in g["label"]  # the caption says states were left out (Blog, News, Archive)
+    # --full-diagram draws them all
+    assert commands_main(["compare", str(pa), str(pb), "--goal", "Paid", "--dot", str(dot), "--draws", "50", "-q",
+                          "--full-diagram"]) == 0
+    g = json.loads(graphviz.Source(dot.read_text()).pipe(format="json0"))
+    assert "Archive" in " ".join(o.get("label", "") for o in g["objects"])
+
+
+def test_compare_state_chart_matches_the_tests(tmp_path):
+    from tracechain.analyze.compare import compare_counts
+    from tracechain.counts import END, START, TransitionCounts
+    from tracechain.report.charts import compare_charts
+
+    a = TransitionCounts.from_edges({(START, "Home"): 100, ("Home", "Cart"): 60, ("Home", END): 40,
+                                     ("Cart", "Paid"): 30, ("Cart", END): 30}, START, END)
+    b = TransitionCounts.from_edges({(START, "Home"): 100, ("Home", "Cart"): 60, ("Home", END): 40,
+                                     ("Cart", "Paid"): 10, ("Cart", END): 50}, START, END)
+    cmp = compare_counts(a, b, ["Paid"], draws=100)
+    charts = {c.name: c for c in compare_charts(cmp)}
+    bars = _bars(charts["compare-states"].render("svg").decode(), "compare-states")
+    tvd = {t.label: t.tvd for t in cmp.tests if t.tvd is not None}
+    assert {x["data-state"] for x, _ in bars} == set(tvd)
+    for attrs, _ in bars:
+        assert float(attrs["data-value"]) == pytest.approx(tvd[attrs["data-state"]])
+    by = {x["data-state"]: x for x, _ in bars}
+    # by hand: Cart's exits to Paid fall from 1/2 to 1/6; total variation distance 1/3; Home unchanged (0)
+    assert float(by["Cart"]["data-value"]) == pytest.approx(1 / 3)
+    assert by["Cart"]["data-significant"] == "yes" and float(by["Home"]["data-value"]) == pytest.approx(0)
+    fig = {x["data-state"]: x for x, _ in _bars(charts["compare-figures"].render("svg").decode(), "compare-figures")}
+    conv = fig[cmp.conversion.name]
+    assert float(conv["data-value"]) == pytest.approx(cmp.conversion.diff)
+    assert float(conv["data-low"]) == pytest.approx(cmp.conversion.diff_low)
+    assert float(conv["data-high"]) == pytest.approx(cmp.conversion.diff_high)
+    assert conv["data-direction"] == "worse"  # 0.6 * 1/2 = 30% -> 0.6 * 1/6 = 10%

@@ -79,7 +79,11 @@ def _attach(svg: bytes, points: list[dict]) -> bytes:
         el = by_id.get(p["gid"])
         if el is None:
             raise RuntimeError(f"chart mark {p['gid']} missing from the SVG")
+        from .html import safe_name
+
         for k, v in p.items():
+            if k == "state":
+                v = safe_name(v, 400)  # control and bidirectional characters as visible escapes
             if k != "gid" and v is not None:
                 el.set(f"data-{k}", repr(float(v)) if isinstance(v, float) else str(v))
     return ET.tostring(root, encoding="utf-8")

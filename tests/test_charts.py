@@ -273,3 +273,16 @@ def test_compare_state_chart_matches_the_tests(tmp_path):
     assert float(conv["data-low"]) == pytest.approx(cmp.conversion.diff_low)
     assert float(conv["data-high"]) == pytest.approx(cmp.conversion.diff_high)
     assert conv["data-direction"] == "worse"  # 0.6 * 1/2 = 30% -> 0.6 * 1/6 = 10%
+
+
+def test_conversion_intervals_are_the_beta_posterior(shop):
+    """Cart's only exits are Paid (9) and the end (5): with prior 0.5 its P(reach Paid) is a Beta(9.5, 5.5)
+    draw, whose quantiles scipy.stats.beta gives (the Dirichlet of two cells is a Beta distribution)."""
+    from scipy.stats import beta
+
+    d, _ = shop
+    bars = {a["data-state"]: a for a, _ in _bars((d / "img" / "d-conversion.svg").read_text(), "conversion")}
+    lo, hi = float(bars["Cart"]["data-low"]), float(bars["Cart"]["data-high"])
+    want_lo, want_hi = beta.ppf([0.025, 0.975], 9.5, 5.5)
+    assert lo == pytest.approx(want_lo, abs=0.04) and hi == pytest.approx(want_hi, abs=0.04)
+    assert lo < float(bars["Cart"]["data-value"]) < hi

@@ -679,7 +679,7 @@ def charts_section(charts, key: str = "charts", title: str = "Charts", note: str
             blocks.append(Para(c))
             continue
         svg = inline_svg(c.render("svg"), c.name, c.title)
-        blocks.append(ChartFigure(svg, [safe_name(c.title, 300)] + list(getattr(c, "notes", []) or []),
+        blocks.append(ChartFigure(svg, list(getattr(c, "notes", []) or []),
                                   safe_name(c.title, 300), c.name))
     if note:
         blocks.insert(0, Para(note))

@@ -286,3 +286,14 @@ def test_conversion_intervals_are_the_beta_posterior(shop):
     want_lo, want_hi = beta.ppf([0.025, 0.975], 9.5, 5.5)
     assert lo == pytest.approx(want_lo, abs=0.04) and hi == pytest.approx(want_hi, abs=0.04)
     assert lo < float(bars["Cart"]["data-value"]) < hi
+
+
+def test_without_matplotlib_the_report_says_how_to_get_charts(shop, tmp_path, monkeypatch):
+    import tracechain.report.charts as charts
+
+    d, _ = shop
+    monkeypatch.setattr(charts, "available", lambda: False)  # as if the extra were not installed
+    html = tmp_path / "r.html"
+    assert commands_main(["report", str(d / "shop.jsonl"), "--goal", "Paid", "--html", str(html)]) == 0
+    sec = dom(html.read_text()).find_id("charts")
+    assert "pip install 'tracechain[charts]'" in sec.all_text() and not list(sec.iter("svg"))

@@ -314,13 +314,26 @@ def test_diff_diagram_styles(tmp_path):
     assert {e.change for e in c.edges} >= {"up", "down"}
     for e in c.edges:
         got = style[(f"n{e.source}", f"n{e.target}")]
+        # worse (more exits into the end, fewer into a goal) warm vermillion, better cool blue, other black;
+        # the verdict is in the label's text too
+        role = c.roles[e.target]
+        if e.change in ("up", "down") and role in ("end", "goal"):
+            worse = (e.change == "up") == (role == "end")
+            assert got["color"] == ("#d55e00" if worse else "#0072b2")
+            assert got["label"].endswith("(worse)" if worse else "(better)")
+        elif e.change in ("up", "down"):
+            assert got["color"] == "#000000" and not got["label"].endswith(")")
         if e.change == "up":
-            assert got.get("style") == "solid" and got["color"] == "#0072B2" and got["label"].startswith("▲")
+            assert got.get("style") == "solid" and got["label"].startswith("▲")
         elif e.change == "down":
-            assert got.get("style") == "dashed" and got["color"] == "#D55E00" and got["label"].startswith("▼")
+            assert got.get("style") == "dashed" and got["label"].startswith("▼")
         elif e.change in ("new", "gone"):
             assert got.get("style") == "dotted"
         else:
             assert got.get("style") in (None, "solid") and got.get("color", "#b3b3b3") == "#b3b3b3"
     legend = next(o for o in g["objects"] if o.get("name") == "lg_legend")["label"]
     assert "increase" in legend and "decrease" in legend
+    assert any(c.roles[e.target] in ("end", "goal") and e.change in ("up", "down") for e in c.edges)
+    verdicts = {("worse" if (e.change == "up") == (c.roles[e.target] == "end") else "better") for e in c.edges
+                if e.change in ("up", "down") and c.roles[e.target] in ("end", "goal")}
+    assert verdicts and all(f"({v})" in legend for v in verdicts)

@@ -172,3 +172,33 @@ def test_compare_outputs_escape_names(files, tmp_path, capsys):
     ours = {o["name"] for o in g["objects"] if "nodes" not in o and "subgraphs" not in o
             and not o["name"].startswith("lg_")}
     assert all(n.startswith("n") and n[1:].isdigit() for n in ours)
+
+
+def test_charts_escape_names(files, tmp_path):
+    """Every chart text and data attribute from a hostile name is text: the HTML parser finds no markup in the
+    charts, each name comes back (shortened by safe_name) as text or as a data attribute, and the chart files
+    written beside --svg are well-formed XML."""
+    pytest.importorskip("matplotlib")
+    import xml.etree.ElementTree as ET
+
+    _, _, out, _ = files
+    root = dom(out["html"].read_text(encoding="utf-8"))
+    sec = root.find_id("charts")
+    assert sec is not None
+    allowed = {"section", "h2", "figure", "figcaption", "p", "svg", "g", "defs", "path", "rect", "pattern",
+               "clippath", "text", "tspan", "title", "desc"}
+    for n in sec.iter():
+        assert n.tag in allowed, n.tag
+        for k, v in n.attrs.items():
+            assert not k.lower().startswith("on") and k != "style", (n.tag, k)
+            if k in ("href", "xlink:href"):
+                assert v.startswith("#"), v
+    states = {n.attrs["data-state"] for n in sec.iter() if "data-state" in n.attrs}
+    texts = " ".join(t.all_text() for t in sec.iter("text"))
+    shown = [name for name in NASTY if safe_name(name, 400) in states]
+    assert len(shown) >= 10  # the exit chart holds the top states by sessions lost
+    for name in shown:
+        assert safe_name(name, 40).rstrip("…")[:20] in texts, name  # the axis label, as text
+    assert "\x00" not in texts and "\u202e" not in texts
+    for f in out["svg"].parent.glob(out["svg"].stem + "-*.svg"):
+        ET.fromstring(f.read_bytes())  # well-formed

@@ -30,6 +30,7 @@ WORSE = "#d55e00"  # Okabe-Ito vermillion (warm)
 BETTER = "#0072b2"  # Okabe-Ito blue (cool)
 NEUTRAL = "#999999"
 _SVG_NS = "http://www.w3.org/2000/svg"
+_XLINK = "http://www.w3.org/1999/xlink"
 
 
 @dataclass
@@ -38,6 +39,7 @@ class Chart:
     title: str
     figure: object = field(repr=False)  # a matplotlib Figure
     points: list[dict] = field(default_factory=list)  # what each mark shows (gid -> data attributes)
+    notes: list[str] = field(default_factory=list)  # lines for the caption
 
     def render(self, fmt: str = "svg") -> bytes:
         """The chart as ``svg``, ``png`` or ``pdf`` bytes (SVG with the data attributes)."""
@@ -78,7 +80,11 @@ def _attach(svg: bytes, points: list[dict]) -> bytes:
         el = by_id.get(p["gid"])
         if el is None:
             raise RuntimeError(f"chart mark {p['gid']} missing from the SVG")
+        from .html import safe_name
+
         for k, v in p.items():
+            if k == "state":
+                v = safe_name(v, 400)  # control and bidirectional characters as visible escapes
             if k != "gid" and v is not None:
                 el.set(f"data-{k}", repr(float(v)) if isinstance(v, float) else str(v))
     return ET.tostring(root, encoding="utf-8")
@@ -147,6 +153,47 @@ def exit_chart(a, top: int = 15) -> Chart | None:
                  "end the session there)", labels, values, texts, "exits", points, xlim=(0, 1))
 
 
+def state_conversion_intervals(a, states, level: float = 0.95, draws: int = 200, seed: int = 0,
+                               prior: float = 0.5, max_states: int = 400) -> dict:
+    """Chain index -> (low, high): the central ``level`` interval of P(reach a goal) from each of
+    ``states`` over Dirichlet draws of every transient row (counts + ``prior`` on the observed
+    successors, the posterior of tracechain.analyze.uncertainty). Empty for chains of more than
+    ``max_states`` states (a dense solve per draw) or without counts."""
+    import numpy as np
+
+    ch = a.chain
+    if ch.counts is None or ch.n > max_states or not ch.goals.size:
+        return {}
+    W = ch.weights.toarray().astype(float)
+    absorbing = np.array([r in ("end", "goal", "terminal", "sink") for r in ch.roles])
+    trans = np.flatnonzero(~absorbing & (W.sum(axis=1) > 0))
+    pos = {int(i): k for k, i in enumerate(trans)}
+    goal = np.zeros(ch.n)
+    goal[[int(g) for g in ch.goals]] = 1.0
+    rng = np.random.default_rng(seed)
+    want = [int(i) for i in states if int(i) in pos]
+    vals = np.full((draws, len(want)), np.nan)
+    rows = [(int(i), np.flatnonzero(W[i] > 0)) for i in trans]
+    for d in range(draws):
+        P = np.zeros((len(trans), ch.n))
+        for k, (i, sup) in enumerate(rows):
+            P[k, sup] = rng.dirichlet(W[i, sup] + prior)
+        Q = P[:, trans]
+        r = P @ goal
+        try:
+            x = np.linalg.solve(np.eye(len(trans)) - Q, r)
+        except np.linalg.LinAlgError:  # a closed loop: no interval from this draw
+            continue
+        vals[d] = [x[pos[i]] for i in want]
+    out = {}
+    lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
+    for k, i in enumerate(want):
+        v = vals[:, k][np.isfinite(vals[:, k])]
+        if v.size:
+            out[i] = (float(np.quantile(v, lo_q)), float(np.quantile(v, hi_q)))
+    return out
+
+
 def conversion_chart(a, max_states: int = 15) -> Chart | None:
     """P(reach a goal) from each state, the most visited states."""
     if not a.chain.goals.size:
@@ -159,11 +206,21 @@ def conversion_chart(a, max_states: int = 15) -> Chart | None:
         return None
     labels = [r.state for r in rows]
     values = [float(r.p_any_goal) for r in rows]
-    texts = [f"{100 * v:.1f}% reach a goal" for v in values]
-    points = [{"state": r.state, "value": v, "count": int(r.visits)} for r, v in zip(rows, values)]
-    top = min(1.0, max(values) * 1.3) or 1.0
-    return _hbar("Conversion from each state: probability of reaching a goal (most visited states)",
-                 "probability of reaching a goal", labels, values, texts, "conversion", points, xlim=(0, top))
+    iv = state_conversion_intervals(a, [r.index for r in rows])
+    lows = [iv.get(r.index, (None, None))[0] for r in rows]
+    highs = [iv.get(r.index, (None, None))[1] for r in rows]
+    texts = [f"{100 * v:.1f}% reach a goal" + (f" [{100 * lo:.0f}–{100 * hi:.0f}%]" if lo is not None else "")
+             for v, lo, hi in zip(values, lows, highs)]
+    points = [{"state": r.state, "value": v, "count": int(r.visits), "low": lo, "high": hi}
+              for r, v, lo, hi in zip(rows, values, lows, highs)]
+    top = min(1.0, max(values + [h for h in highs if h is not None]) * 1.3) or 1.0
+    c = _hbar("Conversion from each state: probability of reaching a goal (most visited states)",
+              "probability of reaching a goal", labels, values, texts, "conversion", points, xlim=(0, top),
+              lows=lows if iv else None, highs=highs if iv else None)
+    if iv:
+        c.notes = ["Whiskers and brackets: 95% intervals, Dirichlet draws of each state's exits (prior 0.5 on "
+                   "the observed successors), 200 draws, seed 0."]
+    return c
 
 
 def report_charts(a, top: int = 15) -> list[Chart]:
@@ -187,7 +244,7 @@ def compare_charts(cmp) -> list[Chart]:
             worse = (fc.diff < 0) if pct else (fc.diff > 0)  # less conversion, more steps: worse
             unit = 100 if pct else 1
             v = fc.diff * unit
-            labels.append(fc.name + (" (points)" if pct else ""))
+            labels.append(fc.name + (" (points)" if pct else " (steps)"))
             values.append(v)
             lows.append(None if fc.diff_low is None else fc.diff_low * unit)
             highs.append(None if fc.diff_high is None else fc.diff_high * unit)
@@ -198,10 +255,12 @@ def compare_charts(cmp) -> list[Chart]:
             hatches.append("//" if worse and fc.diff != 0 else ("..") if fc.diff != 0 else None)
             points.append({"state": fc.name, "value": float(fc.diff), "low": fc.diff_low, "high": fc.diff_high,
                            "direction": word})
-        c = _hbar(f"Change {B} − {A} with intervals (warm, hatched //: worse; cool, dotted: better)",
+        c = _hbar(f"Change {_short(B, 25)} − {_short(A, 25)}, with intervals",
                   f"change {B} − {A}", labels, values, texts, "compare-figures", points, lows=lows, highs=highs,
                   colors=colors, hatches=hatches)
         c.figure.axes[0].axvline(0, color="black", linewidth=1)
+        c.notes = ["Warm vermillion with // hatching: worse (less conversion, more steps); cool blue with dots: "
+                   "better; the sign and the word are in each bar's label. Whiskers: the interval of the change."]
         out.append(c)
     tested = [t for t in cmp.tests if t.tvd is not None]
     tested.sort(key=lambda t: (not t.significant, -(t.tvd or 0)))
@@ -222,7 +281,7 @@ def compare_charts(cmp) -> list[Chart]:
 
 
 # -- inlining in HTML -----------------------------------------------------------------------
-_TAGS = {"svg", "g", "defs", "path", "rect", "use", "pattern", "clipPath", "text", "tspan", "title", "desc"}
+_TAGS = {"svg", "g", "defs", "path", "rect", "pattern", "clipPath", "text", "tspan", "title", "desc"}
 _ATTRS = {"width", "height", "viewBox", "transform", "d", "x", "y", "fill", "stroke", "stroke-width",
           "stroke-linecap", "stroke-linejoin", "stroke-dasharray", "stroke-opacity", "fill-opacity", "opacity",
           "font-size", "font-family", "font-style", "font-weight", "text-anchor", "patternUnits", "clip-path",
@@ -255,8 +314,31 @@ def inline_svg(svg: bytes, name: str, label: str) -> str:
             return f"url(#{pre}{m.group(1)})"
         return None if "url(" in v or "(" in v else v
 
-    def clean(el):
+    by_id = {el.get("id"): el for el in root.iter() if el.get("id")}
+
+    def clean(el, depth: int = 0):
         tag = _local(el.tag)
+        if tag == "use" and depth < 4:  # drawn in place: the report allows no <use> element
+            href = el.get(f"{{{_XLINK}}}href") or el.get("href") or ""
+            target = by_id.get(href[1:]) if href.startswith("#") else None
+            if target is None:
+                return None
+            g = ET.Element("g")
+            try:
+                x, y = float(el.get("x", 0)), float(el.get("y", 0))
+            except ValueError:
+                return None
+            g.set("transform", f"translate({x!r} {y!r})")
+            for decl in (el.get("style") or "").split(";"):
+                if ":" in decl:
+                    k, v = (t.strip() for t in decl.split(":", 1))
+                    if k in _STYLE_PROPS and "(" not in v:
+                        g.set(k, v)
+            c = clean(target, depth + 1)
+            if c is not None:
+                c.attrib.pop("id", None)
+                g.append(c)
+            return g
         if tag not in _TAGS:
             return None
         new = ET.Element(tag)
@@ -288,7 +370,7 @@ def inline_svg(svg: bytes, name: str, label: str) -> str:
             new.set(n, v)
         new.text = el.text if tag in ("text", "tspan", "title", "desc") else None
         for child in el:
-            c = clean(child)
+            c = clean(child, depth)
             if c is not None:
                 new.append(c)
                 c.tail = None

@@ -107,6 +107,9 @@ def register(subparsers) -> None:
     o.add_argument("--title", metavar="TEXT", help="title of the report")
     o.add_argument("--min-edge-share", type=float, default=0.0, metavar="SHARE",
                    help="leave out unchanged transitions under this share on both sides (default 0: draw all)")
+    o.add_argument("--full-diagram", action="store_true",
+                   help="draw every state in the comparison diagram (default: the changed states and their neighbours)")
+    o.add_argument("--no-charts", action="store_true", help="leave the charts out")
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
     _privacy_options(c)
     c.set_defaults(handler=cmd_compare)
@@ -411,6 +414,22 @@ def _compare_text(cmp) -> str:
     return "\n".join(lines) + "\n"
 
 
+def changed_neighbourhood(cmp) -> set[int] | None:
+    """The states whose exits changed, states on one side only, their neighbours one step away on
+    either side, and the start and end; None when nothing changed (draw everything)."""
+    core = {t.state for t in cmp.tests if t.significant} | set(cmp.appeared_states) | set(cmp.vanished_states)
+    if not core:
+        return None
+    keep = set(core)
+    for e in cmp.edges:
+        if e.source in core:
+            keep.add(e.target)
+        if e.target in core:
+            keep.add(e.source)
+    keep |= {i for i, r in enumerate(cmp.roles) if r in ("start", "end")}
+    return keep
+
+
 def cmd_compare(args: argparse.Namespace) -> int:
     from ..analyze.compare import compare_counts
     from ..cli import EXIT_OK
@@ -437,7 +456,8 @@ def cmd_compare(args: argparse.Namespace) -> int:
     dot_text = None
     svg = missing = None
     if args.dot or args.svg or args.html or args.markdown:
-        dot_text = render_diff_dot(cmp, title=args.title, min_edge_share=args.min_edge_share)
+        dot_text = render_diff_dot(cmp, title=args.title, min_edge_share=args.min_edge_share,
+                                   states=None if args.full_diagram else changed_neighbourhood(cmp))
         if args.dot:
             written.append(write_output(args.dot, dot_text))
         try:
@@ -450,8 +470,13 @@ def cmd_compare(args: argparse.Namespace) -> int:
             written.append(write_output(args.svg, svg))
     if args.html or args.markdown:
         sides = (_side_analysis(a, ra, goals, terminal, settings), _side_analysis(b, rb, goals, terminal, settings))
+        charts = []
+        if not args.no_charts:
+            from .charts import available, compare_charts, missing_reason
+
+            charts = compare_charts(cmp) if available() else [f"No charts: {missing_reason()}."]
         doc = build_compare_report(cmp, sides, diff_svg=svg, diff_missing=missing, pseudonymizer=pseudo,
-                                   title=args.title)
+                                   title=args.title, charts=charts)
         if args.html:
             written.append(write_output(args.html, render_html(doc)))
         if args.markdown:

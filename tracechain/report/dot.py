@@ -599,7 +599,23 @@ def _desc(text: str) -> str:
 
 
 # -- comparison diagram ---------------------------------------------------------------------
-def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) -> str:
+def diff_verdict(cmp, e) -> str | None:
+    """Whether a changed transition is a change for the worse or the better, or None (neither).
+
+    A rise of the exits into the end, or a fall of the transitions into a goal, is worse; the
+    opposite is better; other transitions only moved (common practice, no source).
+    """
+    if e.change not in ("up", "down"):
+        return None
+    role = cmp.roles[e.target]
+    if role == "end":
+        return "worse" if e.change == "up" else "better"
+    if role == "goal":
+        return "better" if e.change == "up" else "worse"
+    return None
+
+
+def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, states=None) -> str:
     """A diagram of a :class:`~tracechain.analyze.compare.Comparison`.
 
     Every state of either side is drawn once; an edge is drawn for every transition seen
@@ -608,9 +624,11 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) 
     transitions of one side only are dotted; the rest are muted. Edge labels give the
     transition probability on each side, ``A → B``. Edges carrying less than
     ``min_edge_share`` of all transitions on both sides are not drawn (and counted in the
-    caption) unless they are styled as significant.
+    caption) unless they are styled as significant. ``states`` (chain indices), when given,
+    draws only those states and the edges between them (the caption says how many were left out).
     """
     labels = cmp.labels
+    keep = None if states is None else set(states)
     n = len(cmp.states)
     out = ["digraph tracechain_diff {"]
     cap = []
@@ -623,6 +641,12 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) 
     tot_b = sum(e.count_b for e in edges) or 1
     shown_edges = []
     skipped = 0
+    if keep is not None:
+        edges = [e for e in edges if e.source in keep and e.target in keep]
+        hidden = sum(1 for i in range(len(cmp.states)) if i not in keep and cmp.roles[i] not in ("start", "end"))
+        if hidden:
+            cap.append(f"focused on the states that changed and their neighbours; {hidden} other "
+                       f"state{'s' if hidden != 1 else ''} not drawn")
     for e in edges:
         if e.change in ("up", "down"):
             shown_edges.append(e)
@@ -644,6 +668,8 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) 
     for i in range(n):
         role = cmp.roles[i]
         name = labels[i]
+        if keep is not None and i not in keep:
+            continue
         if role == "start":
             out.append(f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true",
                                            style="solid") + ";")
@@ -679,12 +705,17 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) 
         pa_, pb_ = e.p_a, e.p_b
         text = f"{_p(pa_)} → {_p(pb_)}"
         kw: dict = {"label": text}
+        verdict = diff_verdict(cmp, e)
+        ink = {"worse": _WORSE, "better": _BETTER}.get(verdict, "#000000")
+        word = f" ({verdict})" if verdict else ""
         if e.change == "up":
-            kw.update(color=_UP, fontcolor=_UP, style="solid", penwidth=3.5, label="▲ " + text)
+            kw.update(color=ink, fontcolor=ink, style="solid", penwidth=3.5, label="▲ " + text + word)
             present.add("up")
         elif e.change == "down":
-            kw.update(color=_DOWN, fontcolor=_DOWN, style="dashed", penwidth=3.5, label="▼ " + text)
+            kw.update(color=ink, fontcolor=ink, style="dashed", penwidth=3.5, label="▼ " + text + word)
             present.add("down")
+        if verdict:
+            present.add(verdict)
         elif e.change == "new":
             kw.update(style="dotted", penwidth=2, color="#333333", fontcolor="#333333", label="◆ " + text)
             present.add("new")
@@ -712,6 +743,10 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0) 
     return "\n".join(out) + "\n"
 
 
+_WORSE = "#d55e00"  # Okabe-Ito vermillion: warm, a change for the worse
+_BETTER = "#0072b2"  # Okabe-Ito blue: cool, a change for the better
+
+
 def _p(x: float | None) -> str:
     return "–" if x is None else f"{100 * x:.0f}%"
 
@@ -719,9 +754,13 @@ def _p(x: float | None) -> str:
 def _diff_legend(present: set[str]) -> list[str]:
     rows = [_line("───▶", _MUTED) + _desc("P(A) → P(B), no significant change")]
     if "up" in present:
-        rows.append(_line("━━━▶", _UP) + _desc("▲ significant increase: thick solid blue"))
+        rows.append(_line("━━━▶", "#000000") + _desc("▲ significant increase: thick solid"))
     if "down" in present:
-        rows.append(_line("╍╍╍▶", _DOWN) + _desc("▼ significant decrease: thick dashed vermillion"))
+        rows.append(_line("╍╍╍▶", "#000000") + _desc("▼ significant decrease: thick dashed"))
+    if "worse" in present:
+        rows.append(_line("━━━▶", _WORSE) + _desc("(worse): more exits or fewer goals, warm vermillion"))
+    if "better" in present:
+        rows.append(_line("━━━▶", _BETTER) + _desc("(better): fewer exits or more goals, cool blue"))
     if "new" in present:
         rows.append(_line("┈┈┈▶", "#333333") + _desc("◆ seen only in B: dotted dark"))
     if "gone" in present:

@@ -403,12 +403,25 @@ def _loss_sections(a: Analysis, pseudo: Pseudonymizer, top: int) -> list[Section
         off = 1 if ch.start is not None else 0
         visits = c.visits()
         idx = [k for k in np.argsort(-c.open, kind="stable") if c.open[k] > 0]
-        rows = [[safe_name(ch.label(int(k) + off)), _int(c.open[k]), _int(visits[k]),
-                 _pct(c.open[k] / visits[k] if visits[k] else None)] for k in idx[:top]]
+        from ..analyze.stuck import open_cases
+        from ..counts import state_label
+
+        oc = open_cases(c)
+        ages = {r.state: r for r in oc.states} if oc is not None else {}
+        rows = []
+        for k in idx[:top]:
+            st = ages.get(state_label(c.states[k]))
+            rows.append([safe_name(ch.label(int(k) + off)), _int(c.open[k]), _int(visits[k]),
+                         _pct(c.open[k] / visits[k] if visits[k] else None),
+                         duration(st.median_age_s) if st and st.median_age_s is not None else "–",
+                         duration(st.p90_age_s) if st and st.p90_age_s is not None else "–",
+                         duration(st.mean_dwell_s) if st and st.mean_dwell_s is not None else "–"])
         out.append(Section("stuck", "Stuck: sessions still open", [
             Para(f"{_int(c.open.sum())} sessions had not finished when the logs end; they are counted where they "
-                 "stopped, not as exits."),
-            Table(["state", "still open", "visits", "share of visits"], rows, frozenset({1, 2, 3}),
+                 "stopped, not as exits. Age: time since the open case's last event (median and 90th percentile); "
+                 "dwell: the mean time the cases that did leave the state spent in it."),
+            Table(["state", "still open", "visits", "share of visits", "median age", "90% age",
+                   "mean dwell (cases that left)"], rows, frozenset({1, 2, 3, 4, 5, 6}),
                   more=f"… and {len(idx) - top} more" if len(idx) > top else None),
         ]))
     return out
@@ -678,7 +691,7 @@ def charts_section(charts, key: str = "charts", title: str = "Charts", note: str
             blocks.append(Para(c))
             continue
         svg = inline_svg(c.render("svg"), c.name, c.title)
-        blocks.append(ChartFigure(svg, [safe_name(c.title, 300)] + list(getattr(c, "notes", []) or []),
+        blocks.append(ChartFigure(svg, list(getattr(c, "notes", []) or []),
                                   safe_name(c.title, 300), c.name))
     if note:
         blocks.insert(0, Para(note))
@@ -775,7 +788,7 @@ def _block_html(b) -> str:
         if b.svg is None:
             return (f'<figure><div class="missing">No diagram: {_e(b.missing or "not drawn")}</div>'
                     f"<figcaption>{cap}</figcaption></figure>")
-        mode = "fit" if _svg_width_px(b.svg) <= 3200 else "full"
+        mode = "fit"  # report and compare alike: fitted to the page, full size one click away
         other = "full size (scroll to move around)" if mode == "fit" else "fit to the page width"
         return (f'<input type="checkbox" id="diagram-toggle"> <label class="switch" for="diagram-toggle">show the '
                 f'diagram {other}</label>'
@@ -884,6 +897,9 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         change = _signed(fc.diff, pct)
         if fc.diff is not None and fc.diff_low is not None:
             change += f" [{_signed(fc.diff_low, pct)}, {_signed(fc.diff_high, pct)}]"
+        if fc.diff:  # fewer conversions or more steps: worse
+            arrow = "▲" if fc.diff > 0 else "▼"
+            change += f" {arrow} " + ("worse" if (fc.diff < 0 if pct else fc.diff > 0) else "better")
         rows.append([fc.name, _iv(fc.a, fc.a_low, fc.a_high, pct), _iv(fc.b, fc.b_low, fc.b_high, pct), change])
     sig = cmp.significant
     blocks: list = [
@@ -900,12 +916,14 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         clean = sanitize_svg(diff_svg, "Comparison diagram") if diff_svg is not None else None
         out.append(Section("compare-diagram", "What changed, drawn", [Figure(
             clean,
-            ["Edges in states whose exits changed: a rise is thick, solid and blue with ▲, a fall thick, dashed "
-             "and vermillion with ▼; a transition seen on one side only is dotted (◆ only in B, ◇ only in A); "
-             "the rest are thin and grey. Labels: probability in A → probability in B."],
+            ["Drawn: the states whose exits changed and their neighbours. Edges in those states: a rise is thick "
+             "and solid with ▲, a fall thick and dashed with ▼; a change for the worse (more exits into the end, "
+             "fewer transitions into a goal) is warm vermillion and says '(worse)', one for the better cool blue "
+             "and says '(better)', other changes black; a transition seen on one side only is dotted (◆ only in "
+             "B, ◇ only in A); the rest are thin and grey. Labels: probability in A → probability in B."],
             "Comparison diagram", diff_missing)]))
     trows = []
-    for t in cmp.tests:
+    for t in sorted(cmp.tests, key=lambda t: (not t.significant, t.q_value if t.q_value is not None else 2.0)):
         trows.append([
             safe_name(t.label), _int(t.n_a), _int(t.n_b),
             "–" if t.statistic is None else f"{t.statistic:.2f}", str(t.df) if t.statistic is not None else "–",

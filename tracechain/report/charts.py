@@ -194,7 +194,7 @@ def state_conversion_intervals(a, states, level: float = 0.95, draws: int = 200,
     return out
 
 
-def conversion_chart(a, max_states: int = 15) -> Chart | None:
+def conversion_chart(a, max_states: int = 15, level: float = 0.95, seed: int = 0) -> Chart | None:
     """P(reach a goal) from each state, the most visited states."""
     if not a.chain.goals.size:
         return None
@@ -206,7 +206,7 @@ def conversion_chart(a, max_states: int = 15) -> Chart | None:
         return None
     labels = [r.state for r in rows]
     values = [float(r.p_any_goal) for r in rows]
-    iv = state_conversion_intervals(a, [r.index for r in rows])
+    iv = state_conversion_intervals(a, [r.index for r in rows], level=level, seed=seed)
     lows = [iv.get(r.index, (None, None))[0] for r in rows]
     highs = [iv.get(r.index, (None, None))[1] for r in rows]
     texts = [f"{100 * v:.1f}% reach a goal" + (f" [{100 * lo:.0f}–{100 * hi:.0f}%]" if lo is not None else "")
@@ -218,15 +218,15 @@ def conversion_chart(a, max_states: int = 15) -> Chart | None:
               "probability of reaching a goal", labels, values, texts, "conversion", points, xlim=(0, top),
               lows=lows if iv else None, highs=highs if iv else None)
     if iv:
-        c.notes = ["Whiskers and brackets: 95% intervals, Dirichlet draws of each state's exits (prior 0.5 on "
-                   "the observed successors), 200 draws, seed 0."]
+        c.notes = [f"Whiskers and brackets: {100 * level:g}% Dirichlet posterior intervals (draws of each state's exits, "
+                   f"prior 0.5 on the observed successors, 200 draws, seed {seed}), whatever --intervals says."]
     return c
 
 
-def report_charts(a, top: int = 15) -> list[Chart]:
-    """The charts of a report (those that have data)."""
+def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[Chart]:
+    """The charts of a report (those that have data); conversion intervals at ``level``."""
     out = []
-    for make in (exit_chart, conversion_chart):
+    for make in (exit_chart, lambda a, top: conversion_chart(a, top, level=level, seed=seed)):
         c = make(a, top)
         if c is not None:
             out.append(c)

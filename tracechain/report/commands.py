@@ -182,7 +182,7 @@ def _charts(result, args) -> list:
         if args.png or args.pdf or args.svg:
             print(f"tracechain: warning: no charts: {missing_reason()}", file=sys.stderr)
         return [f"No charts: {missing_reason()}."]
-    return report_charts(result, top=args.top)
+    return report_charts(result, top=args.top, level=args.level, seed=args.seed)
 
 
 def _chart_path(image: str, name: str, fmt: str) -> str:

@@ -113,3 +113,14 @@ def test_lone_surrogate_escapes_read_as_replacement_characters(tmp_path):
     for block in BLOCKS:
         events, skipped, _ = _read(path, block)
         assert ("s?", "x", 11) in events and ("s7", "y", 12) in events and not skipped, block
+
+
+def test_formats_fields_lists_the_detected_names_in_order(capsys):
+    from tracechain.cli import main
+    from tracechain.ingest.fields import SESSION_NAMES
+
+    assert main(["formats", "--fields"]) == 0
+    out = capsys.readouterr().out
+    session = next(ln for ln in out.splitlines() if ln.startswith("session "))
+    assert session.split(None, 1)[1].split(", ") == list(SESSION_NAMES)
+    assert "first seen" in out

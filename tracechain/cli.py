@@ -175,6 +175,8 @@ def build_parser() -> argparse.ArgumentParser:
     add_interval_options(o)
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
+    f.add_argument("--fields", action="store_true",
+                   help="list the field names detected for the session, time and event, and the rule")
     f.set_defaults(handler=cmd_formats)
     from .analyze.commands import register as _register_extended
     from .check.command import register as _register_check
@@ -341,6 +343,17 @@ def cmd_analyze(args: argparse.Namespace) -> int:
 
 def cmd_formats(args: argparse.Namespace) -> int:
     from .engines import installed_engines
+
+    if getattr(args, "fields", False):
+        from .ingest.fields import EVENT_NAMES, SESSION_NAMES, TIME_NAMES
+
+        print("Fields named with --session-field, --time-field, --event-field are used as written (exact names).")
+        print("Otherwise each role takes the first of its names below (in this order, case aside) that the data")
+        print("has, spelled as first seen. JSON Lines: the keys of the first 1,000 lines (if they hold no session or")
+        print("event field, those up to the first line that does, at most 100,000); lines without them are skipped.")
+        for role, names in (("session", SESSION_NAMES), ("time", TIME_NAMES), ("event", EVENT_NAMES)):
+            print(f"{role:8s} {', '.join(names)}")
+        return EXIT_OK
 
     for name, p in sorted(available_parsers().items()):
         print(f"{name:10s} {p.kind:7s} {getattr(p, 'description', '')}")

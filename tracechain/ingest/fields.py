@@ -50,7 +50,11 @@ class FieldSpec:
 
 
 def _pick(candidates: tuple[str, ...], columns: list[str]) -> str | None:
-    lower = {c.lower(): c for c in columns}
+    # the preference order decides between names; between spellings of one name (case
+    # aside), the first in ``columns`` (the order fields are first seen) wins, never the last
+    lower: dict[str, str] = {}
+    for c in columns:
+        lower.setdefault(c.lower(), c)
     for name in candidates:
         if name in lower:
             return lower[name]

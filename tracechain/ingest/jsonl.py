@@ -10,6 +10,7 @@ Blank lines are invalid by the JSON Lines specification: they are counted and sk
 from __future__ import annotations
 
 import json
+import math
 import re
 from collections.abc import Iterator
 
@@ -18,7 +19,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.json as pj
 
-from ..errors import IngestError
+from ..errors import FieldError, IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
@@ -125,34 +126,40 @@ class JsonLinesParser:
         return 0.3 if lines[0].startswith(b"{") else 0.0
 
     def read(self, source: Source, options: ReadOptions, report: ParseReport) -> Iterator[EventChunk]:
-        names: tuple[str, str | None, str] | None = None
-        seen: dict[str, None] = {}  # every key seen so far, in order
         schema: pa.Schema | None = None
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         line_no = 1  # (counted here: the flat reader counts the lines of the blocks it takes)
         blocks = read_ahead(iter_line_blocks_counted(source, block_bytes, count=False))
-        later: list[bytearray] = []  # the rest of a block the flat reader declined, still to read
+
+        def next_block(at: int):
+            try:
+                return next(blocks, None)
+            except IngestError as err:  # the block reader names no line: this is where it stopped
+                if err.line is None and err.source == source.name:
+                    raise IngestError(str(err).removeprefix(f"{source.name}: "), source.name, at) from err
+                raise
+
+        names, later = _detect_fields(next_block, options, source.name)
+        later.reverse()  # (popped from the end: the blocks read while detecting, in order)
         while True:
             if later:
                 item = (later.pop(),)
             else:
-                try:
-                    item = next(blocks, None)
-                except IngestError as err:  # the block reader names no line: this is where it stopped
-                    if err.line is None and err.source == source.name:
-                        raise IngestError(str(err).removeprefix(f"{source.name}: "), source.name, line_no) from err
-                    raise
+                item = next_block(line_no)
             if item is None:
                 break
             block = item[0]
             first_line = line_no
             problem = None
+            if names is None:  # (no line is an object: every line is skipped, by reason)
+                report.lines_read += count_newlines(block) + (0 if block.endswith(b"\n") else 1)
+                line_no += count_newlines(block)
+                _, _, problem = _slow_parse(block, first_line, source.name, report, options.strict, ("", None, ""))
+                if problem is not None:
+                    raise problem
+                continue
             # 1. flat objects of one shape: read with numpy (see flatjson)
-            if names is None or (names[1] is None and options.fields.time is None):
-                probe = read_flat_block(block, None, None)  # (the first line's keys)
-                if probe is not None:
-                    names = self._names(options, source, seen, probe.keys, names)
-            flat = read_flat_block(block, None, names) if names is not None else None
+            flat = read_flat_block(block, None, names)
             if flat is None and len(block) > _GENERAL_BYTES:
                 # the general readers build far more per byte than the flat one: they get
                 # pieces of at most _GENERAL_BYTES (the rest is tried flat again first)
@@ -170,14 +177,14 @@ class JsonLinesParser:
             else:
                 # 2. Arrow's JSON reader
                 table = None
-                if _lines_are_objects(block, newlines) and not _may_nest_too_deeply(block):
+                if (_lines_are_objects(block, newlines) and not _may_nest_too_deeply(block)
+                        and _arrow_reads_alike(block)):
                     table = _fast_parse(block, schema)
                     if table is None and schema is not None:
                         table = _fast_parse(block, None)
                     if table is not None and table.num_rows != nlines:
                         table = None
                 if table is not None:
-                    names = self._names(options, source, seen, table.column_names, names)
                     table = _text_keys(block, table, names, nlines)
                 if table is not None:
                     if schema is None or (names[1] is not None and names[1] not in schema.names):
@@ -186,12 +193,12 @@ class JsonLinesParser:
                     lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
                 else:
                     # 3. line by line: every bad line found and reported
-                    cols, lines, keys, problem = _slow_parse(block, first_line, source.name, report, options.strict)
-                    if not keys:
+                    cols, lines, problem = _slow_parse(block, first_line, source.name, report, options.strict,
+                                                       names)
+                    if not len(lines):
                         if problem is not None:
                             raise problem
                         continue
-                    names = self._names(options, source, seen, keys, names)
                 del table
             try:
                 chunk = table_to_chunk(source.name, cols, lines, names, options.fields, report, options.strict)
@@ -208,23 +215,67 @@ class JsonLinesParser:
         if names is not None:
             report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
 
-    @staticmethod
-    def _names(
-        options: ReadOptions, source: Source, seen: dict[str, None], keys: list[str],
-        names: tuple[str, str | None, str] | None,
-    ) -> tuple[str, str | None, str]:
-        """The (session, time, event) keys: resolved from the first keys seen; a time key
-        left to detection and not found yet is looked for again when new keys appear."""
-        if names is not None and (names[1] is not None or options.fields.time is not None):
-            return names
-        new = [k for k in keys if k not in seen]
-        if names is not None and not new:
-            return names
-        seen.update(dict.fromkeys(new))
-        found = resolve_fields(options.fields, list(seen), source.name)
-        if names is None:
-            return found
-        return (names[0], found[1], names[2])
+
+#: Fields are detected from the keys of the first DETECT_LINES lines (every line that is
+#: a JSON object counts); if those hold no session or event field, from the lines up to
+#: the first one that completes them, at most DETECT_MAX_LINES lines. The window is fixed
+#: by lines, not by blocks, so every block size and reader tier gets the same fields.
+DETECT_LINES = 1000
+DETECT_MAX_LINES = 100_000
+
+
+def _detect_fields(next_block, options: ReadOptions, source: str) -> tuple[tuple[str, str | None, str] | None, list]:
+    """The (session, time, event) keys, and the blocks read to find them (still to be read)."""
+    pending: list = []
+    seen: dict[str, None] = {}
+    lines = 0
+    while True:
+        item = next_block(lines + 1)
+        if item is None:
+            if not seen:  # no line is an object: each is skipped by reason (and the input is empty)
+                return None, pending
+            return resolve_fields(options.fields, list(seen), source), pending
+        block = item[0]
+        pending.append(block)
+        pos, n = 0, len(block)
+        while pos < n:
+            nl = block.find(b"\n", pos)
+            end = n if nl < 0 else nl
+            raw = bytes(block[pos:end])
+            pos = end + 1
+            lines += 1
+            obj = _parse_line(raw[:-1] if raw.endswith(b"\r") else raw)[0]
+            new = False
+            if isinstance(obj, dict):
+                for k in obj:
+                    if k not in seen:
+                        seen[k] = None
+                        new = True
+            if lines == DETECT_LINES or lines == DETECT_MAX_LINES or (lines > DETECT_LINES and new):
+                try:
+                    return resolve_fields(options.fields, list(seen), source), pending
+                except FieldError:
+                    if lines >= DETECT_MAX_LINES:
+                        raise
+
+
+_NON_FINITE = re.compile(rb"[:,\[][ \t\r]*-?(?:NaN|Inf)")
+
+
+def _arrow_reads_alike(block) -> bool:
+    """Whether Arrow's JSON reader accepts exactly the lines of ``block`` the line-by-line
+    reader does: Arrow does not check the UTF-8 of fields it skips (nor of those it reads),
+    and it reads ``-NaN``, ``Inf`` and ``-Inf``, which are not JSON (nor read by Python's
+    decoder). Such a block is read line by line."""
+    if (b"NaN" in block or b"Inf" in block) and _NON_FINITE.search(block):
+        return False
+    data = pa.py_buffer(block)
+    offsets = pa.py_buffer(np.array([0, len(block)], dtype=np.int64))
+    try:
+        pa.Array.from_buffers(pa.large_binary(), 1, [None, offsets, data]).cast(pa.large_string())
+    except pa.ArrowInvalid:
+        return False
+    return True
 
 
 def _narrow_schema(schema: pa.Schema, names: tuple[str, str | None, str]) -> pa.Schema | None:
@@ -263,6 +314,8 @@ def _plain(table: pa.Table, names: tuple[str, str | None, str]) -> bool:
         if pa.types.is_nested(typ):
             return False
         if pa.types.is_floating(typ):
+            if pc.any(pc.invert(pc.is_finite(table.column(n)))).as_py():
+                return False  # NaN, Infinity: read line by line (see _slow_parse)
             top = pc.max(pc.abs(table.column(n))).as_py()
             if top is not None and not top < 2.0**63:
                 return False
@@ -307,50 +360,61 @@ class _Nested:
     """Marks a nested value (object or array) where a plain one is needed."""
 
 
+def _int(text: str):
+    """An integer as Python reads it; one too long for that (beyond 4,300 digits Python's
+    decoder refuses it) is beyond a double's range too: infinity, like ``1e999``."""
+    return int(text) if len(text) < 400 else float(text)
+
+
+def _parse_line(raw: bytes):
+    """One line as ``(object, reason, detail)``: the parsed value (None when the line is
+    not JSON) or why not. The one rule for what a line is, on every reader tier."""
+    if not raw.strip():
+        return None, "blank line", ""
+    if raw.count(b"[") + raw.count(b"{") >= MAX_DEPTH and nesting_depth(raw) > MAX_DEPTH:
+        return None, "nested too deeply", f"more than {MAX_DEPTH} levels"
+    try:
+        text = raw.decode("utf-8")  # (JSON text is UTF-8: RFC 8259 section 8.1)
+    except UnicodeDecodeError as err:
+        return None, "invalid JSON", f"not UTF-8: {err}"
+    try:
+        return json.loads(text, parse_int=_int), None, ""
+    except RecursionError:  # (a backstop: the depth check above comes first)
+        return None, "nested too deeply", f"more than {MAX_DEPTH} levels"
+    except ValueError as err:
+        return None, "invalid JSON", str(err)
+
+
 def _slow_parse(
-    block: bytes, first_line: int, name: str, report: ParseReport, strict: bool
-) -> tuple[dict[str, pa.Array], np.ndarray, list[str], IngestError | None]:
+    block: bytes, first_line: int, name: str, report: ParseReport, strict: bool,
+    names: tuple[str, str | None, str],
+) -> tuple[dict[str, pa.Array], np.ndarray, IngestError | None]:
     """Parse line by line. In strict mode the first bad line is returned as an error (not
     raised), so the caller can weigh it against the rows' field problems."""
     rows: list[dict] = []
     first: list[IngestError] = []
     line_nos: list[int] = []
-    keys: dict[str, None] = {}
+    needed = [n for n in dict.fromkeys(names) if n is not None]
     for i, raw in enumerate(text_lines(block)):
         ln = first_line + i
-        if not raw.strip():
-            _bad(report, name, ln, "blank line", "", strict, first)
-            if first:
-                break
-            continue
-        if raw.count(b"[") + raw.count(b"{") >= MAX_DEPTH and nesting_depth(raw) > MAX_DEPTH:
-            _bad(report, name, ln, "nested too deeply", f"more than {MAX_DEPTH} levels", strict, first)
-            if first:
-                break
-            continue
-        try:
-            obj = json.loads(raw)
-        except RecursionError:  # (a backstop: the depth check above comes first)
-            _bad(report, name, ln, "nested too deeply", f"more than {MAX_DEPTH} levels", strict, first)
-            if first:
-                break
-            continue
-        except ValueError as err:
-            _bad(report, name, ln, "invalid JSON", str(err), strict, first)
-            if first:
-                break
-            continue
-        if not isinstance(obj, dict):
-            _bad(report, name, ln, "not a JSON object", type(obj).__name__, strict, first)
+        obj, reason, detail = _parse_line(raw)
+        if reason is None and not isinstance(obj, dict):
+            reason, detail = "not a JSON object", type(obj).__name__
+        if reason is None:
+            for k in needed:
+                v = obj.get(k)
+                if isinstance(v, float) and not math.isfinite(v):
+                    reason, detail = f"not a finite number in field {k!r}", ""
+                    break
+        if reason is not None:
+            _bad(report, name, ln, reason, detail, strict, first)
             if first:
                 break
             continue
         rows.append(obj)
         line_nos.append(ln)
-        for k in obj:
-            keys.setdefault(k, None)
     cols: dict[str, pa.Array] = {}
-    for k in keys:
+    for k in needed:
         vals = [_scalar(r.get(k)) for r in rows]
         nested = [isinstance(v, _Nested) for v in vals]
         text_needed = any(isinstance(v, str) for v in vals)
@@ -363,12 +427,12 @@ def _slow_parse(
             elif isinstance(v, float) and v.is_integer() and text_needed:
                 out.append(str(int(v)))
             else:
-                out.append(v if text_needed or isinstance(v, str) else v)
+                out.append(v)
         try:
             cols[k] = pa.array(out)
         except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
             cols[k] = pa.array([None if v is None else str(v) for v in out], type=pa.string())
-    return cols, np.asarray(line_nos, dtype=np.int64), list(keys), (first[0] if first else None)
+    return cols, np.asarray(line_nos, dtype=np.int64), (first[0] if first else None)
 
 
 def _bad(report: ParseReport, name: str, line: int, reason: str, detail: str, strict: bool,

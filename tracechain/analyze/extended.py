@@ -119,6 +119,7 @@ class ExtendedAnalysis:
     common_paths: tuple[CommonPathRow, ...] = ()
     least_likely: tuple[SurpriseRow, ...] = ()
     notes: tuple[str, ...] = field(default=())
+    first_passage: dict | None = None  # irreducible chains: states, mean, variance, recurrence variance
 
 
 def _with_counts(chain: Chain, counts: TransitionCounts | None) -> Chain:
@@ -206,9 +207,11 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
     stat = None
     H = None
     period = None
+    first_passage = None
     if not chain.absorbing_mask.any():
         try:
             st = stationary_analysis(chain, first_passage=False)
+            first_passage = _first_passage(chain, st, lab, notes)
         except AnalysisError as err:
             notes.append(f"no stationary distribution: {err}")
         else:
@@ -249,7 +252,32 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
         likely_paths=paths, stationary=stat, entropy_rate_bits=H, period=period, conversion_interval=conv_i,
         steps_interval=steps_i, level=float(level), draws=int(used_draws), seed=int(seed),
         prior=float(prior) if used_draws else None, common_paths=cp, least_likely=ll, notes=tuple(dict.fromkeys(notes)),
+        first_passage=first_passage,
     )
+
+
+def _first_passage(chain: Chain, st, lab, notes: list) -> dict | None:
+    """Mean first-passage matrix and its variances for an irreducible chain (one closed class
+    holding every state), up to ``FIRST_PASSAGE_MAX`` states; otherwise None with a note."""
+    from .stationary import FIRST_PASSAGE_MAX, first_passage_variance, mean_first_passage
+
+    if len(st.support) != chain.n:
+        notes.append("no first-passage matrix: the chain is not irreducible (some states are transient)")
+        return None
+    if chain.n > FIRST_PASSAGE_MAX:
+        notes.append(f"no first-passage matrix: above {FIRST_PASSAGE_MAX} states")
+        return None
+    targets = list(range(chain.n))
+    try:
+        M = mean_first_passage(chain, targets)
+        V, RV = first_passage_variance(chain, targets, M)
+    except AnalysisError as err:
+        notes.append(f"no first-passage matrix: {err}")
+        return None
+    return {"states": [lab(i) for i in targets], "mean": [[_num(x) for x in row] for row in M],
+            "variance": [[_num(x) for x in row] for row in V],
+            "recurrence_time": [_num(st.recurrence[i]) for i in targets],
+            "recurrence_variance": [_num(x) for x in RV]}
 
 
 # -- JSON ---------------------------------------------------------------------------------
@@ -282,6 +310,7 @@ def extended_document(ext: ExtendedAnalysis) -> dict:
                               "recurrence_time": _num(s.recurrence_time)} for s in ext.stationary],
             "entropy_rate_bits": _num(ext.entropy_rate_bits),
             "period": ext.period,
+            "first_passage": ext.first_passage,
         },
         "intervals": {
             "method": "dirichlet",
@@ -318,6 +347,19 @@ _INTERVAL = {
                            "draws": {"type": "integer", "minimum": 0}},
         },
     ]
+}
+
+_MATRIX = {"type": "array", "items": {"type": "array", "items": _NONNEG}}
+_FIRST_PASSAGE = {
+    "description": "Irreducible chains only: mean[i][j] is the mean first-passage time from states[i] to "
+                   "states[j] (0 on the diagonal; Grinstead and Snell ch. 11.5), variance[i][j] its variance; "
+                   "recurrence_time and recurrence_variance per state. null otherwise (reason in notes).",
+    "oneOf": [{"type": "null"}, {
+        "type": "object", "required": ["states", "mean", "variance", "recurrence_time", "recurrence_variance"],
+        "additionalProperties": False,
+        "properties": {"states": {"type": "array", "items": {"type": "string"}}, "mean": _MATRIX,
+                       "variance": _MATRIX, "recurrence_time": {"type": "array", "items": _NONNEG},
+                       "recurrence_variance": {"type": "array", "items": _NONNEG}}}],
 }
 
 #: JSON Schema (draft 2020-12) of :func:`extended_document`.
@@ -372,6 +414,7 @@ EXTENDED_SCHEMA: dict = {
                     "properties": {"state": {"type": "string"}, "probability": _PROB, "recurrence_time": _NONNEG}}},
                 "entropy_rate_bits": _NONNEG,
                 "period": {"type": ["integer", "null"], "minimum": 1},
+                "first_passage": _FIRST_PASSAGE,
             }}]},
         "intervals": {
             "type": "object",

@@ -119,6 +119,7 @@ class ExtendedAnalysis:
     common_paths: tuple[CommonPathRow, ...] = ()
     least_likely: tuple[SurpriseRow, ...] = ()
     notes: tuple[str, ...] = field(default=())
+    on_every_path: tuple[str, ...] = ()  # states on every converting path (removal effect 1 each)
     first_passage: dict | None = None  # irreducible chains: states, mean, variance, recurrence variance
 
 
@@ -188,12 +189,14 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
     # attribution and paths
     removal: tuple[RemovalRow, ...] = ()
     removal_exact = True
+    on_every_path: tuple[str, ...] = ()
     paths: tuple[PathRow, ...] = ()
     if chain.start is not None and len(chain.goals):
         m = len(StartBlock(chain.P, chain.start, chain.absorbing_mask).T)
         re = removal_effects(chain, max_exact=None if m <= DENSE_MAX else top)
         notes.extend(re.notes)
         removal_exact = re.exact
+        on_every_path = tuple(lab(int(i)) for i in re.on_every_path)
         removal = tuple(
             RemovalRow(lab(e.state), e.effect, e.share, e.conversion_without, e.visit_probability)
             for e in re.effects[:top]
@@ -252,7 +255,7 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
         likely_paths=paths, stationary=stat, entropy_rate_bits=H, period=period, conversion_interval=conv_i,
         steps_interval=steps_i, level=float(level), draws=int(used_draws), seed=int(seed),
         prior=float(prior) if used_draws else None, common_paths=cp, least_likely=ll, notes=tuple(dict.fromkeys(notes)),
-        first_passage=first_passage,
+        first_passage=first_passage, on_every_path=on_every_path,
     )
 
 
@@ -299,6 +302,7 @@ def extended_document(ext: ExtendedAnalysis) -> dict:
         },
         "removal_effects": {
             "exact": bool(ext.removal_exact),
+            "on_every_converting_path": list(ext.on_every_path),
             "states": [{"state": r.state, "effect": _num(r.effect), "share": _num(r.share),
                         "conversion_without": _num(r.conversion_without),
                         "visit_probability": _num(r.visit_probability)} for r in ext.removal],
@@ -393,6 +397,10 @@ EXTENDED_SCHEMA: dict = {
             "additionalProperties": False,
             "properties": {
                 "exact": {"type": "boolean"},
+                "on_every_converting_path": {
+                    "type": "array", "items": {"type": "string"},
+                    "description": "states on every converting path: removing any one stops all conversion, so "
+                                   "their effects are 1 each and their shares an equal split of one joint effect"},
                 "states": {"type": "array", "items": {
                     "type": "object",
                     "required": ["state", "effect", "share", "conversion_without", "visit_probability"],
@@ -493,9 +501,19 @@ def extended_lines(ext: ExtendedAnalysis, max_rows: int = 10) -> list[str]:
         out.append("")
     if ext.removal:
         out.append("Removal effects (share of conversion each state carries)")
-        w = max(len(safe_text(r.state)) for r in ext.removal[:max_rows])
-        for r in ext.removal[:max_rows]:
-            out.append(f"  {safe_text(r.state).ljust(w)}  effect {_fmt(r.effect, True):>6}  share {_fmt(r.share, True):>6}")
+        together = set(ext.on_every_path) if len(ext.on_every_path) > 1 else set()
+        rows = [r for r in ext.removal[:max_rows] if r.state not in together]
+        if together:
+            joint = sum(r.share or 0.0 for r in ext.removal if r.state in together)
+            out.append(f"  on every converting path, together (removing any one stops all conversion; "
+                       f"their equal shares are not a worth of each step): effect 100.0%  joint share "
+                       f"{_fmt(joint, True)}")
+            out.append("    " + ", ".join(safe_text(s_) for s_ in ext.on_every_path))
+        if rows:
+            w = max(len(safe_text(r.state)) for r in rows)
+            for r in rows:
+                out.append(f"  {safe_text(r.state).ljust(w)}  effect {_fmt(r.effect, True):>6}  share "
+                           f"{_fmt(r.share, True):>6}")
         out.append("")
     if ext.likely_paths:
         out.append("Most likely path to each goal")

@@ -123,3 +123,47 @@ def test_errors():
     nostart = Chain.from_matrix(P[1:, 1:], chain.states[1:], goals=["Goal"], end="[end]")
     with pytest.raises(AnalysisError):
         removal_effects(nostart)
+
+
+def test_states_on_every_converting_path_are_found_and_shown_together():
+    # Home -> List -> Cart -> Pay -> Buy is the only way to the goal (with a detour via Help back to
+    # Home, and exits everywhere): Home, List, Cart and Pay are on every converting path; Help is not.
+    # Oracle: networkx.immediate_dominators on the graph from the start to the goal — a state on
+    # every path from the start to the goal dominates the goal (Lengauer & Tarjan 1979, from memory).
+    import networkx as nx
+
+    from tracechain.analyze.extended import extended_analysis, extended_document, extended_lines
+
+    names = ["Home", "List", "Cart", "Pay", "Help"]
+    labels = ["[start]", *names, "Buy", "[end]"]
+    idx = {n: i for i, n in enumerate(labels)}
+    edges = {("[start]", "Home"): 0.7, ("[start]", "Help"): 0.3, ("Home", "List"): 0.5, ("Home", "Help"): 0.2,
+             ("Home", "[end]"): 0.3, ("Help", "Home"): 0.6, ("Help", "[end]"): 0.4, ("List", "Cart"): 0.6,
+             ("List", "[end]"): 0.4, ("Cart", "Pay"): 0.7, ("Cart", "[end]"): 0.3, ("Pay", "Buy"): 0.9,
+             ("Pay", "[end]"): 0.1}
+    P = np.zeros((len(labels), len(labels)))
+    for (a, b), p in edges.items():
+        P[idx[a], idx[b]] = p
+    P[idx["Buy"], idx["Buy"]] = P[idx["[end]"], idx["[end]"]] = 1.0
+    chain = Chain.from_matrix(P, labels, goals=["Buy"], start="[start]", end="[end]")
+    G = nx.DiGraph([(a, b) for (a, b) in edges])
+    dom = nx.immediate_dominators(G, "[start]")
+    dominators, x = set(), "Buy"
+    while x != "[start]":
+        x = dom[x]
+        dominators.add(x)
+    re = removal_effects(chain)
+    found = {chain.label(i) for i in re.on_every_path}
+    assert found == dominators - {"[start]"}
+    assert found == {"Home", "List", "Cart", "Pay"}  # by hand: Help leads only back to Home or out
+    assert any("on every converting path" in n for n in re.notes)
+    ext = extended_analysis(chain)
+    doc = extended_document(ext)
+    assert set(doc["removal_effects"]["on_every_converting_path"]) == found
+    text = "\n".join(extended_lines(ext))
+    assert "on every converting path, together" in text
+    # the states of the group do not get rows of their own with an equal "share" each
+    removal_block = text[text.index("Removal effects"):].split("\n\n")[0]
+    for s in found:
+        assert not any(line.strip().startswith(s + " ") for line in removal_block.splitlines())
+    assert any(line.strip().startswith("Help") for line in removal_block.splitlines())

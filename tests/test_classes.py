@@ -212,3 +212,22 @@ def test_irreducible_flag():
     assert res.irreducible and res.classes[0].period == 3 and res.classes[0].kind == "trap"
     P2 = block_graph(1, [cycles_through_hub((3,))], closed=[False])
     assert not communicating_classes(chain_of(P2)).irreducible
+
+
+def test_text_report_shows_period_for_closed_classes_only(tmp_path, capsys):
+    # {A, B} is an open class whose only cycle A -> B -> A has length 2 (period 2 by the gcd
+    # definition); sessions leave it, so the report shows no period for it, and explains why.
+    from conftest import run_command, sessions_to_rows, write_jsonl
+
+    sessions = {"u1": ["A", "B", "A", "B", "C"], "u2": ["A", "B", "C"], "u3": ["C"]}
+    log = write_jsonl(tmp_path / "ab.jsonl", sessions_to_rows(sessions))
+    status = run_command(["analyze", log])
+    out, err = capsys.readouterr()
+    assert status == 0, err
+    block = out[out.index("Communicating classes"):]
+    row = next(line for line in block.splitlines() if line.strip().startswith("A, B"))
+    assert row.split()[-1] == "-" and "open" in row
+    assert "period: closed classes only" in block
+    # closed classes keep theirs: the absorbing end state has period 1 (its self-loop)
+    end_row = next(line for line in block.splitlines() if line.strip().startswith("[end]"))
+    assert end_row.split()[-1] == "1"

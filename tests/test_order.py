@@ -387,3 +387,47 @@ def test_heterogeneity_note_when_tests_and_criteria_disagree():
         assert flagged == (t.recommended > max(t.aic_order, t.bic_order))
         seen.add(flagged)
     assert seen == {True, False}
+
+
+def test_small_expected_counts_are_counted_like_scipy_expected_freq():
+    # the cells behind each test and those with expected count < 5, against
+    # scipy.stats.contingency.expected_freq on the same tables (older symbol × next, per context)
+    rng = np.random.default_rng(12)
+    s = 3
+    P = rng.dirichlet(np.ones(s), size=s)
+    seqs = simulate_first_order(rng, P, np.ones(s) / s, np.zeros(s), 3, max_len=12)
+    t = order_table(seqs, max_order=1, start="condition", include_end=False)
+    assert t.tests[0].small_cells > 0.2 * t.tests[0].cells  # the case this test is about
+    tab = np.zeros((s, s))
+    for q in seqs:
+        for a in range(1, len(q)):
+            tab[int(q[a - 1][1:]), int(q[a][1:])] += 1
+    tab = tab[tab.sum(axis=1) > 0][:, tab.sum(axis=0) > 0]
+    E = stats.contingency.expected_freq(tab)
+    assert t.tests[0].cells == E.size and t.tests[0].small_cells == int((E < 5).sum())
+    assert any("expected counts below 5" in n for n in t.notes)
+    # plenty of data: no cell below 5, no note
+    big = simulate_first_order(rng, P, np.ones(s) / s, np.zeros(s), 20, max_len=400)
+    tb = order_table(big, max_order=1, start="condition", include_end=False)
+    assert tb.tests[0].small_cells == 0 and not any("expected counts below 5" in n for n in tb.notes)
+
+
+def test_small_expected_counts_of_the_second_order_test_per_context():
+    rng = np.random.default_rng(13)
+    s = 3
+    P = rng.dirichlet(np.ones(s), size=s)
+    seqs = simulate_first_order(rng, P, np.ones(s) / s, np.zeros(s), 4, max_len=30)
+    t = order_table(seqs, max_order=2, start="condition", include_end=False)
+    tabs = np.zeros((s, s, s))
+    for q in seqs:
+        for a in range(2, len(q)):
+            tabs[int(q[a - 1][1:]), int(q[a - 2][1:]), int(q[a][1:])] += 1
+    cells = small = 0
+    for j in range(s):
+        tab = tabs[j][tabs[j].sum(axis=1) > 0][:, tabs[j].sum(axis=0) > 0]
+        if min(tab.shape) < 2:
+            continue
+        E = stats.contingency.expected_freq(tab)  # scipy as oracle
+        cells += E.size
+        small += int((E < 5).sum())
+    assert (t.tests[1].cells, t.tests[1].small_cells) == (cells, small) and small > 0

@@ -135,3 +135,76 @@ def test_periodic_chain():
     M = mean_first_passage(Chain.from_matrix(P, ["a", "b", "c"]), [0])
     # by hand: from b: m = 1 + 0.5 * m_c; from c: m = 1 + m_b -> m_b = 3, m_c = 4
     assert M[:, 0] == pytest.approx([0.0, 3.0, 4.0])
+
+
+# -- issue 16: variances of first-passage times, and the matrix in the extended JSON -------------
+# Land of Oz variances (order R, N, S) as printed by Kemeny & Snell, *Finite Markov Chains*, 1967,
+# p. 83, reproduced in the docstring of PySAL giddy's ergodic.var_fmpt (diagonal: the variance of
+# the recurrence time): [[67/12, 12, 62/9], [56/9, 12, 56/9], [62/9, 12, 67/12]] (5.5833, 6.8889,
+# 6.2222 as printed there).
+OZ_VAR = np.array([[67 / 12, 12, 62 / 9], [56 / 9, 12, 56 / 9], [62 / 9, 12, 67 / 12]])
+
+
+def _kemeny_snell_variance(P):
+    """Kemeny & Snell's matrix formula (from memory): with W the stationary matrix, Z = (I - P + W)^-1,
+    D = diag(1/w), M the mean first-passage matrix with recurrence times on the diagonal,
+    M2 = M (2 Z_dg D - I) + 2 (Z M - E (Z M)_dg), variance = M2 - M∘M."""
+    n = len(P)
+    w = np.linalg.solve(np.vstack([(P.T - np.eye(n))[:-1], np.ones(n)]), np.r_[np.zeros(n - 1), 1.0])
+    W = np.tile(w, (n, 1))
+    Z = np.linalg.inv(np.eye(n) - P + W)
+    D = np.diag(1 / w)
+    E = np.ones((n, n))
+    M = (np.eye(n) - Z + E @ np.diag(np.diag(Z))) @ D
+    ZM = Z @ M
+    M2 = M @ (2 * np.diag(np.diag(Z)) @ D - np.eye(n)) + 2 * (ZM - E @ np.diag(np.diag(ZM)))
+    return M, M2 - M * M
+
+
+def test_first_passage_variance_land_of_oz():
+    M, V = _kemeny_snell_variance(OZ)
+    assert V == pytest.approx(OZ_VAR, rel=1e-9)  # the formula reproduces the printed values
+    var, rvar = st.first_passage_variance(oz_chain(), [0, 1, 2])
+    off = ~np.eye(3, dtype=bool)
+    assert var[off] == pytest.approx(OZ_VAR[off], rel=1e-9)
+    assert np.diag(var) == pytest.approx(0.0)  # passage from j to j takes no step
+    assert rvar == pytest.approx(np.diag(OZ_VAR), rel=1e-9)
+    # R -> N is geometric with p = 1/4 from R and from S: variance (1 - p)/p^2 = 12 (by hand)
+    assert var[0, 1] == pytest.approx(12.0)
+
+
+def test_first_passage_variance_random_chains_against_kemeny_snell():
+    rng = np.random.default_rng(1960)
+    for n in (2, 4, 7):
+        P = rng.dirichlet(np.ones(n), size=n)
+        M, V = _kemeny_snell_variance(P)
+        ch = Chain.from_matrix(P, [f"x{i}" for i in range(n)])
+        var, rvar = st.first_passage_variance(ch, list(range(n)))
+        off = ~np.eye(n, dtype=bool)
+        assert var[off] == pytest.approx(V[off], rel=1e-8)
+        assert rvar == pytest.approx(np.diag(V), rel=1e-8)
+        assert mean_first_passage(ch, list(range(n)))[off] == pytest.approx(M[off], rel=1e-9)
+
+
+def test_extended_json_carries_the_first_passage_matrix():
+    import json
+
+    jsonschema = pytest.importorskip("jsonschema")
+    from tracechain.analyze.extended import EXTENDED_SCHEMA, extended_analysis, extended_document
+
+    doc = extended_document(extended_analysis(oz_chain()))
+    jsonschema.Draft202012Validator(EXTENDED_SCHEMA).validate(json.loads(json.dumps(doc, allow_nan=False)))
+    fp = doc["stationary"]["first_passage"]
+    assert fp["states"] == ["R", "N", "S"]
+    # Grinstead & Snell ch. 11.5 Land of Oz, M = [[0,4,10/3],[8/3,0,8/3],[10/3,4,0]] (values confirmed against
+    # Kemeny & Snell 1967 p. 218 as reproduced in PySAL giddy's ergodic.fmpt docstring)
+    assert np.array(fp["mean"]) == pytest.approx(np.array([[0, 4, 10 / 3], [8 / 3, 0, 8 / 3], [10 / 3, 4, 0]]))
+    off = ~np.eye(3, dtype=bool)
+    assert np.array(fp["variance"])[off] == pytest.approx(OZ_VAR[off])
+    assert fp["recurrence_time"] == pytest.approx([2.5, 5, 2.5])
+    assert fp["recurrence_variance"] == pytest.approx(np.diag(OZ_VAR))
+    # a chain with a transient state is not irreducible: no matrix, and a note says why
+    P = np.array([[0.5, 0.5, 0.0], [0.0, 0.3, 0.7], [0.0, 0.6, 0.4]])
+    doc = extended_document(extended_analysis(Chain.from_matrix(P, ["T", "a", "b"])))
+    assert doc["stationary"]["first_passage"] is None
+    assert any("not irreducible" in n for n in doc["notes"])

@@ -187,6 +187,10 @@ class RemovalEffects:
     exact: bool
     bound: float | None
     notes: tuple[str, ...] = ()
+    #: states on every converting path (removing any one of them stops all conversion), chain
+    #: indices in order of the effects; their shares are an equal split that says nothing about
+    #: any one of them, so reports show them together
+    on_every_path: tuple[int, ...] = ()
 
     def effect_of(self, state: int) -> float | None:
         for e in self.effects:
@@ -266,6 +270,8 @@ def removal_effects(chain: Chain, goals=None, max_exact: int | None = None, bloc
         for c, v, av in zip(chosen, re, a)
     ]
     effects.sort(key=lambda x: (-x.effect, x.state))
+    on_every_path = tuple(e.state for e in effects if e.effect >= 1.0 - 1e-9
+                          and _on_every_converting_path(chain.P, chain.start, goals, e.state))
     exact = len(left) == 0
     left_bound = float(bound[left].max()) if len(left) else None
     if not exact:
@@ -275,4 +281,17 @@ def removal_effects(chain: Chain, goals=None, max_exact: int | None = None, bloc
         )
     if total == 0:
         notes.append("every removal effect is 0 (sessions convert without passing a transient state): no shares")
-    return RemovalEffects(f, tuple(effects), exact, left_bound, tuple(notes))
+    if len(on_every_path) > 1:
+        notes.append(
+            f"{len(on_every_path)} states are on every converting path (removing any one stops all conversion): "
+            "their equal shares are a split of one joint effect, not a worth of each step")
+    return RemovalEffects(f, tuple(effects), exact, left_bound, tuple(notes), on_every_path)
+
+
+def _on_every_converting_path(P: sp.csr_array, start: int, goals: np.ndarray, s: int) -> bool:
+    """No goal is reachable from the start once every edge into ``s`` is cut (exact, on the graph)."""
+    n = P.shape[0]
+    keep = np.ones(n)
+    keep[s] = 0.0
+    cut = sp.csr_array(sp.csr_array(P) @ sp.diags_array(keep))
+    return not bool(reachable_from(cut, [start])[goals].any())

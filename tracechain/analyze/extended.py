@@ -120,6 +120,8 @@ class ExtendedAnalysis:
     least_likely: tuple[SurpriseRow, ...] = ()
     notes: tuple[str, ...] = field(default=())
     interval_method: str = "dirichlet"
+    on_every_path: tuple[str, ...] = ()  # states on every converting path (removal effect 1 each)
+    first_passage: dict | None = None  # irreducible chains: states, mean, variance, recurrence variance
 
 
 def _with_counts(chain: Chain, counts: TransitionCounts | None) -> Chain:
@@ -197,12 +199,14 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
     # attribution and paths
     removal: tuple[RemovalRow, ...] = ()
     removal_exact = True
+    on_every_path: tuple[str, ...] = ()
     paths: tuple[PathRow, ...] = ()
     if chain.start is not None and len(chain.goals):
         m = len(StartBlock(chain.P, chain.start, chain.absorbing_mask).T)
         re = removal_effects(chain, max_exact=None if m <= DENSE_MAX else top)
         notes.extend(re.notes)
         removal_exact = re.exact
+        on_every_path = tuple(lab(int(i)) for i in re.on_every_path)
         removal = tuple(
             RemovalRow(lab(e.state), e.effect, e.share, e.conversion_without, e.visit_probability)
             for e in re.effects[:top]
@@ -216,9 +220,11 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
     stat = None
     H = None
     period = None
+    first_passage = None
     if not chain.absorbing_mask.any():
         try:
             st = stationary_analysis(chain, first_passage=False)
+            first_passage = _first_passage(chain, st, lab, notes)
         except AnalysisError as err:
             notes.append(f"no stationary distribution: {err}")
         else:
@@ -266,7 +272,32 @@ def extended_analysis(chain: Chain, counts: TransitionCounts | None = None, sess
         steps_interval=steps_i, level=float(level), draws=int(used_draws), seed=int(seed),
         prior=float(prior) if used_draws and intervals == "dirichlet" else None, common_paths=cp, least_likely=ll,
         notes=tuple(dict.fromkeys(notes)), interval_method=intervals,
+        first_passage=first_passage, on_every_path=on_every_path,
     )
+
+
+def _first_passage(chain: Chain, st, lab, notes: list) -> dict | None:
+    """Mean first-passage matrix and its variances for an irreducible chain (one closed class
+    holding every state), up to ``FIRST_PASSAGE_MAX`` states; otherwise None with a note."""
+    from .stationary import FIRST_PASSAGE_MAX, first_passage_variance, mean_first_passage
+
+    if len(st.support) != chain.n:
+        notes.append("no first-passage matrix: the chain is not irreducible (some states are transient)")
+        return None
+    if chain.n > FIRST_PASSAGE_MAX:
+        notes.append(f"no first-passage matrix: above {FIRST_PASSAGE_MAX} states")
+        return None
+    targets = list(range(chain.n))
+    try:
+        M = mean_first_passage(chain, targets)
+        V, RV = first_passage_variance(chain, targets, M)
+    except AnalysisError as err:
+        notes.append(f"no first-passage matrix: {err}")
+        return None
+    return {"states": [lab(i) for i in targets], "mean": [[_num(x) for x in row] for row in M],
+            "variance": [[_num(x) for x in row] for row in V],
+            "recurrence_time": [_num(st.recurrence[i]) for i in targets],
+            "recurrence_variance": [_num(x) for x in RV]}
 
 
 # -- JSON ---------------------------------------------------------------------------------
@@ -288,6 +319,7 @@ def extended_document(ext: ExtendedAnalysis) -> dict:
         },
         "removal_effects": {
             "exact": bool(ext.removal_exact),
+            "on_every_converting_path": list(ext.on_every_path),
             "states": [{"state": r.state, "effect": _num(r.effect), "share": _num(r.share),
                         "conversion_without": _num(r.conversion_without),
                         "visit_probability": _num(r.visit_probability)} for r in ext.removal],
@@ -299,6 +331,7 @@ def extended_document(ext: ExtendedAnalysis) -> dict:
                               "recurrence_time": _num(s.recurrence_time)} for s in ext.stationary],
             "entropy_rate_bits": _num(ext.entropy_rate_bits),
             "period": ext.period,
+            "first_passage": ext.first_passage,
         },
         "intervals": {
             "method": ext.interval_method,
@@ -339,6 +372,19 @@ _INTERVAL = {
     ]
 }
 
+_MATRIX = {"type": "array", "items": {"type": "array", "items": _NONNEG}}
+_FIRST_PASSAGE = {
+    "description": "Irreducible chains only: mean[i][j] is the mean first-passage time from states[i] to "
+                   "states[j] (0 on the diagonal; Grinstead and Snell ch. 11.5), variance[i][j] its variance; "
+                   "recurrence_time and recurrence_variance per state. null otherwise (reason in notes).",
+    "oneOf": [{"type": "null"}, {
+        "type": "object", "required": ["states", "mean", "variance", "recurrence_time", "recurrence_variance"],
+        "additionalProperties": False,
+        "properties": {"states": {"type": "array", "items": {"type": "string"}}, "mean": _MATRIX,
+                       "variance": _MATRIX, "recurrence_time": {"type": "array", "items": _NONNEG},
+                       "recurrence_variance": {"type": "array", "items": _NONNEG}}}],
+}
+
 #: JSON Schema (draft 2020-12) of :func:`extended_document`.
 EXTENDED_SCHEMA: dict = {
     "$schema": "https://json-schema.org/draft/2020-12/schema",
@@ -370,6 +416,10 @@ EXTENDED_SCHEMA: dict = {
             "additionalProperties": False,
             "properties": {
                 "exact": {"type": "boolean"},
+                "on_every_converting_path": {
+                    "type": "array", "items": {"type": "string"},
+                    "description": "states on every converting path: removing any one stops all conversion, so "
+                                   "their effects are 1 each and their shares an equal split of one joint effect"},
                 "states": {"type": "array", "items": {
                     "type": "object",
                     "required": ["state", "effect", "share", "conversion_without", "visit_probability"],
@@ -391,6 +441,7 @@ EXTENDED_SCHEMA: dict = {
                     "properties": {"state": {"type": "string"}, "probability": _PROB, "recurrence_time": _NONNEG}}},
                 "entropy_rate_bits": _NONNEG,
                 "period": {"type": ["integer", "null"], "minimum": 1},
+                "first_passage": _FIRST_PASSAGE,
             }}]},
         "intervals": {
             "type": "object",
@@ -473,9 +524,19 @@ def extended_lines(ext: ExtendedAnalysis, max_rows: int = 10) -> list[str]:
         out.append("")
     if ext.removal:
         out.append("Removal effects (share of conversion each state carries)")
-        w = max(len(safe_text(r.state)) for r in ext.removal[:max_rows])
-        for r in ext.removal[:max_rows]:
-            out.append(f"  {safe_text(r.state).ljust(w)}  effect {_fmt(r.effect, True):>6}  share {_fmt(r.share, True):>6}")
+        together = set(ext.on_every_path) if len(ext.on_every_path) > 1 else set()
+        rows = [r for r in ext.removal[:max_rows] if r.state not in together]
+        if together:
+            joint = sum(r.share or 0.0 for r in ext.removal if r.state in together)
+            out.append(f"  on every converting path, together (removing any one stops all conversion; "
+                       f"their equal shares are not a worth of each step): effect 100.0%  joint share "
+                       f"{_fmt(joint, True)}")
+            out.append("    " + ", ".join(safe_text(s_) for s_ in ext.on_every_path))
+        if rows:
+            w = max(len(safe_text(r.state)) for r in rows)
+            for r in rows:
+                out.append(f"  {safe_text(r.state).ljust(w)}  effect {_fmt(r.effect, True):>6}  share "
+                           f"{_fmt(r.share, True):>6}")
         out.append("")
     if ext.likely_paths:
         out.append("Most likely path to each goal")

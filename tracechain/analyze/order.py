@@ -260,6 +260,37 @@ class OrderTest:
     df: int
     p_value: float | None
     rejected: bool
+    cells: int = 0  # cells of the tables behind the test (longer context × next symbol, per context)
+    small_cells: int = 0  # of those, cells with an expected count below 5
+
+
+def _small_cells(parent: np.ndarray, child: np.ndarray, y: np.ndarray, A: int) -> tuple[int, int]:
+    """Cells, and cells with expected count < 5, of the tables tested: for each context j of the
+    lower order with at least two refinements and two successors, the table refinement × next
+    symbol with expected counts n(i·) n(j, y) / n(j) (as for a test of independence)."""
+    n_child = np.bincount(child)
+    n_parent = np.bincount(parent)
+    par_of = np.zeros(len(n_child), dtype=np.int64)
+    par_of[child] = parent
+    kids = np.flatnonzero(n_child)
+    kp = par_of[kids]
+    srt = np.argsort(kp, kind="stable")
+    kids, kp = kids[srt], kp[srt]
+    r = np.bincount(kp, minlength=len(n_parent))
+    first = np.concatenate([[0], np.cumsum(r)[:-1]])
+    up, cnt = np.unique(parent * A + y, return_counts=True)
+    pp = up // A
+    ny = np.bincount(pp, minlength=len(n_parent))
+    use = (r[pp] >= 2) & (ny[pp] >= 2)
+    up, cnt, pp = up[use], cnt[use], pp[use]
+    if not len(up):
+        return 0, 0
+    reps = r[pp]
+    pair = np.repeat(np.arange(len(up)), reps)
+    offs = np.arange(int(reps.sum())) - np.repeat(np.cumsum(reps) - reps, reps)
+    child_idx = kids[np.repeat(first[pp], reps) + offs]
+    E = n_child[child_idx] * cnt[pair] / n_parent[pp[pair]]
+    return int(len(E)), int(np.count_nonzero(E < 5.0))
 
 
 @dataclass(frozen=True)
@@ -438,11 +469,12 @@ def order_table(
         r = np.bincount(pc // width, minlength=int(parent.max()) + 1)
         df = int(np.sum(np.maximum(r - 1, 0) * np.maximum(supp[k] - 1, 0)))
         G = max(2.0 * (fits[k + 1].log_likelihood - fits[k].log_likelihood), 0.0)
+        cells, small_ = _small_cells(parent, child, y, A)
         if df == 0:
-            tests.append(OrderTest(k, G, 0, None, False))
+            tests.append(OrderTest(k, G, 0, None, False, cells, small_))
         else:
             pv = _chi2_sf(G, df)
-            tests.append(OrderTest(k, G, df, pv, pv < level))
+            tests.append(OrderTest(k, G, df, pv, pv < level, cells, small_))
     recommended = next((t.order for t in tests if not t.rejected), K)
     bic_order = min(fits, key=lambda f: (f.bic, f.order)).order
     aic_order = min(fits, key=lambda f: (f.aic, f.order)).order
@@ -455,6 +487,12 @@ def order_table(
             f"fewer than 5 observations per free parameter from order {small[0].order + 1} on: "
             "the χ² approximation of the test is rough there"
         )
+    sparse = [t for t in tests if t.df and t.cells and t.small_cells > 0.2 * t.cells]
+    if sparse:
+        notes.append(
+            "expected counts below 5 in more than 20 % of the cells of the test of order "
+            + ", ".join(f"{t.order} ({t.small_cells:,} of {t.cells:,})" for t in sparse)
+            + ": the χ² p-value is rough there (Cochran's rule, common practice); prefer BIC or more data")
     if recommended > max(bic_order, aic_order):
         notes.append(HETEROGENEITY_NOTE)
     return OrderTable(
@@ -486,7 +524,8 @@ def order_document(table: OrderTable, extra_notes: Sequence[str] = ()) -> dict:
             "order": f.order, "log_likelihood": _finite(f.log_likelihood), "parameters": f.parameters,
             "contexts": f.contexts, "aic": _finite(f.aic), "bic": _finite(f.bic),
             "test_against_next": None if t is None else {
-                "statistic": _finite(t.statistic), "df": t.df, "p_value": _finite(t.p_value), "rejected": t.rejected},
+                "statistic": _finite(t.statistic), "df": t.df, "p_value": _finite(t.p_value), "rejected": t.rejected,
+                "cells": t.cells, "cells_expected_below_5": t.small_cells},
         })
     return {
         "form": "chain-with-end" if table.include_end else "no-end",

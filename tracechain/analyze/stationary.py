@@ -45,7 +45,7 @@ from .classes import communicating_classes
 from .linalg import TransientSolver
 
 __all__ = ["GTH_MAX", "FIRST_PASSAGE_MAX", "StationaryResult", "gth_solve", "stationary_analysis",
-           "stationary_by_class", "mean_first_passage", "entropy_rate"]
+           "stationary_by_class", "mean_first_passage", "first_passage_variance", "entropy_rate"]
 
 #: Largest closed class solved by GTH (dense, O(n³)).
 GTH_MAX = 1000
@@ -166,6 +166,41 @@ def mean_first_passage(chain: Chain, targets: Sequence[int]) -> np.ndarray:
             raise AnalysisError(f"state {chain.label(j)!r} cannot be reached from every state: {err}") from err
         out[keep, k] = m
     return out
+
+
+def first_passage_variance(chain: Chain, targets: Sequence[int], mean: np.ndarray | None = None
+                           ) -> tuple[np.ndarray, np.ndarray]:
+    """Variances of the first-passage times to each target, and of the recurrence times.
+
+    First passage to j is absorption in j once j is made absorbing, so with Q = P without j
+    the second moments s solve (I − Q) s = 1 + 2 Q m (m: the mean times), and the variance is
+    s − m∘m (the absorbing-chain formula (2N − I) t − t∘t of Grinstead and Snell, ch. 11.2;
+    Kemeny and Snell, 1960, ch. 4). The recurrence time of j is 1 + T from the next state, so
+    its second moment is Σ_k P_jk (1 + 2 m_k + s_k) with m_j = s_j = 0.
+
+    Returns ``(variance, recurrence_variance)``: ``variance[i, k]`` for state i and
+    ``targets[k]`` (0 where ``i == targets[k]``), ``recurrence_variance[k]`` for ``targets[k]``.
+    """
+    P = chain.P
+    n = chain.n
+    M = mean_first_passage(chain, targets) if mean is None else mean
+    var = np.zeros((n, len(targets)))
+    rvar = np.zeros(len(targets))
+    for k, j in enumerate(targets):
+        keep = np.r_[0:j, j + 1 : n]
+        Q = P[keep][:, keep].tocsr()
+        m = M[keep, k]
+        s2 = TransientSolver(Q).solve(1.0 + 2.0 * (Q @ m))
+        var[keep, k] = np.maximum(s2 - m * m, 0.0)
+        m_all = np.zeros(n)
+        m_all[keep] = m
+        s_all = np.zeros(n)
+        s_all[keep] = s2
+        row = np.asarray(P[[j]].toarray()).ravel()
+        second = float(row @ (1.0 + 2.0 * m_all + s_all))
+        r = float(row @ (1.0 + m_all))
+        rvar[k] = max(second - r * r, 0.0)
+    return var, rvar
 
 
 def _result(chain: Chain, members: np.ndarray, period, base: float, targets) -> StationaryResult:

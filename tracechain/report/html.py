@@ -439,11 +439,12 @@ def _classes_section(a: Analysis) -> Section:
         names = ", ".join(safe_name(ch.label(i), 60) for i in cl.states[:8]) + (" …" if cl.size > 8 else "")
         kind = {"trap": "trap: closed loop, no way out", "absorbing": "absorbing", "open": "open"}.get(cl.kind, cl.kind)
         rows.append([names, _int(cl.size), "closed" if cl.closed else "open", kind,
-                     "-" if cl.period is None else str(cl.period)])
+                     "-" if cl.period is None or not cl.closed else str(cl.period)])
     blocks: list = [
         Para("A communicating class is a set of states that can each reach the others. A closed class has no edge "
              "leaving it; a closed class that is not a single absorbing state is a trap: sessions that enter it "
-             "never end."),
+             "never end. The period (the gcd of its cycle lengths) is shown for closed classes only: sessions leave "
+             "an open class, so its cycles say nothing about the long run."),
         Table(["states", "size", "closed", "kind", "period"], rows, frozenset({1, 4}),
               more=f"… and {hidden} single-state open classes" if hidden else None),
     ]

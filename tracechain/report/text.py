@@ -141,9 +141,11 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         if cl.size == 1 and cl.kind == "open" and len(a.classes.classes) > 12:
             continue
         names = ", ".join(lab(i) for i in cl.states[:6]) + (" ..." if cl.size > 6 else "")
-        period = "-" if cl.period is None else str(cl.period)
+        period = "-" if cl.period is None or not cl.closed else str(cl.period)
         cls_rows.append([names, str(cl.size), "closed" if cl.closed else "open", cl.kind, period])
     lines += _table(["states", "size", "closed", "kind", "period"], cls_rows, right={1, 4})
+    lines.append("  period: closed classes only (the long-run cycle length; sessions leave an open class, so its "
+                 "cycle lengths say nothing about the long run)")
     hidden = len(a.classes.classes) - len(cls_rows)
     if hidden:
         lines.append(f"  ... and {hidden} single-state open classes")

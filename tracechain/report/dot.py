@@ -289,7 +289,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         selection = "top"
     # which edges are drawn
     edges = []
-    pruned_n, pruned_w = 0, 0.0
+    rare: list[tuple[int, int, float]] = []
     hidden_n, hidden_w = 0, 0.0
     for i, j, w in zip(W.row, W.col, W.data):
         if w <= 0 or ch.absorbing_mask[i]:
@@ -298,11 +298,10 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             hidden_n += 1
             hidden_w += w
             continue
+        e = (int(i), int(j), float(w))
+        edges.append(e)
         if w / total < min_edge_share and float(ch.P[i, j]) < min_edge_prob:
-            pruned_n += 1
-            pruned_w += w
-            continue
-        edges.append((int(i), int(j), float(w)))
+            rare.append(e)
     n_drawn = sum(1 for i in observed if keep[i])
     fold_ends = ch.end is not None and (end_edges == "labels" or (end_edges == "auto" and n_drawn > 20))
     ends_of: dict[int, tuple[float, float]] = {}
@@ -311,6 +310,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             if j == ch.end:
                 ends_of[i] = (w, float(ch.P[i, j]))
         edges = [e for e in edges if e[1] != ch.end]
+        rare = [e for e in rare if e[1] != ch.end]
         keep[ch.end] = False
     # where sessions start is written into the states' labels: the start's fan of edges keeps its
     # widths but carries no text, which would crowd the first column
@@ -319,20 +319,24 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         for i, j, w in zip(W.row, W.col, W.data):
             if i == ch.start and w > 0 and keep[j]:
                 starts_of[int(j)] = (float(w), float(ch.P[i, j]))
+    # pruning never disconnects: an edge goes only if every drawn state the start reached before
+    # still has a path from the start, and both its ends keep some edge
+    start_drawn = ch.start if ch.start is not None and keep[ch.start] else None
+    rare.sort(key=lambda e: (e[2], e[0], e[1]))
+    edges, dropped_rare, kept_rare = _prune_connected(edges, rare, start_drawn)
+    pruned_n, pruned_w = len(dropped_rare), sum(e[2] for e in dropped_rare)
     limit = max_edges if max_edges is not None else max(80, 2 * n_drawn)
-    capped_n, capped_w = 0, 0.0
+    capped_n, capped_w, capped_kept = 0, 0.0, 0
     if len(edges) > limit:
         best: dict[int, tuple[int, int, float]] = {}
         for e in edges:
             if e[0] not in best or e[2] > best[e[0]][2]:
                 best[e[0]] = e
         protected = set(best.values())
-        others = sorted((e for e in edges if e not in protected), key=lambda e: -e[2])
-        room = max(0, limit - len(protected))
-        dropped = others[room:]
+        others = sorted((e for e in edges if e not in protected), key=lambda e: (e[2], e[0], e[1]))
+        edges, dropped, kept = _prune_connected(edges, others, start_drawn, limit=limit)
         capped_n, capped_w = len(dropped), sum(e[2] for e in dropped)
-        gone = set(dropped)
-        edges = [e for e in edges if e not in gone]
+        capped_kept = max(0, len(edges) - limit)
     wmax = max((w for _, _, w in edges), default=1.0)
 
     notes: list[str] = []
@@ -348,6 +352,16 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             f"{pruned_n} rare edge{'s' if pruned_n != 1 else ''} hidden (under {100 * min_edge_share:g}% of all "
             f"transitions and under {100 * min_edge_prob:g}% of their state's exits), "
             f"carrying {100 * pruned_w / total:.1f}% of all transitions"
+        )
+    if kept_rare:
+        notes.append(
+            f"{len(kept_rare)} rare edge{'s' if len(kept_rare) != 1 else ''} kept: without "
+            f"{'them' if len(kept_rare) != 1 else 'it'} a drawn state would lose its path from the start or its last edge"
+        )
+    if capped_kept:
+        notes.append(
+            f"{len(edges)} edges drawn, {capped_kept} above the limit of {limit}: each is the last path from the "
+            "start to a drawn state"
         )
     if capped_n:
         notes.append(
@@ -529,16 +543,67 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     )
 
 
+def _reach(edges, start: int) -> set[int]:
+    adj: dict[int, list[int]] = {}
+    for i, j, _ in edges:
+        adj.setdefault(i, []).append(j)
+    seen = {start}
+    q = deque([start])
+    while q:
+        u = q.popleft()
+        for v in adj.get(u, ()):
+            if v not in seen:
+                seen.add(v)
+                q.append(v)
+    return seen
+
+
+def _prune_connected(edges, candidates, start: int | None, limit: int | None = None):
+    """Drop ``candidates`` (weakest first) from ``edges`` while the diagram stays connected.
+
+    An edge goes only if every state reached from ``start`` over the current edges is still
+    reached without it and both of its ends keep at least one edge; with ``limit``, dropping
+    stops once at most ``limit`` edges are left. Returns (edges left, dropped, kept candidates).
+    """
+    current = list(edges)
+    cur_set = set(current)
+    degree: dict[int, int] = {}
+    for i, j, _ in current:
+        degree[i] = degree.get(i, 0) + 1
+        degree[j] = degree.get(j, 0) + 1
+    reached = _reach(current, start) if start is not None else set()
+    dropped, kept = [], []
+    for e in candidates:
+        if limit is not None and len(cur_set) <= limit:
+            break
+        if e not in cur_set:
+            continue
+        i, j, _ = e
+        ok = degree.get(i, 0) > 1 and degree.get(j, 0) > 1 if i != j else degree.get(i, 0) > 2
+        if ok and start is not None and j in reached and j != start:
+            trial = [x for x in current if x in cur_set and x != e]
+            ok = _reach(trial, start) >= reached
+        if ok:
+            cur_set.discard(e)
+            dropped.append(e)
+            degree[i] -= 1
+            degree[j] -= 1
+        else:
+            kept.append(e)
+    return [e for e in current if e in cur_set], dropped, kept
+
+
 def _short(name: str, limit: int = 40) -> str:
     return name if len(name) <= limit else name[: limit - 1] + "…"
 
 
 def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
                min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
-               radius: int = 1) -> str:
+               radius: int = 1, max_edges: int | None = None, **kw) -> str:
     """The diagram as DOT text (see :func:`build_diagram`)."""
     return build_diagram(a, min_edge_share=min_edge_share, max_states=max_states, title=title,
-                         min_edge_prob=min_edge_prob, groups=groups, focus=focus, radius=radius).dot
+                         min_edge_prob=min_edge_prob, groups=groups, focus=focus, radius=radius,
+                         max_edges=max_edges, **kw).dot
 
 
 def _legend(present: set[str]) -> list[str]:

@@ -55,7 +55,7 @@ import scipy.sparse as sp
 from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
-__all__ = ["render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
+__all__ = ["first_arrival_median", "FIT_PRESETS", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
            "resolve_state", "FORMATS"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
@@ -72,6 +72,16 @@ _EDGE = "#4d4d4d"
 _END_EDGE = "#8c8c8c"
 _GROUP_LINE = "#9a9a9a"
 _MAX_LABEL = 48
+
+#: Type sizes per target (points of the Graphviz drawing). ``width_px`` and ``height_px`` are
+#: the target the diagram is shown in, ``min_px`` the smallest text it must show there (the
+#: tests measure the SVG against it); slides hold fewer states and edges by default.
+FIT_PRESETS = {
+    "slide": dict(width_px=1280, height_px=720, min_px=14, node=20, edge=18, caption=20, ranksep=0.45,
+                  nodesep=0.25, max_states=12, max_edges=22),
+    "page": dict(width_px=960, height_px=None, min_px=10, node=14, edge=12, caption=14, ranksep=0.5,
+                 nodesep=0.35, max_states=30, max_edges=60),
+}
 
 
 def dot_quote(text: str, limit: int = _MAX_LABEL) -> str:
@@ -195,6 +205,43 @@ def _path_scores(ch, targets: list[int]) -> np.ndarray:
     return score
 
 
+def first_arrival_median(ch, max_steps: int | None = None) -> np.ndarray:
+    """Per state: the median step (edges from the start) at which a session first reaches it.
+
+    For each state j, the first-passage distribution f_t(j) = P(first visit to j at step t)
+    is propagated from the start over the chain with j made absorbing (the mass that reaches
+    j is taken out each step); the median is the first t whose cumulative f reaches half of
+    the mass that arrives within ``max_steps`` (default: 3 × states, at most 200). 0 for the
+    start and for states not reached in that time.
+    """
+    n = ch.n
+    out = np.zeros(n, dtype=np.int64)
+    if ch.start is None:
+        return out
+    T = max_steps if max_steps is not None else min(200, 3 * n + 3)
+    P = ch.P.tocsr()
+    PT = P.T.tocsr()
+    absorbing = ch.absorbing_mask
+    for j in range(n):
+        if j == ch.start:
+            continue
+        v = np.zeros(n)
+        v[ch.start] = 1.0
+        f = np.zeros(T + 1)
+        for t in range(1, T + 1):
+            v = PT @ v
+            f[t] = v[j]
+            v[j] = 0.0
+            v[absorbing] = 0.0  # mass in an absorbing state never moves on
+            if v.sum() < 1e-12:
+                break
+        tot = f.sum()
+        if tot <= 1e-12:
+            continue
+        out[j] = int(np.searchsorted(np.cumsum(f), 0.5 * tot - 1e-12)) or 1
+    return out
+
+
 def _bfs_levels(n: int, start: int | None, edges: list[tuple[int, int, float]], drawn: set[int]) -> dict[int, int]:
     if start is None or start not in drawn:
         return {}
@@ -215,7 +262,7 @@ def _bfs_levels(n: int, start: int | None, edges: list[tuple[int, int, float]], 
 def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
                   min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
                   radius: int = 1, rank_by_distance: bool | str = "auto", max_edges: int | None = None,
-                  end_edges: str = "auto") -> Diagram:
+                  end_edges: str = "auto", layout: str = "classic", fit: str | None = None) -> Diagram:
     """The diagram of an analysis, with what it left out.
 
     An edge is *rare*, and hidden, when it carries less than ``min_edge_share`` of all
@@ -241,7 +288,31 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     ``"labels"`` (write each state's share of sessions ending there into its label
     instead, which saves many long edges in a big diagram) or ``"auto"`` (edges up to 20
     drawn states, labels above).
+
+    ``layout="review"`` is the layout for a review meeting: exits are a figure in each state
+    (``⤓ 30% end here``), not edges to the end; columns are the typical step at which a state
+    is first reached (the median of the first-arrival step from the start, computed from the
+    chain; see :func:`first_arrival_median`); goals, terminals and states without an observed
+    exit share the last column; loops are not framed (their titles collided with edge labels).
+    ``fit`` sets the type sizes for a target: ``"slide"`` (16:9, at least
+    ``FIT_PRESETS["slide"]["min_px"]`` px at 1280 px wide: fewer states and edges by default)
+    or ``"page"``; ``None`` keeps the classic sizes.
     """
+    if layout not in ("classic", "review"):
+        raise AnalysisError(f"layout must be 'classic' or 'review', not {layout!r}")
+    if fit is not None and fit not in FIT_PRESETS:
+        raise AnalysisError(f"fit must be one of {', '.join(FIT_PRESETS)}, not {fit!r}")
+    preset = FIT_PRESETS.get(fit) if fit else None
+    if preset is not None:
+        if max_states == 60:
+            max_states = preset["max_states"]
+        if max_edges is None:
+            max_edges = preset["max_edges"]
+    if layout == "review":
+        if end_edges == "auto":
+            end_edges = "labels"
+        if groups is None:
+            groups = {}
     if end_edges not in ("auto", "edges", "labels"):
         raise AnalysisError(f"end_edges must be 'auto', 'edges' or 'labels', not {end_edges!r}")
     ch = a.chain
@@ -392,8 +463,12 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
                             nodesep=0.5, forcelabels="true")
         + ";"
     )
-    out.append("  node " + _attrs(fontname="Helvetica", fontsize=10, shape="box", style="rounded") + ";")
-    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=9, color=_EDGE, arrowsize=0.7) + ";")
+    fs_node, fs_edge = (preset["node"], preset["edge"]) if preset else (10, 9)
+    out.append("  node " + _attrs(fontname="Helvetica", fontsize=fs_node, shape="box", style="rounded") + ";")
+    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=fs_edge, color=_EDGE, arrowsize=0.7) + ";")
+    if preset:
+        out.append("  graph " + _attrs(fontsize=preset["caption"], ranksep=preset["ranksep"],
+                                       nodesep=preset["nodesep"]) + ";")
 
     present: set[str] = set()
 
@@ -500,9 +575,28 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     for i in drawn:
         if i not in placed:
             out.append(node_line(i))
-    if rank_by_distance == "auto":
-        rank_by_distance = n_drawn > 20
-    level = _bfs_levels(ch.n, ch.start, edges, drawn_set) if rank_by_distance else {}
+    sink_side: list[int] = []
+    if layout == "review":
+        rank_by_distance = True
+        med = first_arrival_median(ch)
+        level = {}
+        for i in drawn:
+            if roles[i] in ("goal", "terminal", "sink"):
+                sink_side.append(i)
+            elif roles[i] == "start":
+                level[i] = 0
+            elif roles[i] != "end":
+                level[i] = med[i] if med[i] > 0 else n_drawn + 1
+        # a rank the chain never reaches in time goes after the others; ranks are renumbered densely
+        dense = {lv: k for k, lv in enumerate(sorted(set(level.values())))}
+        level = {i: dense[lv] for i, lv in level.items()}
+        last = max(level.values(), default=0) + 1
+        for i in sink_side:
+            level[i] = last
+    else:
+        if rank_by_distance == "auto":
+            rank_by_distance = n_drawn > 20
+        level = _bfs_levels(ch.n, ch.start, edges, drawn_set) if rank_by_distance else {}
     for i, j, w in edges:
         p = float(ch.P[i, j])
         width = 1.0 + (7.0 if n_drawn <= 20 else 3.5) * math.sqrt(w / wmax)
@@ -527,12 +621,14 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     if rank_by_distance:
         by_level: dict[int, list[int]] = {}
         for i, lv in level.items():
-            if roles[i] != "end":
+            if roles[i] != "end" and i not in sink_side:
                 by_level.setdefault(lv, []).append(i)
         for lv in sorted(by_level):
             members = " ".join(f"n{i};" for i in sorted(by_level[lv]))
             out.append(f"  {{ rank=same; {members} }}")
-        if ch.end is not None and keep[ch.end]:
+        if sink_side:
+            out.append("  { rank=max; " + " ".join(f"n{i};" for i in sorted(sink_side)) + " }")
+        elif ch.end is not None and keep[ch.end]:
             out.append(f"  {{ rank=max; n{ch.end}; }}")
     out.extend(_legend(present))
     out.append("}")

@@ -121,3 +121,88 @@ def test_cli_max_edges_option(run_cli, tmp_path):
     with pytest.raises(SystemExit) as e:  # argparse's usage error, status 2
         run_cli("analyze", log, "--goal", "Paid", "--dot", dot, "--max-edges", "0", "-q")
     assert e.value.code == 2
+
+
+# -- first arrival -------------------------------------------------------------------------------
+def test_first_arrival_median_against_simulation(big):
+    """The exact first-passage median against a seeded simulation of 4,000 walks on the same
+    chain (numpy's generator); the two agree within one step (a simulated median can fall on
+    the neighbouring step when the exact cdf is close to one half)."""
+    from tracechain.report.dot import first_arrival_median
+
+    ch, a = big
+    med = first_arrival_median(ch)
+    P = ch.P.toarray()
+    rng = np.random.default_rng(11)
+    first: dict[int, list[int]] = {}
+    cum = np.cumsum(P, axis=1)
+    for _ in range(4000):
+        s, t, seen = ch.start, 0, set()
+        while t < 200 and not ch.absorbing_mask[s]:
+            s = int(np.searchsorted(cum[s], rng.random() * cum[s, -1], side="right"))
+            t += 1
+            if s not in seen:
+                seen.add(s)
+                first.setdefault(s, []).append(t)
+    checked = 0
+    for j, ts in first.items():
+        if len(ts) >= 200 and j != ch.end:
+            sim = int(np.ceil(np.quantile(ts, 0.5, method="inverted_cdf")))
+            assert abs(sim - med[j]) <= 1, (ch.label(j), sim, med[j])
+            checked += 1
+    assert checked >= 20
+
+
+def test_first_arrival_median_by_hand():
+    # start -> A always; A -> B (3 of 4 sessions) or A -> C -> B (1 of 4): B is first reached at
+    # step 2 with probability 3/4, so its median is 2; C at step 2; D only after B (step 3 or 4:
+    # median 3). Computed by hand.
+    sessions = {f"x{k}": ["A", "B", "D"] for k in range(3)}
+    sessions["y"] = ["A", "C", "B", "D"]
+    ch, a = chain_of(sessions, ["D"])
+    from tracechain.report.dot import first_arrival_median
+
+    med = first_arrival_median(ch)
+    assert [med[ch.index(s)] for s in "ABCD"] == [1, 2, 2, 3]
+
+
+# -- review layout -------------------------------------------------------------------------------
+def layout_of(dot_text: str) -> dict[str, tuple[float, float]]:
+    g = json.loads(graphviz.Source(dot_text).pipe(format="json0"))
+    pos = {}
+    for o in g["objects"]:
+        if "pos" in o and "nodes" not in o:
+            x, y = (float(v) for v in o["pos"].split(","))
+            pos[o["name"]] = (x, y)
+    return pos
+
+
+def test_review_layout_puts_goals_last_and_draws_no_end(big):
+    ch, a = big
+    d = build_diagram(a, layout="review")
+    pos = layout_of(d.dot)
+    assert f"n{ch.end}" not in pos  # exits are a share in each state, not edges to an end node
+    assert any("⤓" in line for line in d.dot.splitlines() if line.strip().startswith("n"))
+    goal = f"n{int(ch.goals[0])}"
+    xs = [x for name, (x, _) in pos.items() if name.startswith("n") and name != goal]
+    assert pos[goal][0] > max(xs)  # rankdir=LR: the goal's column is the last one
+    # columns follow the median first-arrival step: a state first reached later is never left of
+    # one reached earlier
+    from tracechain.report.dot import first_arrival_median
+
+    med = first_arrival_median(ch)
+    drawn = [i for i in d.shown if ch.roles[i] not in ("start", "end", "goal") and f"n{i}" in pos]
+    for i in drawn:
+        for j in drawn:
+            if med[i] < med[j]:
+                assert pos[f"n{i}"][0] < pos[f"n{j}"][0], (ch.label(i), ch.label(j))
+
+
+def test_layout_and_fit_are_checked(big):
+    ch, a = big
+    from tracechain.errors import AnalysisError
+
+    with pytest.raises(AnalysisError, match="layout"):
+        build_diagram(a, layout="fancy")
+    with pytest.raises(AnalysisError, match="fit"):
+        build_diagram(a, fit="poster")

@@ -614,6 +614,8 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         elif roles[j] == "end":
             kw.update(color=_END_EDGE, style="dashed", fontcolor="#555555")
             present.add("end_edge")
+        if layout == "review" and i in level and j in level and level[j] <= level[i]:
+            kw["constraint"] = "false"  # a step back or within a column does not move the columns
         if kw.get("label") and i in level and level.get(j) == level[i] and i != j:
             # an edge within one column: dot places its label badly; an external label avoids the overlap
             kw["xlabel"] = kw.pop("label")
@@ -626,6 +628,11 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         for lv in sorted(by_level):
             members = " ".join(f"n{i};" for i in sorted(by_level[lv]))
             out.append(f"  {{ rank=same; {members} }}")
+        if layout == "review":
+            # invisible edges from column to column fix their order (drawn steps back carry no constraint)
+            firsts = [min(by_level[lv]) for lv in sorted(by_level)] + ([min(sink_side)] if sink_side else [])
+            for u, v in zip(firsts, firsts[1:]):
+                out.append(f"  n{u} -> n{v} [style=invis, weight=0];")
         if sink_side:
             out.append("  { rank=max; " + " ".join(f"n{i};" for i in sorted(sink_side)) + " }")
         elif ch.end is not None and keep[ch.end]:

@@ -78,9 +78,9 @@ _MAX_LABEL = 48
 #: tests measure the SVG against it); slides hold fewer states and edges by default.
 FIT_PRESETS = {
     "slide": dict(width_px=1280, height_px=720, min_px=14, node=20, edge=18, caption=20, ranksep=0.45,
-                  nodesep=0.25, max_states=12, max_edges=22),
+                  nodesep=0.25, max_states=12, max_edges=22, wrap=70, short=True),
     "page": dict(width_px=960, height_px=None, min_px=10, node=14, edge=12, caption=14, ranksep=0.5,
-                 nodesep=0.35, max_states=30, max_edges=60),
+                 nodesep=0.35, max_states=30, max_edges=60, wrap=90),
 }
 
 
@@ -449,6 +449,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             f"{hidden_n} edge{'s' if hidden_n != 1 else ''} carrying {100 * hidden_w / total:.1f}% of all transitions"
         )
 
+    short = bool(preset and preset.get("short"))  # a slide: counts only as visits, in the table elsewhere
     out = ["digraph tracechain {"]
     cap = []
     if title:
@@ -456,7 +457,19 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     conv = a.conversion_total()
     if conv is not None:
         cap.append(f"conversion from start: {100 * conv:.1f}%")
-    cap.extend(notes)
+    if short:
+        # a slide carries one short line about what was left out; the full notes stay in Diagram.notes
+        gone_share = (pruned_w + capped_w) / total
+        if pruned_n + capped_n:
+            cap.append(f"{pruned_n + capped_n} weak edges not drawn ({100 * gone_share:.1f}% of transitions)")
+        if selection and hidden_states:
+            cap.append(f"{hidden_states} states not drawn ({100 * hidden_w / total:.1f}% of transitions)")
+    elif preset:
+        import textwrap
+
+        cap.extend(part for n in notes for part in textwrap.wrap(n, preset["wrap"]))
+    else:
+        cap.extend(notes)
     out.append(
         "  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t", nojustify="true",
                             label=_label(*cap, limit=200) if cap else None, newrank="true", ranksep=0.55,
@@ -483,12 +496,16 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         tag = (["◎ focus"] if i == focus_idx else [])
         if i in starts_of and starts_of[i][1] >= 0.01:  # under 1% of starts: the edge's width says enough
             w_st, p_st = starts_of[i]
-            tag.append(f"↦ {100 * p_st:.0f}% of starts ({int(w_st):,})" if has_counts else f"↦ {100 * p_st:.0f}% of starts")
+            tag.append(f"↦ {100 * p_st:.0f}% of starts ({int(w_st):,})" if has_counts and not short
+                       else f"↦ {100 * p_st:.0f}% of starts")
         if i in ends_of:
             w_end, p_end = ends_of[i]
-            tag.append(f"⤓ {100 * p_end:.0f}% end here ({int(w_end):,})" if has_counts else f"⤓ {100 * p_end:.0f}% end")
+            tag.append(f"⤓ {100 * p_end:.0f}% end here ({int(w_end):,})" if has_counts and not short
+                       else f"⤓ {100 * p_end:.0f}% end")
         if role == "start":
             present.add("start")
+            if preset:
+                return f"  n{i} " + _attrs(shape="circle", label="start", style="solid", margin=0.02) + ";"
             return f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true", style="solid") + ";"
         if role == "end":
             present.add("end")
@@ -601,7 +618,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         p = float(ch.P[i, j])
         width = 1.0 + (7.0 if n_drawn <= 20 else 3.5) * math.sqrt(w / wmax)
         if has_counts:
-            text = f"{100 * p:.0f}% ({int(w):,})" if p < 0.995 else f"{int(w):,}"
+            text = (f"{100 * p:.0f}%" if short else f"{100 * p:.0f}% ({int(w):,})") if p < 0.995 else f"{int(w):,}"
         else:
             text = f"{100 * p:.0f}%"
         kw = dict(penwidth=round(width, 2), label=text)
@@ -634,10 +651,11 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             for u, v in zip(firsts, firsts[1:]):
                 out.append(f"  n{u} -> n{v} [style=invis, weight=0];")
         if sink_side:
-            out.append("  { rank=max; " + " ".join(f"n{i};" for i in sorted(sink_side)) + " }")
+            legend_here = ""
+            out.append("  { rank=max; " + " ".join(f"n{i};" for i in sorted(sink_side)) + legend_here + " }")
         elif ch.end is not None and keep[ch.end]:
             out.append(f"  {{ rank=max; n{ch.end}; }}")
-    out.extend(_legend(present))
+    out.extend(_legend(present, fontsize=preset["edge"] if preset else 9))
     out.append("}")
     return Diagram(
         dot="\n".join(out) + "\n", notes=tuple(notes), shown=tuple(drawn), pruned_edges=pruned_n,
@@ -709,7 +727,7 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
                          max_edges=max_edges, **kw).dot
 
 
-def _legend(present: set[str]) -> list[str]:
+def _legend(present: set[str], fontsize: int = 9) -> list[str]:
     """A compact legend of what the diagram shows (only the kinds of node and edge that appear).
 
     One node with a Graphviz HTML-like table (our own fixed text only, never a state name):
@@ -736,14 +754,14 @@ def _legend(present: set[str]) -> list[str]:
         rows.append(_line("━━━▶", _GOAL_LINE) + _desc("★ into a goal: solid green"))
     if "end_edge" in present:
         rows.append(_line("╍╍╍▶", _END_EDGE) + _desc("into the end: dashed grey"))
-    return [_legend_node(rows)]
+    return [_legend_node(rows, fontsize)]
 
 
-def _legend_node(rows: list[str]) -> str:
+def _legend_node(rows: list[str], fontsize: int = 9) -> str:
     body = "".join(f"<TR>{r}</TR>" for r in rows)
     table = ('<TABLE BORDER="1" STYLE="rounded" COLOR="#bbbbbb" CELLBORDER="0" CELLSPACING="3" CELLPADDING="2">'
              '<TR><TD COLSPAN="2"><B>legend</B></TD></TR>' + body + "</TABLE>")
-    return f"  lg_legend [shape=plaintext, fontname=\"Helvetica\", fontsize=9, margin=0, label=<{table}>];"
+    return f"  lg_legend [shape=plaintext, fontname=\"Helvetica\", fontsize={fontsize}, margin=0, label=<{table}>];"
 
 
 def _cell(text: str, style: str | None = None, border: int = 1, fill: str | None = None,

@@ -146,37 +146,46 @@ def test_trap_is_framed_by_a_dashed_cluster():
 
 @pytest.fixture(scope="module")
 def rare():
-    # 200 orders Home -> Item -> Paid, 40 visits Home -> Item -> end, and four single visits
-    # Home -> Help<k> -> end
+    # 200 orders Home -> Item -> Paid, 40 visits Home -> Item -> end, four single visits
+    # Home -> Help<k> -> end, and two orders that step back once: Home -> Item -> Home -> Item -> Paid
     sessions = {f"o{k}": ["Home", "Item", "Paid"] for k in range(200)}
     sessions.update({f"l{k}": ["Home", "Item"] for k in range(40)})
     sessions.update({f"h{k}": ["Home", f"Help{k}"] for k in range(4)})
+    sessions.update({f"r{k}": ["Home", "Item", "Home", "Item", "Paid"] for k in range(2)})
     return analysis_of(sessions, ["Paid"])
+
+
+def drawn_edges(g: dict) -> set[tuple[str, str]]:
+    nodes = {o["_gvid"]: o["name"] for o in g["objects"] if "name" in o}
+    return {(nodes[e["tail"]], nodes[e["head"]]) for e in g.get("edges", [])}
 
 
 def test_rare_edge_pruning_states_the_share(rare):
     ch, a = rare
     # transitions the diagram can show (exits of non-absorbing states, start and end included),
-    # counted by hand: start->Home 244, Home->Item 240, Home->Help<k> 4 x 1, Item->Paid 200,
-    # Item->end 40, Help<k>->end 4 x 1. The 200 ends recorded after the goal are not transitions
-    # of the chain (the goal absorbs) and are not drawn, so they are not in the denominator.
-    total = 244 + 240 + 4 + 200 + 40 + 4
+    # counted by hand: start->Home 246, Home->Item 244, Home->Help<k> 4 x 1, Item->Paid 202,
+    # Item->end 40, Help<k>->end 4 x 1, Item->Home 2. The ends recorded after the goal are not
+    # transitions of the chain (the goal absorbs) and are not drawn, so they are not in the denominator.
+    total = 246 + 244 + 4 + 202 + 40 + 4 + 2
     g = parsed(render_dot(a, min_edge_share=0.005, min_edge_prob=0.1))
     label = g["label"]
     m = re.search(r"(\d+) rare edges? hidden .* carrying (\d+(?:\.\d+)?)% of all transitions", label)
     assert m, label
-    # only Home -> Help<k> are rare: each 1/732 of all transitions and 1/244 of Home's exits;
-    # Help<k> -> end is 100% of Help<k>'s exits and so stays
-    assert int(m.group(1)) == 4
-    assert float(m.group(2)) == pytest.approx(100 * 4 / total, abs=0.05)
-    nodes = {o["_gvid"]: o["name"] for o in g["objects"] if "name" in o}
-    drawn = {(nodes[e["tail"]], nodes[e["head"]]) for e in g["edges"]}
-    home, end = f"n{ch.index('Home')}", f"n{ch.end}"
+    # rare (under 0.5% of all and under 10% of the source's exits): Item -> Home (2/742, 2/244) and
+    # Home -> Help<k> (1/742, 1/248 each). Only Item -> Home may go: Home keeps its edge from the start.
+    # Each Home -> Help<k> is Help<k>'s only way in, so it stays and the caption says so
+    # (before, it was pruned and left Help<k> hanging from nothing).
+    assert int(m.group(1)) == 1
+    assert float(m.group(2)) == pytest.approx(100 * 2 / total, abs=0.05)
+    assert re.search(r"4 rare edges kept: without them a drawn state would lose its path from the start", label)
+    drawn = drawn_edges(g)
+    home, item, end = f"n{ch.index('Home')}", f"n{ch.index('Item')}", f"n{ch.end}"
+    assert (item, home) not in drawn
     for k in range(4):
         help_k = f"n{ch.index(f'Help{k}')}"
-        assert (home, help_k) not in drawn
+        assert (home, help_k) in drawn
         assert (help_k, end) in drawn
-    assert (home, f"n{ch.index('Item')}") in drawn and (f"n{ch.index('Item')}", end) in drawn
+    assert (home, item) in drawn and (item, end) in drawn
 
 
 def test_no_pruning_no_caption(rare):

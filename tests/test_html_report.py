@@ -398,7 +398,12 @@ def test_edge_budget_keeps_each_states_strongest_exit():
     d = build_diagram(a, min_edge_share=0.0, max_edges=45)
     g = parsed(d.dot)
     drawn = {(t, h) for t, h in drawn_edges(g) if t.startswith("n") and h.startswith("n")}
-    assert len(drawn) <= 45
+    # the cap gives way where an edge is a drawn state's last path from the start (issue 18):
+    # then the caption says how many edges are above it, and networkx confirms every state is reached
+    m = re.search(r"(\d+) edges drawn, (\d+) above the limit of 45", "\n".join(d.notes))
+    assert len(drawn) <= 45 or (m and int(m.group(1)) == len(drawn) and int(m.group(2)) == len(drawn) - 45)
+    G = nx.DiGraph(list(drawn))
+    assert {f"n{i}" for i in d.shown} <= nx.descendants(G, f"n{ch.start}") | {f"n{ch.start}"}
     W = ch.weights.tolil()
     for i in d.shown:
         if ch.absorbing_mask[i]:

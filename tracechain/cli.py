@@ -65,6 +65,16 @@ def _timestamp(text: str) -> float:
     return dt.timestamp()
 
 
+def _positive_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError("must be at least 1")
+    return v
+
+
 def _share(text: str) -> float:
     try:
         v = float(text.rstrip("%")) / (100.0 if text.endswith("%") else 1.0)
@@ -164,6 +174,14 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--pdf", metavar="FILE", help="write the diagram as PDF (needs Graphviz)")
     o.add_argument("--min-edge-share", type=_share, default=0.005, metavar="SHARE",
                    help="hide diagram edges carrying less than this share of transitions (default 0.005 = 0.5%%)")
+    o.add_argument("--max-edges", type=_positive_int, default=None, metavar="N",
+                   help="draw at most N edges, weakest hidden first, never one that is a drawn state's last path "
+                        "from the start (default: 80 or two per state)")
+    o.add_argument("--layout", choices=("classic", "review"), default="classic",
+                   help="diagram layout: classic (default) or review (exits as a share in each state, columns by "
+                        "the typical step a state is reached, goals and terminals in the last column)")
+    o.add_argument("--fit", choices=("page", "slide"), default=None,
+                   help="diagram type sizes for a page or a 16:9 slide (at least 14 px at 1280 px wide)")
     o.add_argument("--max-states", type=int, default=60, metavar="N", help="draw at most N states (default 60)")
     o.add_argument("--top", type=int, default=10, metavar="N", help="rows in the exit-state table (default 10; 0 for all)")
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
@@ -325,7 +343,8 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))
     wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
     if wants_diagram:
-        dot_text = render_dot(result, min_edge_share=args.min_edge_share, max_states=args.max_states)
+        dot_text = render_dot(result, min_edge_share=args.min_edge_share, max_states=args.max_states,
+                              max_edges=args.max_edges, layout=args.layout, fit=args.fit)
         if args.dot:
             written.append(write_output(args.dot, dot_text))
         for fmt in ("svg", "png", "pdf"):

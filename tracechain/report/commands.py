@@ -38,16 +38,25 @@ def _privacy_options(p: argparse.ArgumentParser) -> None:
 
 
 def _diagram_options(p: argparse.ArgumentParser) -> None:
-    from ..cli import _share
+    from ..cli import _positive_int, _share
 
     d = p.add_argument_group("diagram")
     d.add_argument("--min-edge-share", type=_share, default=0.005, metavar="SHARE",
                    help="hide edges carrying less than this share of transitions (default 0.005 = 0.5%%)")
+    d.add_argument("--max-edges", type=_positive_int, default=None, metavar="N",
+                   help="draw at most N edges, weakest hidden first, never one that is a drawn state's last path "
+                        "from the start (default: 80 or two per state)")
     d.add_argument("--max-states", type=int, default=60, metavar="N",
                    help="draw at most N states: goals, then the states on the most likely paths to a goal (default 60)")
     d.add_argument("--focus", metavar="STATE", help="draw only the neighbourhood of this state")
     d.add_argument("--focus-radius", type=int, choices=(1, 2), default=1, metavar="R",
                    help="how many steps around --focus (1 or 2; default 1)")
+    d.add_argument("--layout", choices=("review", "classic"), default="review",
+                   help="review (default): exits as a share in each state, columns by the typical step a state "
+                        "is reached, goals and terminals in the last column; classic: exits as edges to the end")
+    d.add_argument("--fit", choices=("page", "slide"), default="page",
+                   help="type sizes for a report page (default) or a 16:9 slide (at least 14 px at 1280 px "
+                        "wide; fewer states and edges unless --max-states/--max-edges say otherwise)")
     d.add_argument("--no-diagram", action="store_true", help="leave the diagram out of the report")
 
 
@@ -130,7 +139,8 @@ def _diagram(result, args, groups):
     from .dot import build_diagram, render_image
 
     d = build_diagram(result, min_edge_share=args.min_edge_share, max_states=args.max_states, groups=groups,
-                      focus=args.focus, radius=args.focus_radius)
+                      focus=args.focus, radius=args.focus_radius, max_edges=args.max_edges,
+                      layout=args.layout, fit=args.fit)
     try:
         return d, render_image(d.dot, "svg"), None
     except RenderError as err:

@@ -55,7 +55,7 @@ import scipy.sparse as sp
 from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
-__all__ = ["render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
+__all__ = ["first_arrival_median", "FIT_PRESETS", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
            "resolve_state", "FORMATS"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
@@ -72,6 +72,16 @@ _EDGE = "#4d4d4d"
 _END_EDGE = "#8c8c8c"
 _GROUP_LINE = "#9a9a9a"
 _MAX_LABEL = 48
+
+#: Type sizes per target (points of the Graphviz drawing). ``width_px`` and ``height_px`` are
+#: the target the diagram is shown in, ``min_px`` the smallest text it must show there (the
+#: tests measure the SVG against it); slides hold fewer states and edges by default.
+FIT_PRESETS = {
+    "slide": dict(width_px=1280, height_px=720, min_px=14, node=20, edge=18, caption=20, ranksep=0.45,
+                  nodesep=0.25, max_states=12, max_edges=22, wrap=70, short=True),
+    "page": dict(width_px=960, height_px=None, min_px=10, node=14, edge=12, caption=14, ranksep=0.5,
+                 nodesep=0.35, max_states=30, max_edges=60, wrap=90),
+}
 
 
 def dot_quote(text: str, limit: int = _MAX_LABEL) -> str:
@@ -195,6 +205,43 @@ def _path_scores(ch, targets: list[int]) -> np.ndarray:
     return score
 
 
+def first_arrival_median(ch, max_steps: int | None = None) -> np.ndarray:
+    """Per state: the median step (edges from the start) at which a session first reaches it.
+
+    For each state j, the first-passage distribution f_t(j) = P(first visit to j at step t)
+    is propagated from the start over the chain with j made absorbing (the mass that reaches
+    j is taken out each step); the median is the first t whose cumulative f reaches half of
+    the mass that arrives within ``max_steps`` (default: 3 × states, at most 200). 0 for the
+    start and for states not reached in that time.
+    """
+    n = ch.n
+    out = np.zeros(n, dtype=np.int64)
+    if ch.start is None:
+        return out
+    T = max_steps if max_steps is not None else min(200, 3 * n + 3)
+    P = ch.P.tocsr()
+    PT = P.T.tocsr()
+    absorbing = ch.absorbing_mask
+    for j in range(n):
+        if j == ch.start:
+            continue
+        v = np.zeros(n)
+        v[ch.start] = 1.0
+        f = np.zeros(T + 1)
+        for t in range(1, T + 1):
+            v = PT @ v
+            f[t] = v[j]
+            v[j] = 0.0
+            v[absorbing] = 0.0  # mass in an absorbing state never moves on
+            if v.sum() < 1e-12:
+                break
+        tot = f.sum()
+        if tot <= 1e-12:
+            continue
+        out[j] = int(np.searchsorted(np.cumsum(f), 0.5 * tot - 1e-12)) or 1
+    return out
+
+
 def _bfs_levels(n: int, start: int | None, edges: list[tuple[int, int, float]], drawn: set[int]) -> dict[int, int]:
     if start is None or start not in drawn:
         return {}
@@ -215,7 +262,7 @@ def _bfs_levels(n: int, start: int | None, edges: list[tuple[int, int, float]], 
 def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
                   min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
                   radius: int = 1, rank_by_distance: bool | str = "auto", max_edges: int | None = None,
-                  end_edges: str = "auto") -> Diagram:
+                  end_edges: str = "auto", layout: str = "classic", fit: str | None = None) -> Diagram:
     """The diagram of an analysis, with what it left out.
 
     An edge is *rare*, and hidden, when it carries less than ``min_edge_share`` of all
@@ -241,7 +288,31 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     ``"labels"`` (write each state's share of sessions ending there into its label
     instead, which saves many long edges in a big diagram) or ``"auto"`` (edges up to 20
     drawn states, labels above).
+
+    ``layout="review"`` is the layout for a review meeting: exits are a figure in each state
+    (``⤓ 30% end here``), not edges to the end; columns are the typical step at which a state
+    is first reached (the median of the first-arrival step from the start, computed from the
+    chain; see :func:`first_arrival_median`); goals, terminals and states without an observed
+    exit share the last column; loops are not framed (their titles collided with edge labels).
+    ``fit`` sets the type sizes for a target: ``"slide"`` (16:9, at least
+    ``FIT_PRESETS["slide"]["min_px"]`` px at 1280 px wide: fewer states and edges by default)
+    or ``"page"``; ``None`` keeps the classic sizes.
     """
+    if layout not in ("classic", "review"):
+        raise AnalysisError(f"layout must be 'classic' or 'review', not {layout!r}")
+    if fit is not None and fit not in FIT_PRESETS:
+        raise AnalysisError(f"fit must be one of {', '.join(FIT_PRESETS)}, not {fit!r}")
+    preset = FIT_PRESETS.get(fit) if fit else None
+    if preset is not None:
+        if max_states == 60:
+            max_states = preset["max_states"]
+        if max_edges is None:
+            max_edges = preset["max_edges"]
+    if layout == "review":
+        if end_edges == "auto":
+            end_edges = "labels"
+        if groups is None:
+            groups = {}
     if end_edges not in ("auto", "edges", "labels"):
         raise AnalysisError(f"end_edges must be 'auto', 'edges' or 'labels', not {end_edges!r}")
     ch = a.chain
@@ -289,7 +360,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         selection = "top"
     # which edges are drawn
     edges = []
-    pruned_n, pruned_w = 0, 0.0
+    rare: list[tuple[int, int, float]] = []
     hidden_n, hidden_w = 0, 0.0
     for i, j, w in zip(W.row, W.col, W.data):
         if w <= 0 or ch.absorbing_mask[i]:
@@ -298,11 +369,10 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             hidden_n += 1
             hidden_w += w
             continue
+        e = (int(i), int(j), float(w))
+        edges.append(e)
         if w / total < min_edge_share and float(ch.P[i, j]) < min_edge_prob:
-            pruned_n += 1
-            pruned_w += w
-            continue
-        edges.append((int(i), int(j), float(w)))
+            rare.append(e)
     n_drawn = sum(1 for i in observed if keep[i])
     fold_ends = ch.end is not None and (end_edges == "labels" or (end_edges == "auto" and n_drawn > 20))
     ends_of: dict[int, tuple[float, float]] = {}
@@ -311,6 +381,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             if j == ch.end:
                 ends_of[i] = (w, float(ch.P[i, j]))
         edges = [e for e in edges if e[1] != ch.end]
+        rare = [e for e in rare if e[1] != ch.end]
         keep[ch.end] = False
     # where sessions start is written into the states' labels: the start's fan of edges keeps its
     # widths but carries no text, which would crowd the first column
@@ -319,20 +390,24 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         for i, j, w in zip(W.row, W.col, W.data):
             if i == ch.start and w > 0 and keep[j]:
                 starts_of[int(j)] = (float(w), float(ch.P[i, j]))
+    # pruning never disconnects: an edge goes only if every drawn state the start reached before
+    # still has a path from the start, and both its ends keep some edge
+    start_drawn = ch.start if ch.start is not None and keep[ch.start] else None
+    rare.sort(key=lambda e: (e[2], e[0], e[1]))
+    edges, dropped_rare, kept_rare = _prune_connected(edges, rare, start_drawn)
+    pruned_n, pruned_w = len(dropped_rare), sum(e[2] for e in dropped_rare)
     limit = max_edges if max_edges is not None else max(80, 2 * n_drawn)
-    capped_n, capped_w = 0, 0.0
+    capped_n, capped_w, capped_kept = 0, 0.0, 0
     if len(edges) > limit:
         best: dict[int, tuple[int, int, float]] = {}
         for e in edges:
             if e[0] not in best or e[2] > best[e[0]][2]:
                 best[e[0]] = e
         protected = set(best.values())
-        others = sorted((e for e in edges if e not in protected), key=lambda e: -e[2])
-        room = max(0, limit - len(protected))
-        dropped = others[room:]
+        others = sorted((e for e in edges if e not in protected), key=lambda e: (e[2], e[0], e[1]))
+        edges, dropped, kept = _prune_connected(edges, others, start_drawn, limit=limit)
         capped_n, capped_w = len(dropped), sum(e[2] for e in dropped)
-        gone = set(dropped)
-        edges = [e for e in edges if e not in gone]
+        capped_kept = max(0, len(edges) - limit)
     wmax = max((w for _, _, w in edges), default=1.0)
 
     notes: list[str] = []
@@ -349,6 +424,16 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             f"transitions and under {100 * min_edge_prob:g}% of their state's exits), "
             f"carrying {100 * pruned_w / total:.1f}% of all transitions"
         )
+    if kept_rare:
+        notes.append(
+            f"{len(kept_rare)} rare edge{'s' if len(kept_rare) != 1 else ''} kept: without "
+            f"{'them' if len(kept_rare) != 1 else 'it'} a drawn state would lose its path from the start or its last edge"
+        )
+    if capped_kept:
+        notes.append(
+            f"{len(edges)} edges drawn, {capped_kept} above the limit of {limit}: each is the last path from the "
+            "start to a drawn state"
+        )
     if capped_n:
         notes.append(
             f"{capped_n} weaker edge{'s' if capped_n != 1 else ''} hidden to keep the diagram readable (at most "
@@ -364,6 +449,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             f"{hidden_n} edge{'s' if hidden_n != 1 else ''} carrying {100 * hidden_w / total:.1f}% of all transitions"
         )
 
+    short = bool(preset and preset.get("short"))  # a slide: counts only as visits, in the table elsewhere
     out = ["digraph tracechain {"]
     cap = []
     if title:
@@ -371,15 +457,31 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     conv = a.conversion_total()
     if conv is not None:
         cap.append(f"conversion from start: {100 * conv:.1f}%")
-    cap.extend(notes)
+    if short:
+        # a slide carries one short line about what was left out; the full notes stay in Diagram.notes
+        gone_share = (pruned_w + capped_w) / total
+        if pruned_n + capped_n:
+            cap.append(f"{pruned_n + capped_n} weak edges not drawn ({100 * gone_share:.1f}% of transitions)")
+        if selection and hidden_states:
+            cap.append(f"{hidden_states} states not drawn ({100 * hidden_w / total:.1f}% of transitions)")
+    elif preset:
+        import textwrap
+
+        cap.extend(part for n in notes for part in textwrap.wrap(n, preset["wrap"]))
+    else:
+        cap.extend(notes)
     out.append(
         "  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t", nojustify="true",
                             label=_label(*cap, limit=200) if cap else None, newrank="true", ranksep=0.55,
                             nodesep=0.5, forcelabels="true")
         + ";"
     )
-    out.append("  node " + _attrs(fontname="Helvetica", fontsize=10, shape="box", style="rounded") + ";")
-    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=9, color=_EDGE, arrowsize=0.7) + ";")
+    fs_node, fs_edge = (preset["node"], preset["edge"]) if preset else (10, 9)
+    out.append("  node " + _attrs(fontname="Helvetica", fontsize=fs_node, shape="box", style="rounded") + ";")
+    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=fs_edge, color=_EDGE, arrowsize=0.7) + ";")
+    if preset:
+        out.append("  graph " + _attrs(fontsize=preset["caption"], ranksep=preset["ranksep"],
+                                       nodesep=preset["nodesep"]) + ";")
 
     present: set[str] = set()
 
@@ -394,12 +496,16 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         tag = (["◎ focus"] if i == focus_idx else [])
         if i in starts_of and starts_of[i][1] >= 0.01:  # under 1% of starts: the edge's width says enough
             w_st, p_st = starts_of[i]
-            tag.append(f"↦ {100 * p_st:.0f}% of starts ({int(w_st):,})" if has_counts else f"↦ {100 * p_st:.0f}% of starts")
+            tag.append(f"↦ {100 * p_st:.0f}% of starts ({int(w_st):,})" if has_counts and not short
+                       else f"↦ {100 * p_st:.0f}% of starts")
         if i in ends_of:
             w_end, p_end = ends_of[i]
-            tag.append(f"⤓ {100 * p_end:.0f}% end here ({int(w_end):,})" if has_counts else f"⤓ {100 * p_end:.0f}% end")
+            tag.append(f"⤓ {100 * p_end:.0f}% end here ({int(w_end):,})" if has_counts and not short
+                       else f"⤓ {100 * p_end:.0f}% end")
         if role == "start":
             present.add("start")
+            if preset:
+                return f"  n{i} " + _attrs(shape="circle", label="start", style="solid", margin=0.02) + ";"
             return f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true", style="solid") + ";"
         if role == "end":
             present.add("end")
@@ -486,14 +592,33 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     for i in drawn:
         if i not in placed:
             out.append(node_line(i))
-    if rank_by_distance == "auto":
-        rank_by_distance = n_drawn > 20
-    level = _bfs_levels(ch.n, ch.start, edges, drawn_set) if rank_by_distance else {}
+    sink_side: list[int] = []
+    if layout == "review":
+        rank_by_distance = True
+        med = first_arrival_median(ch)
+        level = {}
+        for i in drawn:
+            if roles[i] in ("goal", "terminal", "sink"):
+                sink_side.append(i)
+            elif roles[i] == "start":
+                level[i] = 0
+            elif roles[i] != "end":
+                level[i] = med[i] if med[i] > 0 else n_drawn + 1
+        # a rank the chain never reaches in time goes after the others; ranks are renumbered densely
+        dense = {lv: k for k, lv in enumerate(sorted(set(level.values())))}
+        level = {i: dense[lv] for i, lv in level.items()}
+        last = max(level.values(), default=0) + 1
+        for i in sink_side:
+            level[i] = last
+    else:
+        if rank_by_distance == "auto":
+            rank_by_distance = n_drawn > 20
+        level = _bfs_levels(ch.n, ch.start, edges, drawn_set) if rank_by_distance else {}
     for i, j, w in edges:
         p = float(ch.P[i, j])
         width = 1.0 + (7.0 if n_drawn <= 20 else 3.5) * math.sqrt(w / wmax)
         if has_counts:
-            text = f"{100 * p:.0f}% ({int(w):,})" if p < 0.995 else f"{int(w):,}"
+            text = (f"{100 * p:.0f}%" if short else f"{100 * p:.0f}% ({int(w):,})") if p < 0.995 else f"{int(w):,}"
         else:
             text = f"{100 * p:.0f}%"
         kw = dict(penwidth=round(width, 2), label=text)
@@ -506,6 +631,8 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         elif roles[j] == "end":
             kw.update(color=_END_EDGE, style="dashed", fontcolor="#555555")
             present.add("end_edge")
+        if layout == "review" and i in level and j in level and level[j] <= level[i]:
+            kw["constraint"] = "false"  # a step back or within a column does not move the columns
         if kw.get("label") and i in level and level.get(j) == level[i] and i != j:
             # an edge within one column: dot places its label badly; an external label avoids the overlap
             kw["xlabel"] = kw.pop("label")
@@ -513,14 +640,22 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     if rank_by_distance:
         by_level: dict[int, list[int]] = {}
         for i, lv in level.items():
-            if roles[i] != "end":
+            if roles[i] != "end" and i not in sink_side:
                 by_level.setdefault(lv, []).append(i)
         for lv in sorted(by_level):
             members = " ".join(f"n{i};" for i in sorted(by_level[lv]))
             out.append(f"  {{ rank=same; {members} }}")
-        if ch.end is not None and keep[ch.end]:
+        if layout == "review":
+            # invisible edges from column to column fix their order (drawn steps back carry no constraint)
+            firsts = [min(by_level[lv]) for lv in sorted(by_level)] + ([min(sink_side)] if sink_side else [])
+            for u, v in zip(firsts, firsts[1:]):
+                out.append(f"  n{u} -> n{v} [style=invis, weight=0];")
+        if sink_side:
+            legend_here = ""
+            out.append("  { rank=max; " + " ".join(f"n{i};" for i in sorted(sink_side)) + legend_here + " }")
+        elif ch.end is not None and keep[ch.end]:
             out.append(f"  {{ rank=max; n{ch.end}; }}")
-    out.extend(_legend(present))
+    out.extend(_legend(present, fontsize=preset["edge"] if preset else 9))
     out.append("}")
     return Diagram(
         dot="\n".join(out) + "\n", notes=tuple(notes), shown=tuple(drawn), pruned_edges=pruned_n,
@@ -529,19 +664,70 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     )
 
 
+def _reach(edges, start: int) -> set[int]:
+    adj: dict[int, list[int]] = {}
+    for i, j, _ in edges:
+        adj.setdefault(i, []).append(j)
+    seen = {start}
+    q = deque([start])
+    while q:
+        u = q.popleft()
+        for v in adj.get(u, ()):
+            if v not in seen:
+                seen.add(v)
+                q.append(v)
+    return seen
+
+
+def _prune_connected(edges, candidates, start: int | None, limit: int | None = None):
+    """Drop ``candidates`` (weakest first) from ``edges`` while the diagram stays connected.
+
+    An edge goes only if every state reached from ``start`` over the current edges is still
+    reached without it and both of its ends keep at least one edge; with ``limit``, dropping
+    stops once at most ``limit`` edges are left. Returns (edges left, dropped, kept candidates).
+    """
+    current = list(edges)
+    cur_set = set(current)
+    degree: dict[int, int] = {}
+    for i, j, _ in current:
+        degree[i] = degree.get(i, 0) + 1
+        degree[j] = degree.get(j, 0) + 1
+    reached = _reach(current, start) if start is not None else set()
+    dropped, kept = [], []
+    for e in candidates:
+        if limit is not None and len(cur_set) <= limit:
+            break
+        if e not in cur_set:
+            continue
+        i, j, _ = e
+        ok = degree.get(i, 0) > 1 and degree.get(j, 0) > 1 if i != j else degree.get(i, 0) > 2
+        if ok and start is not None and j in reached and j != start:
+            trial = [x for x in current if x in cur_set and x != e]
+            ok = _reach(trial, start) >= reached
+        if ok:
+            cur_set.discard(e)
+            dropped.append(e)
+            degree[i] -= 1
+            degree[j] -= 1
+        else:
+            kept.append(e)
+    return [e for e in current if e in cur_set], dropped, kept
+
+
 def _short(name: str, limit: int = 40) -> str:
     return name if len(name) <= limit else name[: limit - 1] + "…"
 
 
 def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
                min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
-               radius: int = 1) -> str:
+               radius: int = 1, max_edges: int | None = None, **kw) -> str:
     """The diagram as DOT text (see :func:`build_diagram`)."""
     return build_diagram(a, min_edge_share=min_edge_share, max_states=max_states, title=title,
-                         min_edge_prob=min_edge_prob, groups=groups, focus=focus, radius=radius).dot
+                         min_edge_prob=min_edge_prob, groups=groups, focus=focus, radius=radius,
+                         max_edges=max_edges, **kw).dot
 
 
-def _legend(present: set[str]) -> list[str]:
+def _legend(present: set[str], fontsize: int = 9) -> list[str]:
     """A compact legend of what the diagram shows (only the kinds of node and edge that appear).
 
     One node with a Graphviz HTML-like table (our own fixed text only, never a state name):
@@ -568,14 +754,14 @@ def _legend(present: set[str]) -> list[str]:
         rows.append(_line("━━━▶", _GOAL_LINE) + _desc("★ into a goal: solid green"))
     if "end_edge" in present:
         rows.append(_line("╍╍╍▶", _END_EDGE) + _desc("into the end: dashed grey"))
-    return [_legend_node(rows)]
+    return [_legend_node(rows, fontsize)]
 
 
-def _legend_node(rows: list[str]) -> str:
+def _legend_node(rows: list[str], fontsize: int = 9) -> str:
     body = "".join(f"<TR>{r}</TR>" for r in rows)
     table = ('<TABLE BORDER="1" STYLE="rounded" COLOR="#bbbbbb" CELLBORDER="0" CELLSPACING="3" CELLPADDING="2">'
              '<TR><TD COLSPAN="2"><B>legend</B></TD></TR>' + body + "</TABLE>")
-    return f"  lg_legend [shape=plaintext, fontname=\"Helvetica\", fontsize=9, margin=0, label=<{table}>];"
+    return f"  lg_legend [shape=plaintext, fontname=\"Helvetica\", fontsize={fontsize}, margin=0, label=<{table}>];"
 
 
 def _cell(text: str, style: str | None = None, border: int = 1, fill: str | None = None,

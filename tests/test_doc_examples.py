@@ -26,7 +26,10 @@ import shutil
 import subprocess
 import sys
 import textwrap
-import tomllib
+try:
+    import tomllib
+except ImportError:  # Python 3.10: the same parser from PyPI (the test extra)
+    import tomli as tomllib
 from pathlib import Path
 
 import pytest

@@ -31,25 +31,28 @@ REPO = Path(__file__).resolve().parent.parent
 PACKAGE = "tracechain"
 
 #: Lowest first. A module belongs to the layer of the longest name below that matches it
-#: (the module itself or a package holding it); imports may point to the same layer or down.
+#: (the module itself or a package holding it; the package root matches only itself);
+#: imports may point to the same layer or down.
 LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # value types crossing the seams (EventChunk, TransitionCounts), errors and small helpers
     # that import nothing above them; ingest's counts-kind parsers (edge lists) and the SQL
     # engines produce TransitionCounts, so the seam type sits below every stage
     ("base", ("tracechain.errors", "tracechain.events", "tracechain.counts", "tracechain._arrowutil",
-              "tracechain._bytewords", "tracechain._yamlsafe", "tracechain.privacy")),
+              "tracechain._bytewords", "tracechain._yamlsafe", "tracechain._version", "tracechain.privacy")),
     ("ingest", ("tracechain.ingest", "tracechain.progress")),
     ("shape", ("tracechain.shape",)),
     # read + shape + count wired together (in Python, or inside a database engine)
     ("pipeline", ("tracechain.pipeline", "tracechain.engines")),
     ("chain", ("tracechain.chain",)),
-    # the package root re-exports the public API of the layers up to here
-    ("analyze", ("tracechain.analyze", "tracechain")),
+    ("analyze", ("tracechain.analyze",)),
     ("report", ("tracechain.report",)),
     ("check", ("tracechain.check",)),
     ("commands", ("tracechain.analyze.commands", "tracechain.report.commands",
                   "tracechain.check.command", "tracechain.outputs")),
-    ("cli", ("tracechain.cli", "tracechain.pytest_plugin")),
+    # the entry points: the command line, the pytest plugin, and the package root, which
+    # re-exports the public API and wires the layers together (as any import of a
+    # submodule runs it first, nothing below may import it: the version is in _version)
+    ("cli", ("tracechain.cli", "tracechain.pytest_plugin", "tracechain")),
 ]
 
 #: Known upward imports still to be fixed, as (importer, imported). Shrinks with each fix.
@@ -147,13 +150,15 @@ def layer_of(module: str) -> int:
     best, best_len = None, -1
     for i, (_, names) in enumerate(LAYERS):
         for n in names:
-            if (module == n or module.startswith(n + ".")) and len(n) > best_len:
+            # the package root names itself only, so that a new top-level module has no layer
+            if (module == n or (n != PACKAGE and module.startswith(n + "."))) and len(n) > best_len:
                 best, best_len = i, len(n)
     return best
 
 
 def upward_edges(g: nx.DiGraph, layer=layer_of) -> set[tuple[str, str]]:
-    return {(a, b) for a, b in g.edges if layer(b) > layer(a)}
+    # a module without a layer is reported by test_every_module_has_a_layer
+    return {(a, b) for a, b in g.edges if None not in (layer(a), layer(b)) and layer(b) > layer(a)}
 
 
 def figures(g: nx.DiGraph, layer=layer_of) -> dict:

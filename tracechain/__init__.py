@@ -11,8 +11,7 @@ The public API is the same objects the command line uses::
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
-
+from ._version import __version__
 from .chain import Chain  # noqa: E402
 from .counts import TransitionCounts  # noqa: E402
 from .events import EventChunk, ParseReport  # noqa: E402

@@ -17,7 +17,7 @@ import sys
 import warnings
 from collections.abc import Sequence
 
-from . import __version__
+from ._version import __version__
 from .analyze.summary import analyze
 from .chain import Chain
 from .errors import TracechainError, UsageError

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from .. import __version__
+from .._version import __version__
 from ..report.text import safe_text
 from .engine import finite
 from .findings import CheckResult, Finding

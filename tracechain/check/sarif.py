@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import quote
 
-from .. import __version__
+from .._version import __version__
 from .engine import finite
 from .findings import CheckResult, Finding
 

@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .._version import __version__
 from ..chain import Chain
 from ..counts import state_label
 from ..errors import ConfigError

@@ -36,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .._version import __version__
 from ..analyze.summary import Analysis
 from ..privacy import DATA_PROTECTION_CAUTION, Pseudonymizer
 

@@ -13,7 +13,7 @@ from datetime import datetime, timezone
 from importlib import resources
 from typing import Any
 
-from .. import __version__
+from .._version import __version__
 from ..analyze.summary import Analysis
 
 __all__ = ["SCHEMA_VERSION", "analysis_document", "dumps", "load_schema"]

@@ -26,6 +26,25 @@ from .analyze.absorbing import absorbing_analysis  # noqa: E402
 from .analyze.classes import communicating_classes  # noqa: E402
 from .analyze.dead_ends import dead_ends, exit_states, goal_unreachable  # noqa: E402
 
+
+# Notebooks: Chain and Analysis are drawn by the report layer (diagram and summary, names
+# escaped, no script), imported on the first display only.
+def _notebook_svg(obj):
+    from .report.html import notebook_svg
+
+    return notebook_svg(obj)
+
+
+def _notebook_bundle(obj, include=None, exclude=None):
+    from .report.html import notebook_bundle
+
+    return notebook_bundle(obj, include, exclude)
+
+
+from . import display as _display  # noqa: E402
+
+_display.register(_notebook_svg, _notebook_bundle)
+
 __all__ = [
     "__version__",
     "Chain",

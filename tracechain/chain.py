@@ -250,19 +250,19 @@ class Chain:
         ng = len(self.goals)
         return f"Chain({self.n} states, {self.P.nnz} edges, {ng} goal{'s' if ng != 1 else ''})"
 
-    # -- notebook display (IPython / Jupyter call these; names are escaped, no script) -------
+    # -- notebook display (IPython / Jupyter call these; drawn by tracechain.display) -------
     def _repr_svg_(self) -> str | None:
-        from .report.html import notebook_svg
+        from . import display
 
-        return notebook_svg(self)
+        return display.svg(self)
 
     def _repr_html_(self) -> str | None:
         return self._repr_mimebundle_(include={"text/html"}).get("text/html")
 
     def _repr_mimebundle_(self, include=None, exclude=None) -> dict:
-        from .report.html import notebook_bundle
+        from . import display
 
-        return notebook_bundle(self, include, exclude)
+        return display.bundle(self, include, exclude)
 
 
 def _free_label(base: str, taken: set) -> str:

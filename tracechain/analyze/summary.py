@@ -140,19 +140,19 @@ class Analysis:
             ))
         return rows
 
-    # -- notebook display (IPython / Jupyter call these; names are escaped, no script) -------
+    # -- notebook display (IPython / Jupyter call these; drawn by tracechain.display) -------
     def _repr_svg_(self) -> str | None:
-        from ..report.html import notebook_svg
+        from .. import display
 
-        return notebook_svg(self)
+        return display.svg(self)
 
     def _repr_html_(self) -> str | None:
         return self._repr_mimebundle_(include={"text/html"}).get("text/html")
 
     def _repr_mimebundle_(self, include=None, exclude=None) -> dict:
-        from ..report.html import notebook_bundle
+        from .. import display
 
-        return notebook_bundle(self, include, exclude)
+        return display.bundle(self, include, exclude)
 
 
 def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, settings: dict | None = None) -> Analysis:

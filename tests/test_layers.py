@@ -58,12 +58,19 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
 
 #: Known upward imports still to be fixed, as (importer, imported). Shrinks with each fix.
 ALLOWED_UPWARD: set[tuple[str, str]] = {
-    ("tracechain.analyze.extended", "tracechain.report.text"),
     ("tracechain.analyze.simulate", "tracechain.report.writer"),
     ("tracechain.analyze.commands", "tracechain.cli"),
     ("tracechain.report.commands", "tracechain.cli"),
     ("tracechain.check.command", "tracechain.cli"),
     ("tracechain.check.config", "tracechain.cli"),
+}
+
+#: Old names kept working where they moved up a layer: (module, new home), imported only in the
+#: module's ``__getattr__`` on first use of the old name. For the code other branches wrote before
+#: the move; to be removed once nothing uses the old names (follow-up).
+COMPAT_FORWARDS: set[tuple[str, str]] = {
+    # extended_lines: tracechain.analyze.extended -> tracechain.report.text
+    ("tracechain.analyze.extended", "tracechain.report.text"),
 }
 
 #: Known imports inside one layer that close a cycle, still to be fixed. Shrinks too.
@@ -125,13 +132,22 @@ def _owner(name: str, mods) -> str | None:
     return name or None
 
 
+def _forwarding_lines(tree: ast.Module) -> set[int]:
+    """Lines of the imports inside a module-level ``__getattr__`` (PEP 562): an old name
+    forwarded, on first use, to where it moved."""
+    return {n.lineno for f in tree.body if isinstance(f, ast.FunctionDef) and f.name == "__getattr__"
+            for n in ast.walk(f) if isinstance(n, (ast.Import, ast.ImportFrom))}
+
+
 def import_graph(root: Path = REPO, package: str = PACKAGE) -> nx.DiGraph:
-    """One node per module; an edge a -> b (attribute ``line``) where a imports from b."""
+    """One node per module; an edge a -> b where a imports from b, with the attributes ``line``
+    (the first import) and ``forward`` (every import of b is in a module ``__getattr__``)."""
     mods = package_modules(root, package)
     g = nx.DiGraph()
     g.add_nodes_from(mods)
     for mod, (path, is_pkg) in mods.items():
         tree = ast.parse(path.read_text(encoding="utf-8"), filename=str(path))
+        forwarding = _forwarding_lines(tree)
         for level, name, names, line in _import_statements(tree) + _dynamic_imports(tree):
             target = _absolute(mod, is_pkg, level, name)
             if not (target == package or target.startswith(package + ".")):
@@ -140,8 +156,12 @@ def import_graph(root: Path = REPO, package: str = PACKAGE) -> nx.DiGraph:
             subs = [f"{target}.{n}" for n in names if f"{target}.{n}" in mods]
             others = not names or len(subs) < len(names)
             for dest in subs + ([_owner(target, mods)] if others else []):
-                if dest and dest != mod and not g.has_edge(mod, dest):
-                    g.add_edge(mod, dest, line=line)
+                if not dest or dest == mod:
+                    continue
+                if g.has_edge(mod, dest):
+                    g.edges[mod, dest]["forward"] &= line in forwarding
+                else:
+                    g.add_edge(mod, dest, line=line, forward=line in forwarding)
     return g
 
 
@@ -161,11 +181,14 @@ def upward_edges(g: nx.DiGraph, layer=layer_of) -> set[tuple[str, str]]:
 
 
 def figures(g: nx.DiGraph, layer=layer_of) -> dict:
-    """Modules, arrows, arrows back up a layer, and circles (strongly connected groups of more
+    """Modules, arrows, arrows back up a layer (and how many of them are old names forwarded in a
+    module ``__getattr__``), and circles (strongly connected groups of more
     than one module) with the number of simple cycles through them."""
     circles = [c for c in nx.strongly_connected_components(g) if len(c) > 1]
     return {"modules": g.number_of_nodes(), "arrows": g.number_of_edges(),
-            "upward": len(upward_edges(g, layer)), "circles": len(circles),
+            "upward": len(upward_edges(g, layer)),
+            "upward_forwards_only": sum(1 for e in upward_edges(g, layer) if g.edges[e].get("forward")),
+            "circles": len(circles),
             "simple_cycles": sum(1 for _ in nx.simple_cycles(g))}
 
 
@@ -180,8 +203,14 @@ def test_every_module_has_a_layer(graph):
     assert not missing, f"add these modules to LAYERS in {__file__}: {missing}"
 
 
+def test_compatibility_forwards_only_in_module_getattr(graph):
+    for a, b in sorted(COMPAT_FORWARDS):
+        assert graph.has_edge(a, b), f"forward gone, remove from COMPAT_FORWARDS: {(a, b)}"
+        assert graph.edges[a, b]["forward"], f"{a} imports {b} outside its __getattr__"
+
+
 def test_no_import_points_up_a_layer(graph):
-    up = upward_edges(graph)
+    up = upward_edges(graph) - COMPAT_FORWARDS
     new = sorted(up - ALLOWED_UPWARD)
     names = [n for n, _ in LAYERS]
     assert not new, "imports pointing up a layer:\n" + "\n".join(
@@ -192,7 +221,7 @@ def test_no_import_points_up_a_layer(graph):
 
 
 def test_no_import_cycle(graph):
-    allowed = ALLOWED_UPWARD | ALLOWED_CYCLE
+    allowed = ALLOWED_UPWARD | ALLOWED_CYCLE | COMPAT_FORWARDS
     # the allowed imports are what closes today's cycles: without them, none may remain
     rest = graph.copy()
     rest.remove_edges_from(allowed)
@@ -251,7 +280,7 @@ def test_reader_and_checks_on_a_toy_package(tmp_path):
     # expected edges written by hand from the import statements below
     _write(tmp_path, {
         "toy/__init__.py": "from .low import x\n",
-        "toy/low.py": "import os\nx = 1\n",
+        "toy/low.py": "import os\nx = 1\ndef __getattr__(name):\n    from .high import m\n    return m\n",
         "toy/mid/__init__.py": "",
         "toy/mid/a.py": "from ..low import x\nfrom . import b\n",
         "toy/mid/b.py": "def f():\n    from toy.high import g\n",  # function-level, upward
@@ -260,10 +289,13 @@ def test_reader_and_checks_on_a_toy_package(tmp_path):
     g = import_graph(tmp_path, "toy")
     assert set(g.edges) == {
         ("toy", "toy.low"), ("toy.mid.a", "toy.low"), ("toy.mid.a", "toy.mid.b"),
-        ("toy.mid.b", "toy.high"), ("toy.high", "toy.mid.a"), ("toy.high", "toy.low"),
+        ("toy.mid.b", "toy.high"), ("toy.high", "toy.mid.a"), ("toy.high", "toy.low"), ("toy.low", "toy.high"),
     }
+    assert [e for e in g.edges if g.edges[e]["forward"]] == [("toy.low", "toy.high")]
     rank = {"toy": 0, "toy.low": 0, "toy.mid": 1, "toy.mid.a": 1, "toy.mid.b": 1, "toy.high": 2}
-    assert upward_edges(g, rank.get) == {("toy.mid.b", "toy.high")}
+    assert upward_edges(g, rank.get) == {("toy.mid.b", "toy.high"), ("toy.low", "toy.high")}
+    g.remove_edge("toy.low", "toy.high")
     assert sorted(nx.find_cycle(g)) == sorted([("toy.mid.a", "toy.mid.b"), ("toy.mid.b", "toy.high"),
                                                ("toy.high", "toy.mid.a")])
-    assert figures(g, rank.get) == {"modules": 6, "arrows": 6, "upward": 1, "circles": 1, "simple_cycles": 1}
+    assert figures(g, rank.get) == {"modules": 6, "arrows": 6, "upward": 1, "upward_forwards_only": 0,
+                                 "circles": 1, "simple_cycles": 1}

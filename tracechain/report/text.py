@@ -9,10 +9,14 @@ from __future__ import annotations
 
 import textwrap
 import unicodedata
+from typing import TYPE_CHECKING
 
 from ..analyze.summary import Analysis
 
-__all__ = ["render_text", "safe_text", "CAUTION"]
+if TYPE_CHECKING:
+    from ..analyze.extended import ExtendedAnalysis
+
+__all__ = ["render_text", "safe_text", "CAUTION", "extended_lines"]
 
 CAUTION = (
     "Read with care: these figures describe the sessions in these logs under a Markov model "
@@ -171,11 +175,84 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines.append(f"  ... {len(shown) - max_states} more states in the JSON output (--json)")
     lines.append("")
     if extended is not None:
-        from ..analyze.extended import extended_lines
-
         lines.extend(extended_lines(extended))
         lines.append("")
     for n in a.notes:
         lines.append(f"note: {n}")
     lines.extend(textwrap.wrap(CAUTION, 100))
     return "\n".join(lines) + "\n"
+
+
+# -- the extended analyses (moved here from tracechain/analyze/extended.py: the analyses
+# return results, the report layer formats them) ------------------------------------------
+def _fmt(x, pct: bool = False, digits: int = 2) -> str:
+    if x is None:
+        return "n/a"
+    return f"{100 * x:.1f}%" if pct else f"{x:.{digits}f}"
+
+
+def _duration(s: float | None) -> str:
+    if s is None:
+        return "n/a"
+    if s < 120:
+        return f"{s:.1f} s"
+    if s < 7200:
+        return f"{s / 60:.1f} min"
+    return f"{s / 3600:.1f} h"
+
+
+def extended_lines(ext: ExtendedAnalysis, max_rows: int = 10) -> list[str]:
+    """Terminal lines for the extended analysis (state names escaped)."""
+    from ..analyze.uncertainty import METHOD_NAMES
+
+    out: list[str] = []
+    pct = int(round(100 * ext.level))
+    if ext.conversion_interval is not None or ext.steps_interval is not None:
+        how = METHOD_NAMES[ext.interval_method]
+        unit = "resamples" if ext.interval_method == "bootstrap" else "draws"
+        out.append(f"Intervals ({pct}%, {how}, {ext.draws} {unit}, seed {ext.seed})")
+        for name, iv, is_p in (("conversion from the start", ext.conversion_interval, True),
+                               ("expected steps from the start", ext.steps_interval, False)):
+            if iv is not None:
+                out.append(f"  {name}: {_fmt(iv.estimate, is_p)} [{_fmt(iv.low, is_p)}, {_fmt(iv.high, is_p)}] "
+                           f"({pct}% {how})")
+        out.append("")
+    if ext.time_from_start is not None or ext.time_to_goal:
+        out.append("Time")
+        out.append(f"  expected time from the first to the last event: {_duration(ext.time_from_start)}")
+        for g, t in ext.time_to_goal.items():
+            out.append(f"  expected time to {safe_text(g)} (sessions that reach it): {_duration(t)}")
+        slow = sorted((d for d in ext.dwell if d.mean_s is not None), key=lambda d: -d.mean_s)[:max_rows]
+        if slow:
+            out.append("  longest mean dwell: " + ", ".join(f"{safe_text(d.state)} {_duration(d.mean_s)}" for d in slow[:5]))
+        out.append("")
+    if ext.removal:
+        out.append("Removal effects (share of conversion each state carries)")
+        together = set(ext.on_every_path) if len(ext.on_every_path) > 1 else set()
+        rows = [r for r in ext.removal[:max_rows] if r.state not in together]
+        if together:
+            joint = sum(r.share or 0.0 for r in ext.removal if r.state in together)
+            out.append(f"  on every converting path, together (removing any one stops all conversion; "
+                       f"their equal shares are not a worth of each step): effect 100.0%  joint share "
+                       f"{_fmt(joint, True)}")
+            out.append("    " + ", ".join(safe_text(s_) for s_ in ext.on_every_path))
+        if rows:
+            w = max(len(safe_text(r.state)) for r in rows)
+            for r in rows:
+                out.append(f"  {safe_text(r.state).ljust(w)}  effect {_fmt(r.effect, True):>6}  share "
+                           f"{_fmt(r.share, True):>6}")
+        out.append("")
+    if ext.likely_paths:
+        out.append("Most likely path to each goal")
+        for p in ext.likely_paths:
+            route = " → ".join(safe_text(s, 30) for s in p.states) if p.states else "(unreachable)"
+            out.append(f"  {safe_text(p.goal)}: {route} (p = {_fmt(p.probability, digits=4)})")
+        out.append("")
+    if ext.stationary is not None:
+        out.append("Long run (no absorbing state)")
+        out.append("  " + ", ".join(f"{safe_text(s.state)} {_fmt(s.probability, True)}" for s in ext.stationary[:max_rows]))
+        out.append(f"  entropy rate: {_fmt(ext.entropy_rate_bits, digits=3)} bits per step")
+        out.append("")
+    for n in ext.notes:
+        out.append(f"note: {n}")
+    return out

@@ -34,7 +34,7 @@ import scipy.sparse as sp
 
 from ..chain import Chain
 from ..errors import AnalysisError
-from ..report.writer import write_output
+from ..files import write_output
 from .timing import _aligned, edge_mean_gaps
 
 __all__ = ["SimulatedSessions", "simulate", "to_jsonl", "write_jsonl"]

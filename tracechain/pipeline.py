@@ -30,7 +30,7 @@ from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
 
-__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks"]
+__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed"]
 
 
 @dataclass(frozen=True)
@@ -191,10 +191,7 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
         counts, report = one_pass(sort=False)
     except OutOfOrder as err:
         counts, report = one_pass(sort=True)
-        report.notes.append(
-            f"events are not in time order within sessions (first at {err.source}:{err.line}); "
-            "each session was sorted by time (ties keep file order) before counting"
-        )
+        report.notes.append(_out_of_order_note(err))
     if gap_note:
         report.notes.append(gap_note)
     dropped = counts.meta.get("events_dropped_by_mapping", 0)
@@ -205,3 +202,69 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
         detail = f"; {report.lines_skipped} lines skipped" if report.lines_skipped else ""
         raise EmptyInputError(f"no usable events in {where}{detail}", )
     return counts, report
+
+
+def _take(chunk: EventChunk, mask) -> EventChunk:
+    import numpy as np
+    import pyarrow as pa
+
+    mask = np.asarray(mask, dtype=bool)
+    m = pa.array(mask)
+    return EventChunk(chunk.source, chunk.session.filter(m), chunk.event.filter(m), chunk.time[mask], chunk.line[mask])
+
+
+def count_routed(
+    paths: Iterable[str] | Iterable[Source],
+    route,
+    *,
+    sides: int = 2,
+    format: str | None = None,
+    fields: FieldSpec | None = None,
+    shape: ShapeOptions | None = None,
+    strict: bool = False,
+    stdin: BinaryIO | None = None,
+) -> tuple[tuple[TransitionCounts, ...], ParseReport]:
+    """Read the events once and count them on several sides: ``route(chunk)`` returns one boolean
+    mask per side (the events of the chunk that side counts; they may overlap or leave events
+    out), or None to skip the chunk. If a session turns out not to be in time order, the sources
+    are read once more in sorting mode, as :func:`count_sources` does, and the report notes it.
+
+    Returns the counts of each side (empty counts for a side that got no event) and the report.
+    Pre-aggregated sources (edge lists) are refused: they cannot be split.
+    """
+    shape = shape or ShapeOptions()
+    options = ReadOptions(fields=fields or FieldSpec(), strict=strict)
+    sources = _resolve(paths, stdin)
+    plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
+    for src, parser in plan:
+        if parser.kind != "events":
+            raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}); splitting needs events")
+
+    def one_pass(sort: bool) -> tuple[tuple[TransitionCounts, ...], ParseReport]:
+        report = ParseReport()
+        counters = [shape.counter(sort=sort) for _ in range(sides)]
+        used = [False] * sides
+        for src, parser in plan:
+            report.sources.append(src.name)
+            for chunk in parser.read(src, options, report):
+                masks = route(chunk)
+                if masks is None:
+                    continue
+                for k, mask in enumerate(masks):
+                    if mask.any():
+                        counters[k].add(_take(chunk, mask))
+                        used[k] = True
+        return tuple(c.finish() if u else TransitionCounts.empty() for c, u in zip(counters, used)), report
+
+    try:
+        return one_pass(False)
+    except OutOfOrder as err:
+        counts, report = one_pass(True)
+        report.notes.append(_out_of_order_note(err))
+        return counts, report
+
+
+def _out_of_order_note(err: OutOfOrder) -> str:
+    """The report's note when the sources had to be read again in sorting mode."""
+    return (f"events are not in time order within sessions (first at {err.source}:{err.line}); "
+            "each session was sorted by time (ties keep file order) before counting")

@@ -568,62 +568,6 @@ def parse_time(text: str) -> float:
     return t.timestamp()
 
 
-def _sub(chunk, mask: np.ndarray):
-    from ..events import EventChunk
-    import pyarrow as pa
-
-    m = pa.array(mask)
-    return EventChunk(chunk.source, chunk.session.filter(m), chunk.event.filter(m), chunk.time[mask], chunk.line[mask])
-
-
-def _two_counters(paths, route, *, format=None, fields=None, shape=None, strict=False, stdin=None):
-    """Read the events once, send each event to side A or B (``route(chunk) -> bool mask of A``)
-    and count both sides; re-read in sorting mode when a session is out of time order."""
-    from ..events import ParseReport
-    from ..ingest.base import ReadOptions
-    from ..ingest.fields import FieldSpec
-    from ..pipeline import ShapeOptions, _resolve
-    from ..ingest.registry import detect_parser, get_parser
-    from ..shape.sessions import OutOfOrder
-
-    shape = shape or ShapeOptions()
-    options = ReadOptions(fields=fields or FieldSpec(), strict=strict)
-    sources = _resolve(paths, stdin)
-    plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
-    for src, parser in plan:
-        if parser.kind != "events":
-            raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}); splitting needs events")
-
-    def one_pass(sort: bool):
-        report = ParseReport()
-        ca, cb = shape.counter(sort=sort), shape.counter(sort=sort)
-        state = {"a": 0, "b": 0}
-        for src, parser in plan:
-            report.sources.append(src.name)
-            for chunk in parser.read(src, options, report):
-                mask = route(chunk)
-                if mask is None:
-                    continue
-                in_a, in_b = mask
-                if in_a.any():
-                    ca.add(_sub(chunk, in_a))
-                    state["a"] += 1
-                if in_b.any():
-                    cb.add(_sub(chunk, in_b))
-                    state["b"] += 1
-        empty = TransitionCounts.empty()
-        return (ca.finish() if state["a"] else empty), (cb.finish() if state["b"] else empty), report
-
-    try:
-        return one_pass(False)
-    except OutOfOrder as err:
-        a, b, report = one_pass(True)
-        report.notes.append(
-            f"events are not in time order within sessions (first at {err.source}:{err.line}); "
-            "each session was sorted by time (ties keep file order) before counting")
-        return a, b, report
-
-
 def count_split_at(paths, at: float, **kw):
     """Counts before and after a time: each event goes to A if its time is before ``at`` (epoch
     seconds), else to B. A session with events on both sides is cut at ``at``; how many session
@@ -632,6 +576,8 @@ def count_split_at(paths, at: float, **kw):
     Returns ``(counts_a, counts_b, report)``.
     """
     import pyarrow.compute as pc
+
+    from ..pipeline import count_routed
 
     keys_a: set = set()
     keys_b: set = set()
@@ -649,7 +595,7 @@ def count_split_at(paths, at: float, **kw):
             keys_b.update(pc.unique(chunk.session.filter(in_b)).to_pylist())
         return in_a, in_b
 
-    a, b, report = _two_counters(paths, route, **kw)
+    (a, b), report = count_routed(paths, route, **kw)
     if no_time[0]:
         if not keys_a and not keys_b:
             raise UsageError("--split-at needs times, and no event has one (name the time field with --time-field)")
@@ -678,7 +624,7 @@ def count_split_by_field(paths, field_name: str, values: tuple[str, str], **kw):
 
     from ..events import ParseReport
     from ..ingest.fields import FieldSpec
-    from ..pipeline import read_events
+    from ..pipeline import count_routed, read_events
 
     if len(values) != 2 or values[0] == values[1]:
         raise UsageError("--split-values needs two different values, e.g. --split-values mobile,desktop")
@@ -710,7 +656,7 @@ def count_split_by_field(paths, field_name: str, values: tuple[str, str], **kw):
         in_b = np.asarray(pc.is_in(chunk.session, value_set=keys_b).to_numpy(zero_copy_only=False), dtype=bool)
         return in_a, in_b
 
-    a, b, report = _two_counters(paths, route, **kw)
+    (a, b), report = count_routed(paths, route, **kw)
     report.notes.append(
         f"split by the field {field_name}: {len(keys_a):,} session key(s) with {values[0]!r} (A), {len(keys_b):,} with "
         f"{values[1]!r} (B); left out: {len(mixed):,} key(s) with more than one value, {other:,} with another value"

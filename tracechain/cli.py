@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import argparse
 import math
-import re
 import sys
 import warnings
 from collections.abc import Sequence
@@ -20,6 +19,7 @@ from collections.abc import Sequence
 from ._version import __version__
 from .analyze.summary import analyze
 from .chain import Chain
+from .durations import parse_duration, parse_time  # noqa: F401  (parse_duration: its old home)
 from .errors import TracechainError, UsageError
 from .ingest.fields import FieldSpec
 from .ingest.registry import available_parsers
@@ -40,29 +40,11 @@ EXIT_FINDINGS = 1
 EXIT_ERROR = 2
 EXIT_INTERRUPTED = 130
 
-_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|m|min|h|d)?\s*$", re.IGNORECASE)
-_UNIT_S = {None: 1, "s": 1, "sec": 1, "m": 60, "min": 60, "h": 3600, "d": 86400}
-
-
-def parse_duration(text: str) -> float:
-    """``90``, ``90s``, ``30m``, ``1.5h``, ``2d`` -> seconds."""
-    m = _DURATION.match(text)
-    if not m:
-        raise argparse.ArgumentTypeError(f"not a duration: {text!r} (use e.g. 90s, 30m, 1h, 2d)")
-    return float(m.group(1)) * _UNIT_S[m.group(2).lower() if m.group(2) else None]
-
-
 def _timestamp(text: str) -> float:
-    from datetime import datetime, timezone
-
     try:
-        t = text.strip()
-        dt = datetime.fromisoformat(t[:-1] + "+00:00" if t.endswith(("Z", "z")) else t)
-    except ValueError:
+        return parse_time(text)
+    except UsageError:
         raise argparse.ArgumentTypeError(f"not an ISO 8601 time: {text!r}") from None
-    if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
-    return dt.timestamp()
 
 
 def _positive_int(text: str) -> int:

@@ -65,6 +65,7 @@ import scipy.sparse as sp
 from scipy import stats
 
 from ..counts import END, START, TransitionCounts, state_label
+from ..durations import parse_time  # noqa: F401  (moved to tracechain.durations; the name stays here)
 from ..errors import AnalysisError, UsageError
 
 __all__ = [
@@ -553,21 +554,6 @@ def compare_counts(
 
 
 # -- splitting one input --------------------------------------------------------------------
-def parse_time(text: str) -> float:
-    """An ISO 8601 time (``2026-03-05``, ``2026-03-05T12:00``, ``…Z`` or with an offset) as epoch
-    seconds; without an offset it is UTC, as the parsers read times."""
-    s = text.strip()
-    if s.endswith(("Z", "z")):
-        s = s[:-1] + "+00:00"
-    try:
-        t = datetime.fromisoformat(s)
-    except ValueError:
-        raise UsageError(f"not an ISO 8601 time: {text!r} (use e.g. 2026-03-05T00:00:00Z)") from None
-    if t.tzinfo is None:
-        t = t.replace(tzinfo=timezone.utc)
-    return t.timestamp()
-
-
 def count_split_at(paths, at: float, **kw):
     """Counts before and after a time: each event goes to A if its time is before ``at`` (epoch
     seconds), else to B. A session with events on both sides is cut at ``at``; how many session

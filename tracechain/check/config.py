@@ -152,7 +152,7 @@ def _duration(value: Any, raw: str | None) -> float | None:
         return float(value) if value > 0 and math.isfinite(value) else None
     import argparse
 
-    from ..cli import parse_duration  # lazily: the command line imports this package
+    from ..durations import parse_duration
 
     try:
         v = parse_duration(str(raw if raw is not None else value))

@@ -35,36 +35,17 @@ from .shape.mapping import load_mapping
 
 __all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
 
-EXIT_OK = 0
-EXIT_FINDINGS = 1
-EXIT_ERROR = 2
-EXIT_INTERRUPTED = 130
+# moved to tracechain/options.py (shared with the command modules); the names stay here
+from .options import (  # noqa: E402, F401
+    _OUTPUT_OPTIONS, EXIT_ERROR, EXIT_FINDINGS, EXIT_INTERRUPTED, EXIT_OK, _positive_int, _share, count_from_args,
+    native_only, progress_from_args, shape_from_args,
+)
 
 def _timestamp(text: str) -> float:
     try:
         return parse_time(text)
     except UsageError:
         raise argparse.ArgumentTypeError(f"not an ISO 8601 time: {text!r}") from None
-
-
-def _positive_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError("must be at least 1")
-    return v
-
-
-def _share(text: str) -> float:
-    try:
-        v = float(text.rstrip("%")) / (100.0 if text.endswith("%") else 1.0)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a share: {text!r} (use e.g. 0.01 or 1%)") from None
-    if not 0.0 <= v < 1.0:
-        raise argparse.ArgumentTypeError("a share must be at least 0 and below 1")
-    return v
 
 
 class _Parser(argparse.ArgumentParser):
@@ -190,32 +171,6 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, list[str], list[str]]:
-    mapping = load_mapping(args.mapping) if args.mapping else None
-    goals = list(args.goal) or (list(mapping.goals) if mapping else [])
-    terminal = list(mapping.terminal) if mapping else []
-    if args.order < 1:
-        raise UsageError("--order must be at least 1")
-    if not math.isfinite(args.smoothing) or args.smoothing < 0:
-        raise UsageError("--smoothing must be a finite non-negative number")
-    terminal += [t for t in (getattr(args, "terminal", None) or []) if t not in terminal]
-    cases = None
-    stale_after = getattr(args, "stale_after", None)
-    as_of = getattr(args, "as_of", None)
-    if terminal:
-        cases = CasePolicy(frozenset(terminal), stale_after, as_of)
-    elif stale_after is not None or as_of is not None:
-        raise UsageError("--stale-after and --as-of need terminal states (--terminal STATE or 'terminal:' in the "
-                         "mapping file)")
-    shape = ShapeOptions(
-        mapping=mapping, goals=tuple(goals), truncate_at_goal=not args.keep_after_goal,
-        collapse_repeats=args.collapse, gap=args.gap, order=args.order, cases=cases,
-    )
-    fields = FieldSpec(session=args.session_field, time=args.time_field, event=args.event_field,
-                       time_unit=args.time_unit, time_format=args.time_format)
-    return shape, fields, goals, terminal
-
-
 _EXTRA_OPTIONS = {
     # option attribute -> (extra key, conversion)
     "status": ("status", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
@@ -249,42 +204,6 @@ def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict
         fmt = "regex"
         extra.update(mapping.parser)
     return fmt, extra
-
-
-#: options naming output files: no progress bar when one of them is standard error
-_OUTPUT_OPTIONS = ("json", "dot", "svg", "png", "pdf", "html", "markdown", "csv", "output")
-
-
-def progress_from_args(args: argparse.Namespace) -> bool:
-    """The ``progress`` argument of :func:`~tracechain.pipeline.count_sources` for a command:
-    as --progress/--no-progress, TRACECHAIN_PROGRESS, --quiet and the outputs say (see
-    :func:`tracechain.progress.wanted`); False for a namespace without the option."""
-    from .progress import wanted
-
-    if not hasattr(args, "progress"):
-        return False
-    outputs = [v for v in (getattr(args, k, None) for k in _OUTPUT_OPTIONS) if isinstance(v, str)]
-    return wanted(args.progress, quiet=bool(getattr(args, "quiet", False)), outputs=outputs)
-
-
-def count_from_args(args: argparse.Namespace, shape: ShapeOptions, fields: FieldSpec, fmt, extra,
-                    paths=None, finish_session=None, finished_names=None):
-    """Counts as the command line asks, with the engine it names (see :mod:`tracechain.engines`)."""
-    from .engines import count_data
-
-    return count_data(args.paths if paths is None else paths, engine=getattr(args, "engine", "auto") or "auto",
-                      format=fmt, fields=fields, shape=shape, strict=args.strict, extra=extra,
-                      table=getattr(args, "table", None), query=getattr(args, "query", None),
-                      order_by=getattr(args, "order_by", None), finish_session=finish_session,
-                      finished_names=finished_names, progress=progress_from_args(args))
-
-
-def native_only(args: argparse.Namespace, what: str) -> None:
-    """Refuse the engine options for a command that reads event sequences itself."""
-    if getattr(args, "engine", "auto") not in (None, "auto", "native") or getattr(args, "table", None) \
-            or getattr(args, "query", None) or getattr(args, "order_by", None):
-        raise UsageError(f"{what} reads the sessions themselves, which only the native engine gives; drop "
-                         "--engine, --table, --query and --order-by")
 
 
 def build_chain(args: argparse.Namespace):

@@ -80,7 +80,7 @@ def interval_method(args) -> str:
 
 def sessions_from_args(args, what: str):
     """The input's shaped sessions in memory (native engine only)."""
-    from ..cli import native_only, progress_from_args, shape_from_args
+    from ..options import native_only, progress_from_args, shape_from_args
     from ..ingest.base import ReadOptions
     from ..pipeline import read_events
     from .order import session_sequences
@@ -164,7 +164,7 @@ def register(subparsers) -> None:
 
 # -- handlers -----------------------------------------------------------------------------
 def cmd_order(args: argparse.Namespace) -> int:
-    from ..cli import native_only, progress_from_args, shape_from_args
+    from ..options import native_only, progress_from_args, shape_from_args
     from ..ingest.base import ReadOptions
     from ..pipeline import read_events
     from ..report.text import safe_text

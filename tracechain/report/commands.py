@@ -38,7 +38,7 @@ def _privacy_options(p: argparse.ArgumentParser) -> None:
 
 
 def _diagram_options(p: argparse.ArgumentParser) -> None:
-    from ..cli import _positive_int, _share
+    from ..options import _positive_int, _share
 
     d = p.add_argument_group("diagram")
     d.add_argument("--min-edge-share", type=_share, default=0.005, metavar="SHARE",
@@ -150,7 +150,7 @@ def _diagram(result, args, groups):
 def _order_test(args):
     """The order table of the input's sessions (orders 0-2), or None with a warning."""
     from ..analyze.order import order_table, session_sequences
-    from ..cli import progress_from_args, shape_from_args
+    from ..options import progress_from_args, shape_from_args
     from ..errors import TracechainError
     from ..ingest.base import ReadOptions
     from ..pipeline import read_events
@@ -262,7 +262,8 @@ def _render_diagram(diagram, fmt: str) -> bytes:
 
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
-    from ..cli import EXIT_OK, build_chain
+    from ..cli import build_chain
+    from ..options import EXIT_OK
     from ..errors import UsageError
     from ..shape.mapping import load_mapping
     from .csv_report import render_csv
@@ -346,12 +347,12 @@ def _counts_for_compare(args):
     import os
 
     from ..analyze.compare import count_split_at, count_split_by_field, parse_time
-    from ..cli import shape_from_args
+    from ..options import shape_from_args
     from ..errors import UsageError
     shape, fields, goals, terminal = shape_from_args(args)
     split = args.split_at is not None or args.split_field is not None
     if split:
-        from ..cli import native_only
+        from ..options import native_only
 
         native_only(args, "compare --split-at/--split-field")
     if args.split_at is not None and args.split_field is not None:
@@ -363,7 +364,7 @@ def _counts_for_compare(args):
         if len(args.paths) != 2:
             raise UsageError(f"compare needs two inputs (A B), or one with --split-at or --split-field; "
                              f"got {len(args.paths)}")
-        from ..cli import count_from_args
+        from ..options import count_from_args
 
         a, ra = count_from_args(args, shape, fields, args.format, {}, paths=[args.paths[0]])
         b, rb = count_from_args(args, shape, fields, args.format, {}, paths=[args.paths[1]])
@@ -442,7 +443,7 @@ def changed_neighbourhood(cmp) -> set[int] | None:
 
 def cmd_compare(args: argparse.Namespace) -> int:
     from ..analyze.compare import compare_counts
-    from ..cli import EXIT_OK
+    from ..options import EXIT_OK
     from ..errors import RenderError, UsageError
     from .dot import render_diff_dot, render_image
     from .html import build_compare_report, render_html

@@ -4,7 +4,7 @@ parsed options into shaping options, counts and a progress setting.
 
 Below the command modules and the command line, so that they import it and it imports none of
 them (``tracechain.cli`` imported the command modules, which imported it back). Moved here from
-``tracechain/cli.py``, which keeps every name.
+``tracechain/cli.py`` (and the interval options from ``analyze/commands.py``), which keep every name.
 """
 
 from __future__ import annotations
@@ -19,7 +19,8 @@ from .shape.cases import CasePolicy
 from .shape.mapping import load_mapping
 
 __all__ = ["EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR", "EXIT_INTERRUPTED", "shape_from_args", "progress_from_args",
-           "count_from_args", "native_only"]
+           "count_from_args", "native_only", "add_level_option", "add_interval_options", "interval_method",
+           "sessions_from_args"]
 
 EXIT_OK = 0
 EXIT_FINDINGS = 1
@@ -107,3 +108,46 @@ def native_only(args: argparse.Namespace, what: str) -> None:
             or getattr(args, "query", None) or getattr(args, "order_by", None):
         raise UsageError(f"{what} reads the sessions themselves, which only the native engine gives; drop "
                          "--engine, --table, --query and --order-by")
+
+
+def _level(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not 0 < v < 1:
+        raise argparse.ArgumentTypeError("the level must be between 0 and 1, e.g. 0.95")
+    return v
+
+
+def add_level_option(group, default: float = 0.95) -> None:
+    """The ``--level`` of every command that shows intervals (one definition for all)."""
+    group.add_argument("--level", type=_level, default=default, metavar="LEVEL",
+                       help=f"interval level, between 0 and 1 (default {default:g})")
+
+
+def add_interval_options(group) -> None:
+    """``--level`` and ``--intervals posterior|bootstrap`` (analyze, report)."""
+    add_level_option(group)
+    group.add_argument("--intervals", choices=("posterior", "bootstrap"), default="posterior",
+                       help="how intervals are made: 'posterior' draws each row from its Dirichlet posterior "
+                            "(default); 'bootstrap' resamples whole sessions (reads the input again, holds the "
+                            "sessions in memory, native engine only); both seeded with --seed")
+
+
+def interval_method(args) -> str:
+    """The analysis-side name of ``--intervals`` ("dirichlet" or "bootstrap")."""
+    return "bootstrap" if getattr(args, "intervals", "posterior") == "bootstrap" else "dirichlet"
+
+
+def sessions_from_args(args, what: str):
+    """The input's shaped sessions in memory (native engine only)."""
+    from .analyze.order import session_sequences
+    from .ingest.base import ReadOptions
+    from .pipeline import read_events
+
+    native_only(args, what)
+    shape, fields, _, _ = shape_from_args(args)
+    return session_sequences(read_events(args.paths, format=args.format,
+                                         options=ReadOptions(fields=fields, strict=args.strict),
+                                         progress=progress_from_args(args)), shape)

@@ -12,6 +12,8 @@ import argparse
 import sys
 
 from ..errors import AnalysisError, UsageError
+# moved to tracechain/options.py (shared by every command); the names stay here
+from ..options import _level, add_interval_options, add_level_option, interval_method, sessions_from_args  # noqa: F401
 
 __all__ = ["register", "cmd_order", "cmd_simulate", "cmd_whatif"]
 
@@ -46,50 +48,6 @@ def _positive_int(text: str) -> int:
     if v < 0:
         raise argparse.ArgumentTypeError("must be at least 0")
     return v
-
-
-def _level(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
-    if not 0 < v < 1:
-        raise argparse.ArgumentTypeError("the level must be between 0 and 1, e.g. 0.95")
-    return v
-
-
-def add_level_option(group, default: float = 0.95) -> None:
-    """The ``--level`` of every command that shows intervals (one definition for all)."""
-    group.add_argument("--level", type=_level, default=default, metavar="LEVEL",
-                       help=f"interval level, between 0 and 1 (default {default:g})")
-
-
-def add_interval_options(group) -> None:
-    """``--level`` and ``--intervals posterior|bootstrap`` (analyze, report)."""
-    add_level_option(group)
-    group.add_argument("--intervals", choices=("posterior", "bootstrap"), default="posterior",
-                       help="how intervals are made: 'posterior' draws each row from its Dirichlet posterior "
-                            "(default); 'bootstrap' resamples whole sessions (reads the input again, holds the "
-                            "sessions in memory, native engine only); both seeded with --seed")
-
-
-def interval_method(args) -> str:
-    """The analysis-side name of ``--intervals`` ("dirichlet" or "bootstrap")."""
-    return "bootstrap" if getattr(args, "intervals", "posterior") == "bootstrap" else "dirichlet"
-
-
-def sessions_from_args(args, what: str):
-    """The input's shaped sessions in memory (native engine only)."""
-    from ..options import native_only, progress_from_args, shape_from_args
-    from ..ingest.base import ReadOptions
-    from ..pipeline import read_events
-    from .order import session_sequences
-
-    native_only(args, what)
-    shape, fields, _, _ = shape_from_args(args)
-    return session_sequences(read_events(args.paths, format=args.format,
-                                         options=ReadOptions(fields=fields, strict=args.strict),
-                                         progress=progress_from_args(args)), shape)
 
 
 def _iso_time(text: str) -> float:

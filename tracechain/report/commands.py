@@ -62,7 +62,7 @@ def _diagram_options(p: argparse.ArgumentParser) -> None:
 
 def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
-    from ..analyze.commands import add_interval_options, add_level_option
+    from ..options import add_interval_options, add_level_option
     from ..cli import _add_input_options
 
     r = subparsers.add_parser(
@@ -173,7 +173,7 @@ def _order_test(args):
 
 def _interval_options(args) -> dict:
     """``level``/``intervals`` (and the sessions for the bootstrap) for the extended analysis."""
-    from ..analyze.commands import interval_method, sessions_from_args
+    from ..options import interval_method, sessions_from_args
 
     method = interval_method(args)
     opts = {"level": args.level, "intervals": method}

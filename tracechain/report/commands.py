@@ -1,10 +1,8 @@
 """The ``report`` and ``compare`` commands.
 
 :func:`register` adds both to the command line's sub-parsers (``tracechain.cli`` calls it);
-the handlers reuse the input options and chain building of :mod:`tracechain.cli`, imported
-lazily to avoid an import cycle. :func:`main` runs a command line with these commands
-registered, with the same error handling as ``tracechain.cli.main`` (useful before the
-commands are wired into it, and in tests).
+the handlers take the shared options from :mod:`tracechain.options`. The old ``main`` and
+``build_parser`` of this module are now ``tracechain.cli``'s (it registers these commands).
 
 ``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE]``
     the analysis as a self-contained HTML report, a Markdown summary, per-state CSV.
@@ -19,7 +17,6 @@ from __future__ import annotations
 
 import argparse
 import sys
-from collections.abc import Sequence
 
 __all__ = ["register", "main", "cmd_report", "cmd_compare"]
 
@@ -502,24 +499,12 @@ def cmd_compare(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-# -- running --------------------------------------------------------------------------------
-def build_parser() -> argparse.ArgumentParser:
-    """``tracechain.cli.build_parser()`` with these commands registered (once)."""
-    from ..cli import build_parser as base
+# -- old entry points -----------------------------------------------------------------------
+def __getattr__(name: str):
+    # ``main`` and ``build_parser`` ran a command line with these commands registered before
+    # tracechain.cli wired them in; it does now, so the old names are tracechain.cli's own
+    if name in ("main", "build_parser"):
+        from .. import cli
 
-    parser = base()
-    sub = _subparsers_action(parser)
-    if "report" not in sub.choices:
-        register(sub)
-    return parser
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    """The command line (``report`` and ``compare`` are wired into ``tracechain.cli``)."""
-    from ..cli import main as cli_main
-
-    return cli_main(argv)
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+        return getattr(cli, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -39,7 +39,8 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     # engines produce TransitionCounts, so the seam type sits below every stage
     ("base", ("tracechain.errors", "tracechain.events", "tracechain.counts", "tracechain._arrowutil",
               "tracechain._bytewords", "tracechain._yamlsafe", "tracechain._version", "tracechain.privacy",
-              "tracechain.display", "tracechain.files", "tracechain.durations")),
+              "tracechain.display", "tracechain.files", "tracechain.durations",
+              "tracechain.renderers")),
     ("ingest", ("tracechain.ingest", "tracechain.progress")),
     ("shape", ("tracechain.shape",)),
     # read + shape + count wired together (in Python, or inside a database engine)

@@ -394,14 +394,12 @@ def _report_path(config: pytest.Config) -> str | None:
 
 
 def _report_format(path: str) -> str:
-    low = path.lower()
-    if low.endswith((".sarif", ".sarif.json")):
-        return "sarif"
-    if low.endswith(".xml"):
-        return "junit"
-    if low.endswith(".json"):
-        return "json"
-    raise pytest.UsageError(f"--tracechain-report {path}: use a .sarif, .xml or .json file name")
+    from .check.formats import CHECK_FORMATS
+
+    found = CHECK_FORMATS.for_path(path)
+    if found is None:
+        raise pytest.UsageError(f"--tracechain-report {path}: use a .sarif, .xml or .json file name")
+    return found.name
 
 
 def pytest_configure(config: pytest.Config) -> None:

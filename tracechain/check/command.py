@@ -24,6 +24,7 @@ from .config import RulesFile, load_rules
 from .context import CheckContext
 from .engine import run_check
 from .findings import FAIL_ON
+from .formats import CHECK_FORMATS
 from .junit import junit_xml
 from .report import check_document, dumps_json, render_check_text
 from .sarif import sarif_document
@@ -31,7 +32,7 @@ from .snapshot import dumps_snapshot, load_snapshot, snapshot_document
 
 __all__ = ["register", "cmd_check", "cmd_snapshot", "build_checked_chain", "render", "OUTPUT_FORMATS"]
 
-OUTPUT_FORMATS = ("text", "json", "sarif", "junit")
+OUTPUT_FORMATS = CHECK_FORMATS.names()
 
 
 def register(subparsers: Any) -> None:
@@ -148,26 +149,12 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
 def _format_for(path: str, chosen: str | None) -> str:
     if chosen:
         return chosen
-    low = path.lower()
-    if low.endswith((".sarif", ".sarif.json")):
-        return "sarif"
-    if low.endswith(".xml"):
-        return "junit"
-    if low.endswith(".json"):
-        return "json"
-    return "text"
+    found = CHECK_FORMATS.for_path(path)
+    return found.name if found is not None else "text"
 
 
 def render(result, fmt: str) -> str:
-    if fmt == "text":
-        return render_check_text(result)
-    if fmt == "json":
-        return dumps_json(check_document(result))
-    if fmt == "sarif":
-        return dumps_json(sarif_document(result))
-    if fmt == "junit":
-        return junit_xml(result)
-    raise UsageError(f"unknown report format {fmt!r}; use one of {', '.join(OUTPUT_FORMATS)}")
+    return CHECK_FORMATS.get(fmt).render(result)
 
 
 def cmd_check(args: argparse.Namespace) -> int:

@@ -91,6 +91,22 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_ERROR, f"tracechain: error: {message}\n")
 
 
+def _line_bytes(text: str) -> int:
+    """``--max-line-bytes``: a whole number of bytes, at least 1, with an optional K/M/G suffix."""
+    t = text.strip().upper().removesuffix("B").removesuffix("I")
+    scale = 1
+    if t[-1:] in ("K", "M", "G"):
+        scale = 1 << {"K": 10, "M": 20, "G": 30}[t[-1]]
+        t = t[:-1]
+    try:
+        n = int(t) * scale
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of bytes: {text!r} (e.g. 65536, 64K, 16M)") from None
+    if n < 1 or n > (1 << 40):
+        raise argparse.ArgumentTypeError(f"out of range: {text!r} (1 byte to 1024G)")
+    return n
+
+
 def _add_input_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("paths", nargs="+", metavar="PATH",
                    help="event logs: files, directories, globs; '-' for standard input; gzip/bz2/xz are read too")
@@ -102,6 +118,9 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--time-unit", choices=("s", "ms", "us", "ns"),
                    help="unit of numeric epoch times (default: from their magnitude)")
     g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
+    g.add_argument("--max-line-bytes", type=_line_bytes, default=None, metavar="N",
+                   help="the longest line read, in bytes (suffixes K, M, G: powers of 1024; default 64M); a longer "
+                        "line is skipped and counted as 'line too long', its bytes discarded as they are read")
     g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
     g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
                    help="a progress bar (bytes read) on standard error while reading; by default shown when "
@@ -257,6 +276,8 @@ def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict
         value = getattr(args, attr, None)
         if value:
             extra[key] = conv(value)
+    if getattr(args, "max_line_bytes", None):
+        extra["max_line_bytes"] = args.max_line_bytes
     if getattr(args, "no_mark_errors", False):
         extra["mark_errors"] = False
     fmt = args.format

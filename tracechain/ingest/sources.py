@@ -27,7 +27,7 @@ import tempfile
 import threading
 import zlib
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import BinaryIO, TypeVar
 
 import numpy as np
@@ -43,6 +43,14 @@ DECOMPRESS_ERRORS = (OSError, EOFError, lzma.LZMAError, zlib.error)
 
 #: Bytes read per block; blocks end on a line boundary.
 BLOCK_BYTES = 1 << 24
+
+#: The default bound on the length of one line (bytes, its newline excluded): a longer line
+#: is skipped as "line too long" while its bytes are discarded as they stream by, so memory
+#: stays bounded whatever the input (``--max-line-bytes``).
+MAX_LINE_BYTES = 64 << 20
+
+#: Bytes read at a time while an over-long line is discarded.
+_DISCARD_BYTES = 1 << 20
 
 T = TypeVar("T")
 
@@ -66,6 +74,11 @@ class Source:
     name: str
     path: str
     on_read: Callable[[int], None] | None = field(default=None, compare=False, repr=False)
+    #: the longest line the line iterators hand on, in bytes (None: :data:`MAX_LINE_BYTES`)
+    max_line_bytes: int | None = field(default=None, compare=False, repr=False)
+    #: called with ``(line_number, length, blanked)`` for each line longer than that, whose bytes are
+    #: discarded as they are read; without it such a line is an :class:`IngestError`
+    on_long_line: Callable[[int, int], None] | None = field(default=None, compare=False, repr=False)
 
 
 def expand_sources(
@@ -109,6 +122,26 @@ def expand_sources(
     if not out:
         raise UsageError("no input given")
     return out
+
+
+def with_line_limit(source: Source, report, limit: int | None = None, strict: bool = False) -> Source:
+    """``source`` with its over-long lines (longer than ``limit`` bytes, default
+    :data:`MAX_LINE_BYTES`) skipped and counted in ``report`` (a ParseReport) as
+    "line too long" (``strict``: an IngestError)."""
+    limit = MAX_LINE_BYTES if limit is None else int(limit)
+    name = source.name
+
+    def on_long_line(line: int, length: int, blanked: bool) -> None:
+        detail = f"{length} bytes, over the limit of {limit} (--max-line-bytes)"
+        if strict:
+            raise IngestError(f"line too long: {detail}", name, line)
+        report.skip(name, line, "line too long", detail)
+        if blanked:  # the parser sees an empty line there, not to be counted again
+            report.blanked.add((name, int(line)))
+        else:  # the line vanished from the stream: read, and skipped
+            report.lines_read += 1
+
+    return replace(source, max_line_bytes=limit, on_long_line=on_long_line)
 
 
 def _spool_stdin(
@@ -400,6 +433,65 @@ def iter_line_blocks_counted(
         raise ValueError("skip_lines needs count=True")
     spares = _BlockBuffers()
     _keep_freed_memory()
+    limit = source.max_line_bytes if source.max_line_bytes is not None else MAX_LINE_BYTES
+    # a block holds complete lines of up to ``limit`` bytes only when it is no longer than that
+    lengths_checked = limit < block_bytes
+    # line numbers for the "line too long" message are kept also when the caller counts none
+    limit_tracked = True
+
+    def too_long(at: int | None, length: int, blanked: bool = False) -> None:
+        if source.on_long_line is not None:
+            source.on_long_line(at if at is not None else 0, length, blanked)
+            return
+        raise IngestError(f"line too long: {length} bytes, over the limit of {limit} bytes "
+                          "(--max-line-bytes)", source.name, at)
+
+    def discard_line(start: bytes, at: int) -> bytes:
+        """Drop the line ``start`` begins (no newline in it yet) up to its newline, reading
+        and throwing away its bytes; return what follows, from the newline on."""
+        length = len(start)
+        del start
+        scratch = bytearray(_DISCARD_BYTES)
+        view = memoryview(scratch)
+        try:
+            while True:
+                try:
+                    got = _read_into(f, view)
+                except DECOMPRESS_ERRORS as err:
+                    raise IngestError(f"cannot decompress: {err}", source.name, at) from err
+                if not got:
+                    too_long(at, length)
+                    return b""
+                nl = scratch.find(b"\n", 0, got)
+                if nl >= 0:
+                    length += nl - (1 if nl > 0 and scratch[nl - 1] == 13 else 0)
+                    too_long(at, length, True)
+                    # its newline is kept (an empty line), so a reader counting lines itself counts right
+                    return bytes(scratch[nl:got])
+                length += got
+        finally:
+            view.release()
+
+    def check_lengths(block: bytearray, first: int) -> None:
+        """Blank the over-long lines of ``block`` in place (their newline kept, so the line
+        numbers hold) and report each (only needed when blocks exceed the limit)."""
+        a = np.frombuffer(block, dtype=np.uint8)
+        ends = np.flatnonzero(a == 10)
+        starts = np.concatenate(([0], ends[:-1] + 1))
+        lengths = ends - starts
+        if len(ends):  # a CR before the newline is part of the line ending, not of the line
+            lengths -= (a[np.maximum(ends - 1, 0)] == 13) & (lengths > 0)
+        long = np.flatnonzero(lengths > limit)
+        del a
+        if not len(long):
+            return
+        for i in long[::-1]:
+            s0, e0 = int(starts[i]), int(ends[i])
+            n = int(lengths[i])
+            del block[s0:e0]
+            too_long(first + int(i), n, True)
+
+    recheck = False
     with open_binary(source) as f:
         line_no = 1
         rest = b""
@@ -434,22 +526,48 @@ def iter_line_blocks_counted(
             cut = buf.rfind(b"\n")
             if cut < 0:
                 rest = bytes(buf)
+                del buf
+                if len(rest) > limit:
+                    rest = discard_line(rest, line_no)
+                    recheck = True  # what followed the newline may hold several lines
                 continue
             rest = bytes(buf[cut + 1 :])
             del buf[cut + 1 :]
+            if lengths_checked or recheck:
+                check_lengths(buf, line_no)
+                recheck = False
+            else:  # only the first line, which went on from the bytes kept, can be over the limit
+                first_nl = buf.find(b"\n")
+                n = first_nl - (1 if first_nl > 0 and buf[first_nl - 1] == 13 else 0)
+                if n > limit:
+                    del buf[:first_nl]
+                    too_long(line_no, n, True)
+            newlines = count_newlines(buf) if (count or limit_tracked) else None
             if not count:
                 yield buf, None, None
-                spares.give(buf)
-                del buf
-                continue
-            newlines = count_newlines(buf)
-            yield buf, line_no, newlines
+            else:
+                yield buf, line_no, newlines
             spares.give(buf)
             del buf
-            line_no += newlines
+            if newlines is not None:
+                line_no += newlines
+            if len(rest) > limit:
+                rest = discard_line(rest, line_no)
+                recheck = True
         if rest and not skip_lines:
             # (a last line with no newline that is still to be skipped is dropped too)
-            yield bytearray(rest), (line_no if count else None), (count_newlines(rest) if count else None)
+            # (after a discarded line, ``rest`` may hold several lines)
+            last = bytearray(rest)
+            del rest
+            tail = len(last) - last.rfind(b"\n") - 1
+            if tail > limit:
+                too_long(line_no + count_newlines(last), tail)
+                del last[len(last) - tail :]
+            check_lengths(last, line_no)
+            if not last:
+                return
+            yield last, (line_no if count else None), (count_newlines(last) if count else None)
+            return
 
 
 _BOM = b"\xef\xbb\xbf"

@@ -219,3 +219,70 @@ def test_memory_stays_bounded_on_an_unending_json_value(tmp_path):
     events, bad, peak_mb = map(int, out.stdout.split())
     assert (events, bad) == (20, 1)
     assert peak_mb < 400, f"peak RSS {peak_mb} MB"
+
+
+# --- the DuckDB engine reads its files itself ------------------------------------------------------------
+def _csv_with_long_line(path, long_len: int) -> None:
+    rows = [b"session_id,ts,event"] + [f"s,{i},e{i}".encode() for i in range(5)]
+    rows += [b"x,1," + b"y" * long_len] + [f"s,{i},e{i}".encode() for i in range(5, 10)]
+    path.write_bytes(b"\n".join(rows) + b"\n")
+
+
+def test_duckdb_engine_reads_csv_lines_up_to_the_same_default_bound(tmp_path):
+    """DuckDB's own default max_line_size (2 MB, DuckDB's documentation of read_csv, from memory)
+    stopped the duckdb engine at a 3 MiB line the native engine reads; both bound at 64 MiB now."""
+    pytest.importorskip("duckdb")
+    from tracechain.engines import count_data
+
+    path = tmp_path / "a.csv"
+    _csv_with_long_line(path, 3 << 20)
+    _, native = count_data([str(path)], engine="native")
+    _, duck = count_data([str(path)], engine="duckdb")
+    assert native.events == duck.events == 11
+
+
+def test_duckdb_engine_stops_at_a_csv_line_over_the_bound(tmp_path):
+    pytest.importorskip("duckdb")
+    from tracechain.engines import count_data
+    from tracechain.errors import IngestError
+
+    path = tmp_path / "a.csv"
+    _csv_with_long_line(path, 5000)
+    with pytest.raises(IngestError, match=r"a\.csv: line too long: \d+ bytes, over the limit of 1024 bytes"):
+        count_data([str(path)], engine="duckdb", extra={"max_line_bytes": 1024})
+    _, native = count_data([str(path)], engine="native", extra={"max_line_bytes": 1024})
+    assert (native.events, dict(native.skipped)) == (10, {"line too long": 1})
+
+
+def test_duckdb_engine_refuses_the_bound_for_json_lines(tmp_path):
+    pytest.importorskip("duckdb")
+    from tracechain.engines import count_data
+    from tracechain.errors import UsageError
+
+    path = tmp_path / "a.jsonl"
+    _write_log(path, set(), 0, n=5)
+    with pytest.raises(UsageError, match="--max-line-bytes.*--engine native"):
+        count_data([str(path)], engine="duckdb", extra={"max_line_bytes": 1024})
+
+
+# --- the command line -----------------------------------------------------------------------------------
+@pytest.mark.parametrize("text, ok", [("1K", True), ("64MiB", True), ("2g", True), ("0", False), ("1.5M", False),
+                                      ("lots", False), ("2048G", False)])
+def test_max_line_bytes_option(tmp_path, capsys, text, ok):
+    from tracechain.cli import main
+
+    path = tmp_path / "a.jsonl"
+    _write_log(path, {3}, 3000)
+    try:
+        code = main(["analyze", str(path), "--max-line-bytes", text])
+    except SystemExit as stop:  # argparse refuses a bad value by exiting
+        code = stop.code
+    out, err = capsys.readouterr()
+    if not ok:
+        assert code == 2 and "--max-line-bytes" in err and "Traceback" not in err
+        return
+    assert code == 0, err
+    if text == "1K":  # 3000 bytes over 1024: skipped, counted, named
+        assert "line too long 1" in out
+    else:
+        assert "skipped" in out and "line too long" not in out

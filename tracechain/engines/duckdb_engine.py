@@ -11,9 +11,11 @@ from __future__ import annotations
 
 import glob
 import os
+import re
 
 from ..errors import IngestError, UsageError
 from ..ingest.fields import FieldSpec
+from ..ingest.sources import MAX_LINE_BYTES
 from . import sql as S
 from .base import Relation, SqlRunner, count_relation
 
@@ -120,7 +122,19 @@ class _Conn:
         try:
             return self.con.execute(stmt, list(params)).fetchall()
         except duckdb.Error as err:
+            too_long = _LINE_SIZE.search(str(err))
+            if too_long:  # DuckDB's CSV reader stops at a line over its bound, even when told to skip errors
+                where = _FILE.search(str(err))
+                raise IngestError(
+                    f"line too long: {too_long.group(2)} bytes, over the limit of {too_long.group(1)} bytes "
+                    "(--max-line-bytes); the duckdb engine stops at such a line, --engine native skips it",
+                    where.group(1) if where else self.where) from None
             raise IngestError(f"DuckDB: {_first_line(err)}", self.where) from None
+
+
+#: DuckDB's words for a CSV line over ``max_line_size`` (from DuckDB 1.x/2.0 messages, checked in a test)
+_LINE_SIZE = re.compile(r"Maximum line size of (\d+) bytes exceeded\. Actual Size: ?(\d+) bytes")
+_FILE = re.compile(r"^\s*file = (.+)$", re.M)
 
 
 def _first_line(err: Exception) -> str:
@@ -182,8 +196,14 @@ def _columns(conn: _Conn, rel_sql: str) -> dict[str, str]:
 
 
 def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, format: str | None = None,
-                order_by: str | None = None, finished_names=None, strict: bool = False):
-    """Counts of event files read by DuckDB; returns ``(TransitionCounts, ParseReport)``."""
+                order_by: str | None = None, finished_names=None, strict: bool = False,
+                max_line_bytes: int | None = None):
+    """Counts of event files read by DuckDB; returns ``(TransitionCounts, ParseReport)``.
+
+    ``max_line_bytes`` (default: the native reader's bound) is DuckDB's ``max_line_size`` for
+    CSV, where a longer line stops the run (an IngestError); DuckDB's JSON reader has no such
+    bound per line, so for JSON Lines the option is refused (the native engine has it).
+    """
     from ..pipeline import ShapeOptions
 
     shape = shape or ShapeOptions()
@@ -202,9 +222,13 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
         if fmt == "parquet":
             scan = f"read_parquet({listed}, hive_partitioning = true, union_by_name = true)"
         elif fmt == "csv":
+            limit = MAX_LINE_BYTES if max_line_bytes is None else int(max_line_bytes)
             scan = (f"read_csv({listed}, header = true, ignore_errors = {errors}, "
-                    "store_rejects = true)")
+                    f"store_rejects = true, max_line_size = {limit})")
         else:
+            if max_line_bytes is not None:
+                raise UsageError("--max-line-bytes: DuckDB's JSON reader reads each line whole, with no bound "
+                                 "per line; use --engine native to bound the lines of JSON Lines")
             # JSON Lines: the three fields are read as text from each object (a line that is no object, or
             # not JSON, gives a row without them, counted as skipped); the names come from the data
             auto = f"read_json({listed}, format = 'newline_delimited', ignore_errors = true)"

@@ -9,13 +9,12 @@ events of one session at one time, as file order is for the native engine.
 
 from __future__ import annotations
 
-import glob
 import os
 import re
 
 from ..errors import IngestError, UsageError
 from ..ingest.fields import FieldSpec
-from ..ingest.sources import MAX_LINE_BYTES
+from ..ingest.sources import MAX_LINE_BYTES, glob_files, walk_files
 from . import sql as S
 from .base import Relation, SqlRunner, count_relation
 
@@ -64,22 +63,13 @@ def expand_files(paths: list[str]) -> list[str]:
         if p == "-":
             raise UsageError("the duckdb engine reads files, not standard input; use --engine native")
         if os.path.isdir(p):
-            found = []
-            for root, dirs, files in os.walk(p):
-                dirs[:] = sorted(x for x in dirs if not x.startswith("."))
-                found.extend(os.path.join(root, f) for f in sorted(files) if not f.startswith("."))
-            if not found:
-                raise UsageError(f"directory {p!r} holds no files")
-            out.extend(sorted(found))
+            out.extend(walk_files(p))  # the native reader's walk: regular files only
         elif os.path.exists(p):
             if not os.path.isfile(p):
                 raise UsageError(f"{p}: the duckdb engine reads files, not pipes; use --engine native")
             out.append(p)
         else:
-            matches = [m for m in sorted(glob.glob(p, recursive=True)) if os.path.isfile(m)]
-            if not matches:
-                raise UsageError(f"no such file: {p!r}")
-            out.extend(matches)
+            out.extend(glob_files(p))
     if not out:
         raise UsageError("no input given")
     return out

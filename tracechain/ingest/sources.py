@@ -22,6 +22,7 @@ import lzma
 import os
 import queue
 import shutil
+import stat
 import sys
 import tempfile
 import threading
@@ -81,12 +82,81 @@ class Source:
     on_long_line: Callable[[int, int], None] | None = field(default=None, compare=False, repr=False)
 
 
+def _not_regular(mode: int) -> str | None:
+    """What a file of this mode is, when it is not a regular file (None for one)."""
+    if stat.S_ISREG(mode):
+        return None
+    for test, what in ((stat.S_ISDIR, "a directory"), (stat.S_ISFIFO, "a named pipe"),
+                       (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"),
+                       (stat.S_ISSOCK, "a socket")):
+        if test(mode):
+            return what
+    return "not a regular file"
+
+
+def walk_files(directory: str) -> list[str]:
+    """The regular files under ``directory``, recursively, in sorted order; names starting
+    with a dot are skipped, links to directories are not followed, links to regular files are read.
+
+    Anything else met on the way (a device, a named pipe, a socket, a link to one of them, a
+    broken link) is refused with a :class:`UsageError` naming it: a walk reads only regular files
+    (reading ``/dev/zero`` or waiting on a pipe found in a folder would never end). A pipe is
+    read when it is named on its own. Shared by the native reader and the duckdb engine.
+    """
+    found = []
+    for root, dirs, files in os.walk(directory):
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
+        for f in sorted(files):
+            if f.startswith("."):
+                continue
+            path = os.path.join(root, f)
+            try:
+                what = _not_regular(os.stat(path).st_mode)
+            except OSError as err:
+                what = "a broken link" if os.path.islink(path) else f"unreadable ({err.strerror or err})"
+            if what is not None:
+                raise UsageError(f"{_shown(path)}: {what}, found in the folder {_shown(directory)}; a folder is read "
+                                 "for its regular files only (move it away, or name a pipe on its own)")
+            found.append(path)
+    if not found:
+        raise UsageError(f"directory {directory!r} holds no files")
+    return sorted(found)
+
+
+def glob_files(pattern: str) -> list[str]:
+    """The regular files a glob pattern matches, sorted (folders it matches are passed over; a
+    device, pipe or socket it matches is refused as in :func:`walk_files`); UsageError when none."""
+    found = []
+    for m in sorted(glob.glob(pattern, recursive=True)):
+        try:
+            what = _not_regular(os.stat(m).st_mode)
+        except OSError:
+            what = "a broken link" if os.path.islink(m) else None
+        if what == "a directory":
+            continue
+        if what is not None:
+            raise UsageError(f"{_shown(m)}: {what}, matched by {_shown(pattern)}; a pattern is read for its "
+                             "regular files only (name a pipe on its own)")
+        found.append(m)
+    if not found:
+        raise UsageError(f"no such file: {_shown(pattern)!r}")
+    return found
+
+
+def _shown(path: str) -> str:
+    """A path for a message: bytes that are not UTF-8 (kept by the file system encoding's
+    surrogate escapes) shown as backslash escapes, so that printing the message cannot fail."""
+    return os.fsencode(path).decode("utf-8", "backslashreplace")
+
+
 def expand_sources(
     paths: list[str], stdin: BinaryIO | None = None, copied: Callable[[int], None] | None = None
 ) -> list[Source]:
     """Turn command-line paths (files, directories, globs, ``-``) into sources.
 
-    Directories are walked recursively in sorted order, skipping hidden files.
+    Directories are walked recursively in sorted order, skipping hidden files (see
+    :func:`walk_files`: regular files only). A named pipe (``<(zcat log)``) named on its own
+    is read once, like standard input; a device or socket named on its own is refused.
     ``copied``, when given, is called with the bytes copied from standard input as it is
     copied to its temporary file.
     """
@@ -96,29 +166,23 @@ def expand_sources(
             out.append(_spool_stdin(stdin, copied))
             continue
         if os.path.isdir(p):
-            found = []
-            for root, dirs, files in os.walk(p):
-                dirs[:] = sorted(d for d in dirs if not d.startswith("."))
-                found.extend(os.path.join(root, f) for f in sorted(files) if not f.startswith("."))
-            if not found:
-                raise UsageError(f"directory {p!r} holds no files")
-            out.extend(Source(f, f) for f in sorted(found))
+            out.extend(Source(f, f) for f in walk_files(p))
             continue
         if os.path.exists(p):
-            if os.path.isfile(p):
+            what = _not_regular(os.stat(p).st_mode)
+            if what is None:
                 out.append(Source(p, p))
-            else:  # a named pipe or device (``<(zcat log)``): read once, like standard input
+            elif what == "a named pipe":  # ``<(zcat log)``: read once, like standard input
                 try:
                     with open(p, "rb") as stream:
                         out.append(_spool_stdin(stream, copied, name=p))
                 except OSError as err:
-                    raise UsageError(f"cannot read {p!r}: {err.strerror or err}") from err
+                    raise UsageError(f"cannot read {_shown(p)!r}: {err.strerror or err}") from err
+            else:
+                raise UsageError(f"{_shown(p)}: {what}; tracechain reads regular files, named pipes and "
+                                 "standard input ('-')")
             continue
-        matches = sorted(glob.glob(p, recursive=True))
-        matches = [m for m in matches if os.path.isfile(m)]
-        if not matches:
-            raise UsageError(f"no such file: {p!r}")
-        out.extend(Source(m, m) for m in matches)
+        out.extend(Source(m, m) for m in glob_files(p))
     if not out:
         raise UsageError("no input given")
     return out

@@ -4,14 +4,18 @@
 :class:`~tracechain.errors.TracechainError` becomes one message on stderr and exit
 status 2; nothing a user can cause ends in a traceback.
 
-Exit statuses: 0 success, 1 findings (reserved for checks), 2 usage or input error,
-130 interrupted.
+Exit statuses: 0 success, 1 findings (reserved for checks), 2 usage or input error
+(also: standard output cannot be written, a full disk or closed), 130 interrupted, 141
+standard output's reader went away (a closed pipe, ``| head``: no message, as a filter
+stopped by SIGPIPE).
 """
 
 from __future__ import annotations
 
 import argparse
+import errno
 import math
+import os
 import re
 import sys
 import warnings
@@ -39,6 +43,7 @@ EXIT_OK = 0
 EXIT_FINDINGS = 1
 EXIT_ERROR = 2
 EXIT_INTERRUPTED = 130
+EXIT_PIPE = 141  # 128 + SIGPIPE: standard output's reader went away (``| head``); no message
 
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(s|sec|m|min|h|d)?\s*$", re.IGNORECASE)
 _UNIT_S = {None: 1, "s": 1, "sec": 1, "m": 60, "min": 60, "h": 3600, "d": 86400}
@@ -413,7 +418,122 @@ def cmd_formats(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+class _StdoutFailed(Exception):
+    """A write to standard output failed (``err``: the OSError); raised by :class:`_GuardedStdout`."""
+
+    def __init__(self, err: OSError):
+        super().__init__(str(err))
+        self.err = err
+
+
+class _ClosedStream:
+    """Standard output when the process was started with it closed (``>&-``): every write fails."""
+
+    def _closed(self, *_args, **_kw):
+        raise OSError(errno.EBADF, "it is closed")
+
+    write = _closed
+
+    def flush(self) -> None:  # nothing is ever buffered
+        pass
+
+    def isatty(self) -> bool:
+        return False
+
+    @property
+    def buffer(self) -> "_ClosedStream":
+        return self
+
+
+class _GuardedStdout:
+    """``sys.stdout`` while :func:`main` runs: what fails on writing to the real one (a closed
+    pipe, a full disk, a closed descriptor) arrives as :class:`_StdoutFailed`, so that it is
+    told apart from every other OSError and reported once."""
+
+    def __init__(self, target, binary: bool = False):
+        self._target = target
+        self._binary = binary
+
+    def write(self, data):
+        try:
+            return self._target.write(data)
+        except OSError as err:
+            raise _StdoutFailed(err) from None
+
+    def flush(self) -> None:
+        try:
+            self._target.flush()
+        except OSError as err:
+            raise _StdoutFailed(err) from None
+
+    @property
+    def buffer(self) -> "_GuardedStdout":
+        return _GuardedStdout(self._target.buffer, binary=True) if not self._binary else self
+
+    def __getattr__(self, name):
+        return getattr(self._target, name)
+
+
+def _silence_stdout() -> None:
+    """After a failed write: what is still buffered for standard output goes to the null device,
+    so that the interpreter's flush at exit finds nothing to fail on (no "Exception ignored")."""
+    try:
+        fd = os.open(os.devnull, os.O_WRONLY)
+        try:
+            os.dup2(fd, 1)
+        finally:
+            os.close(fd)
+    except OSError:  # pragma: no cover - no null device
+        pass
+
+
+def _stdout_is_open() -> bool:
+    try:
+        os.fstat(1)
+    except OSError:
+        return False
+    return True
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run one command; standard output that cannot be written (EPIPE: the reader went away, as
+    with ``| head``) ends the command quietly with status 141 (128 + SIGPIPE, what a shell reports for
+    a filter stopped by that signal); any other failure to write it (a full disk, a closed
+    descriptor) is one message and status 2."""
+    original = sys.stdout
+    if original is None or (original is sys.__stdout__ and not _stdout_is_open()):
+        # started with standard output closed: descriptor 1 is taken by the null device, so that no
+        # file this process opens (or child it starts) gets it by chance; writes to it still fail
+        if not _stdout_is_open():
+            _silence_stdout()
+        target = _ClosedStream()
+    else:
+        target = original
+    sys.stdout = _GuardedStdout(target)  # type: ignore[assignment]
+    try:
+        try:
+            code = _main(argv)
+            sys.stdout.flush()  # (what is still buffered fails here, not at the interpreter's exit)
+            return code
+        except SystemExit:  # argparse: --help, --version or a usage error, after its message
+            sys.stdout.flush()
+            raise
+    except _StdoutFailed as failed:
+        if original is not None and original is sys.__stdout__:
+            _silence_stdout()
+        if isinstance(failed.err, BrokenPipeError):
+            return EXIT_PIPE
+        reason = failed.err.strerror or str(failed.err)
+        try:
+            print(f"tracechain: error: cannot write to standard output: {reason}", file=sys.stderr)
+        except (OSError, ValueError):
+            pass
+        return EXIT_ERROR
+    finally:
+        sys.stdout = original
+
+
+def _main(argv: Sequence[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "handler", None):
@@ -430,8 +550,6 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("tracechain: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
-    except BrokenPipeError:
-        return EXIT_OK
     finally:
         cleanup_spooled()
 

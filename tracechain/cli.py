@@ -487,6 +487,15 @@ def _silence_stdout() -> None:
         pass
 
 
+def _printable(text: str) -> str:
+    """``text`` with the bytes of a file name that is not UTF-8 (surrogate escapes, PEP 383) shown as
+    backslash escapes, and any other lone surrogate as its escape: printing it cannot fail."""
+    try:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    except UnicodeError:
+        return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
 def _stdout_is_open() -> bool:
     try:
         os.fstat(1)
@@ -545,7 +554,7 @@ def _main(argv: Sequence[str] | None) -> int:
             check_outputs(args)
             return args.handler(args)
     except TracechainError as err:
-        print(f"tracechain: error: {err}", file=sys.stderr)
+        print(f"tracechain: error: {_printable(str(err))}", file=sys.stderr)
         return err.exit_status
     except KeyboardInterrupt:
         print("tracechain: interrupted", file=sys.stderr)

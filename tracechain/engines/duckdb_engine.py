@@ -14,7 +14,7 @@ import re
 
 from ..errors import IngestError, UsageError
 from ..ingest.fields import FieldSpec
-from ..ingest.sources import MAX_LINE_BYTES, glob_files, walk_files
+from ..ingest.sources import MAX_LINE_BYTES, glob_files, shown_name, walk_files
 from . import sql as S
 from .base import Relation, SqlRunner, count_relation
 
@@ -199,12 +199,16 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
     shape = shape or ShapeOptions()
     _check_shape(shape)
     files = expand_files(list(paths))
+    for f in files:
+        if shown_name(f) != f:  # DuckDB takes file names as UTF-8 text
+            raise UsageError(f"{shown_name(f)}: a file name that is not UTF-8, which DuckDB cannot open; "
+                             "use --engine native (or rename the file)")
     fmts = {file_format(f, format) for f in files}
     if len(fmts) > 1:
         raise UsageError("the duckdb engine reads one format per command; these files hold " + ", ".join(sorted(fmts)))
     fmt = fmts.pop()
     listed = "[" + ", ".join(_lit(os.path.abspath(f)) for f in files) + "]"
-    name = files[0] if len(files) == 1 else f"{files[0]} (+{len(files) - 1} more)"
+    name = shown_name(files[0]) if len(files) == 1 else f"{shown_name(files[0])} (+{len(files) - 1} more)"
     conn = _Conn(_connect(), name)
     fields = fields or FieldSpec()
     errors = "false" if strict else "true"
@@ -249,7 +253,7 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
         # (Arrow's CSV reader, under the native engine, reads ISO times with fractions as nanoseconds)
         runner = _runner(conn, {}, "ns" if fmt == "csv" else "us")
         counts, report = count_relation(runner, rel, fields, shape, order_by, finished_names)
-        report.sources = list(files)
+        report.sources = [shown_name(f) for f in files]
         if fmt == "csv":
             report.lines_read += len(files)  # the header lines, as the native reader counts them
             rej = conn.run("SELECT COUNT(DISTINCT (file_id, line)) FROM reject_errors "

@@ -119,7 +119,7 @@ def walk_files(directory: str) -> list[str]:
                                  "for its regular files only (move it away, or name a pipe on its own)")
             found.append(path)
     if not found:
-        raise UsageError(f"directory {directory!r} holds no files")
+        raise UsageError(f"directory {_shown(directory)!r} holds no files")
     return sorted(found)
 
 
@@ -143,10 +143,38 @@ def glob_files(pattern: str) -> list[str]:
     return found
 
 
-def _shown(path: str) -> str:
-    """A path for a message: bytes that are not UTF-8 (kept by the file system encoding's
-    surrogate escapes) shown as backslash escapes, so that printing the message cannot fail."""
-    return os.fsencode(path).decode("utf-8", "backslashreplace")
+def shown_name(path: str) -> str:
+    """A path as tracechain names it to users (messages, reports, JSON, HTML): a file name that
+    is not UTF-8 (its bytes kept by the file system encoding's surrogate escapes, PEP 383) has
+    those bytes shown as backslash escapes (``b'\\xff.jsonl'`` is ``\\xff.jsonl``), so that the
+    name is valid text that every output can encode; any other name is itself."""
+    try:
+        path.encode("utf-8")
+        return path
+    except UnicodeEncodeError:
+        pass
+    try:
+        shown = os.fsencode(path).decode("utf-8", "backslashreplace")
+    except UnicodeError:  # pragma: no cover - a file system encoding other than UTF-8
+        shown = path.encode("utf-8", "backslashreplace").decode("ascii")
+    _SHOWN_PATHS.setdefault(shown, path)
+    return shown
+
+
+_shown = shown_name
+
+#: names changed by :func:`shown_name`, back to the path they stand for (SARIF names the file
+#: itself by a URI, whose percent escapes carry any byte)
+_SHOWN_PATHS: dict[str, str] = {}
+
+
+def path_of_name(name: str) -> str:
+    """The path a name from :func:`shown_name` stands for (the name itself when it was not changed)."""
+    return _SHOWN_PATHS.get(name, name)
+
+
+def _source(path: str) -> Source:
+    return Source(shown_name(path), path)
 
 
 def expand_sources(
@@ -166,23 +194,23 @@ def expand_sources(
             out.append(_spool_stdin(stdin, copied))
             continue
         if os.path.isdir(p):
-            out.extend(Source(f, f) for f in walk_files(p))
+            out.extend(_source(f) for f in walk_files(p))
             continue
         if os.path.exists(p):
             what = _not_regular(os.stat(p).st_mode)
             if what is None:
-                out.append(Source(p, p))
+                out.append(_source(p))
             elif what == "a named pipe":  # ``<(zcat log)``: read once, like standard input
                 try:
                     with open(p, "rb") as stream:
-                        out.append(_spool_stdin(stream, copied, name=p))
+                        out.append(_spool_stdin(stream, copied, name=shown_name(p)))
                 except OSError as err:
                     raise UsageError(f"cannot read {_shown(p)!r}: {err.strerror or err}") from err
             else:
                 raise UsageError(f"{_shown(p)}: {what}; tracechain reads regular files, named pipes and "
                                  "standard input ('-')")
             continue
-        out.extend(Source(m, m) for m in glob_files(p))
+        out.extend(_source(m) for m in glob_files(p))
     if not out:
         raise UsageError("no input given")
     return out

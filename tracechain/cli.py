@@ -4,14 +4,18 @@
 :class:`~tracechain.errors.TracechainError` becomes one message on stderr and exit
 status 2; nothing a user can cause ends in a traceback.
 
-Exit statuses: 0 success, 1 findings (reserved for checks), 2 usage or input error,
-130 interrupted.
+Exit statuses: 0 success, 1 findings (reserved for checks), 2 usage or input error
+(also: standard output cannot be written, a full disk or closed), 130 interrupted, 141
+standard output's reader went away (a closed pipe, ``| head``: no message, as a filter
+stopped by SIGPIPE).
 """
 
 from __future__ import annotations
 
 import argparse
+import errno
 import math
+import os
 import sys
 import warnings
 from collections.abc import Sequence
@@ -40,6 +44,7 @@ from .options import (  # noqa: E402, F401
     _OUTPUT_OPTIONS, EXIT_ERROR, EXIT_FINDINGS, EXIT_INTERRUPTED, EXIT_OK, _positive_int, _share, count_from_args,
     native_only, progress_from_args, shape_from_args,
 )
+EXIT_PIPE = 141  # 128 + SIGPIPE: standard output's reader went away (``| head``); no message
 
 def _timestamp(text: str) -> float:
     try:
@@ -54,6 +59,22 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_ERROR, f"tracechain: error: {message}\n")
 
 
+def _line_bytes(text: str) -> int:
+    """``--max-line-bytes``: a whole number of bytes, at least 1, with an optional K/M/G suffix."""
+    t = text.strip().upper().removesuffix("B").removesuffix("I")
+    scale = 1
+    if t[-1:] in ("K", "M", "G"):
+        scale = 1 << {"K": 10, "M": 20, "G": 30}[t[-1]]
+        t = t[:-1]
+    try:
+        n = int(t) * scale
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of bytes: {text!r} (e.g. 65536, 64K, 16M)") from None
+    if n < 1 or n > (1 << 40):
+        raise argparse.ArgumentTypeError(f"out of range: {text!r} (1 byte to 1024G)")
+    return n
+
+
 def _add_input_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("paths", nargs="+", metavar="PATH",
                    help="event logs: files, directories, globs; '-' for standard input; gzip/bz2/xz are read too")
@@ -65,6 +86,9 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--time-unit", choices=("s", "ms", "us", "ns"),
                    help="unit of numeric epoch times (default: from their magnitude)")
     g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
+    g.add_argument("--max-line-bytes", type=_line_bytes, default=None, metavar="N",
+                   help="the longest line read, in bytes (suffixes K, M, G: powers of 1024; default 64M); a longer "
+                        "line is skipped and counted as 'line too long', its bytes discarded as they are read")
     g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
     g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
                    help="a progress bar (bytes read) on standard error while reading; by default shown when "
@@ -194,6 +218,8 @@ def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict
         value = getattr(args, attr, None)
         if value:
             extra[key] = conv(value)
+    if getattr(args, "max_line_bytes", None):
+        extra["max_line_bytes"] = args.max_line_bytes
     if getattr(args, "no_mark_errors", False):
         extra["mark_errors"] = False
     fmt = args.format
@@ -293,7 +319,131 @@ def cmd_formats(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+class _StdoutFailed(Exception):
+    """A write to standard output failed (``err``: the OSError); raised by :class:`_GuardedStdout`."""
+
+    def __init__(self, err: OSError):
+        super().__init__(str(err))
+        self.err = err
+
+
+class _ClosedStream:
+    """Standard output when the process was started with it closed (``>&-``): every write fails."""
+
+    def _closed(self, *_args, **_kw):
+        raise OSError(errno.EBADF, "it is closed")
+
+    write = _closed
+
+    def flush(self) -> None:  # nothing is ever buffered
+        pass
+
+    def isatty(self) -> bool:
+        return False
+
+    @property
+    def buffer(self) -> "_ClosedStream":
+        return self
+
+
+class _GuardedStdout:
+    """``sys.stdout`` while :func:`main` runs: what fails on writing to the real one (a closed
+    pipe, a full disk, a closed descriptor) arrives as :class:`_StdoutFailed`, so that it is
+    told apart from every other OSError and reported once."""
+
+    def __init__(self, target, binary: bool = False):
+        self._target = target
+        self._binary = binary
+
+    def write(self, data):
+        try:
+            return self._target.write(data)
+        except OSError as err:
+            raise _StdoutFailed(err) from None
+
+    def flush(self) -> None:
+        try:
+            self._target.flush()
+        except OSError as err:
+            raise _StdoutFailed(err) from None
+
+    @property
+    def buffer(self) -> "_GuardedStdout":
+        return _GuardedStdout(self._target.buffer, binary=True) if not self._binary else self
+
+    def __getattr__(self, name):
+        return getattr(self._target, name)
+
+
+def _silence_stdout() -> None:
+    """After a failed write: what is still buffered for standard output goes to the null device,
+    so that the interpreter's flush at exit finds nothing to fail on (no "Exception ignored")."""
+    try:
+        fd = os.open(os.devnull, os.O_WRONLY)
+        try:
+            os.dup2(fd, 1)
+        finally:
+            os.close(fd)
+    except OSError:  # pragma: no cover - no null device
+        pass
+
+
+def _printable(text: str) -> str:
+    """``text`` with the bytes of a file name that is not UTF-8 (surrogate escapes, PEP 383) shown as
+    backslash escapes, and any other lone surrogate as its escape: printing it cannot fail."""
+    try:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    except UnicodeError:
+        return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def _stdout_is_open() -> bool:
+    try:
+        os.fstat(1)
+    except OSError:
+        return False
+    return True
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run one command; standard output that cannot be written (EPIPE: the reader went away, as
+    with ``| head``) ends the command quietly with status 141 (128 + SIGPIPE, what a shell reports for
+    a filter stopped by that signal); any other failure to write it (a full disk, a closed
+    descriptor) is one message and status 2."""
+    original = sys.stdout
+    if original is None or (original is sys.__stdout__ and not _stdout_is_open()):
+        # started with standard output closed: descriptor 1 is taken by the null device, so that no
+        # file this process opens (or child it starts) gets it by chance; writes to it still fail
+        if not _stdout_is_open():
+            _silence_stdout()
+        target = _ClosedStream()
+    else:
+        target = original
+    sys.stdout = _GuardedStdout(target)  # type: ignore[assignment]
+    try:
+        try:
+            code = _main(argv)
+            sys.stdout.flush()  # (what is still buffered fails here, not at the interpreter's exit)
+            return code
+        except SystemExit:  # argparse: --help, --version or a usage error, after its message
+            sys.stdout.flush()
+            raise
+    except _StdoutFailed as failed:
+        if original is not None and original is sys.__stdout__:
+            _silence_stdout()
+        if isinstance(failed.err, BrokenPipeError):
+            return EXIT_PIPE
+        reason = failed.err.strerror or str(failed.err)
+        try:
+            print(f"tracechain: error: cannot write to standard output: {reason}", file=sys.stderr)
+        except (OSError, ValueError):
+            pass
+        return EXIT_ERROR
+    finally:
+        sys.stdout = original
+
+
+def _main(argv: Sequence[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "handler", None):
@@ -305,13 +455,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             check_outputs(args)
             return args.handler(args)
     except TracechainError as err:
-        print(f"tracechain: error: {err}", file=sys.stderr)
+        print(f"tracechain: error: {_printable(str(err))}", file=sys.stderr)
         return err.exit_status
     except KeyboardInterrupt:
         print("tracechain: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
-    except BrokenPipeError:
-        return EXIT_OK
     finally:
         cleanup_spooled()
 

@@ -52,7 +52,14 @@ class ParseReport:
     notes: list[str] = field(default_factory=list)
     fields: dict[str, str] = field(default_factory=dict)
 
+    #: (source, line) of over-long lines the line iterators handed on blanked (newline kept,
+    #: so line numbers hold): counted once, as "line too long", not again as "blank line"
+    blanked: set = field(default_factory=set, repr=False, compare=False)
+
     def skip(self, source: str, line: int, reason: str, detail: str = "") -> None:
+        if reason == "blank line" and self.blanked and (source, int(line)) in self.blanked:
+            self.blanked.discard((source, int(line)))
+            return
         self.skipped[reason] += 1
         if len(self.problems) < MAX_PROBLEMS:
             self.problems.append(Problem(source, int(line), reason, detail[:200]))

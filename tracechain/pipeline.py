@@ -24,7 +24,7 @@ from .events import EventChunk, ParseReport
 from .ingest.base import ReadOptions
 from .ingest.fields import FieldSpec
 from .ingest.registry import detect_parser, get_parser
-from .ingest.sources import Source, expand_sources, quick_thread_switches, read_ahead
+from .ingest.sources import Source, expand_sources, quick_thread_switches, read_ahead, with_line_limit
 from .progress import ReadMeter, make_meter
 from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
@@ -86,7 +86,9 @@ def read_events(
             if parser.kind != "events":
                 raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}), not events")
             report.sources.append(src.name)
-            yield from parser.read(meter.bind(i) if meter is not None else src, options, report)
+            read_src = meter.bind(i) if meter is not None else src
+            read_src = with_line_limit(read_src, report, options.extra.get("max_line_bytes"), options.strict)
+            yield from parser.read(read_src, options, report)
             if meter is not None:
                 meter.finished(i)
     finally:
@@ -172,6 +174,7 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
         for i, (src, parser) in enumerate(plan):
             report.sources.append(src.name)
             read_src = meter.bind(i) if meter is not None else src
+            read_src = with_line_limit(read_src, report, options.extra.get("max_line_bytes"), options.strict)
             if parser.kind == "counts":
                 pre = pre + parser.read_counts(read_src, options, report)
             else:

@@ -32,15 +32,18 @@ def artifact_uri(source: str, base: str | None = None) -> tuple[str, bool] | Non
     The flag says whether the URI is relative."""
     if not source or source.startswith("<"):
         return None
+    from ..ingest.sources import path_of_name
+
     base = os.path.abspath(base or os.getcwd())
-    full = os.path.abspath(source)
+    full = os.path.abspath(path_of_name(source))  # (the file itself, for a name that is not UTF-8)
     try:
         rel = os.path.relpath(full, base)
     except ValueError:  # another drive on Windows
         rel = None
     if rel is None or rel == ".." or rel.startswith(".." + os.sep):
         return Path(full).as_uri(), False
-    return quote(rel.replace(os.sep, "/"), safe="/"), True
+    # percent escapes of the name's bytes (RFC 3986 section 2.1), UTF-8 or not
+    return quote(os.fsencode(rel.replace(os.sep, "/")), safe="/"), True
 
 
 def _text(s: str) -> dict[str, str]:

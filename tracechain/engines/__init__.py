@@ -94,12 +94,15 @@ def count_data(
 
         return count_database(paths[0], table, query, fields, shape, order_by, finished_names)
     if engine == "duckdb":
+        extra = dict(extra or {})
+        max_line_bytes = extra.pop("max_line_bytes", None)  # (the duckdb engine has it for CSV)
         _refuse_extra(extra, False, "duckdb", None)
         if finish_session is not None and finished_names is None:
             raise UsageError("the duckdb engine cannot run a finish_session callback; pass finished_names")
         from .duckdb_engine import count_files
 
-        return count_files(paths, fields, shape, format, order_by, finished_names, strict=strict)
+        return count_files(paths, fields, shape, format, order_by, finished_names, strict=strict,
+                           max_line_bytes=max_line_bytes)
     if order_by is not None:
         raise UsageError("--order-by is a tie-break for database tables (files keep file order); "
                          "it needs --table or --query")

@@ -9,11 +9,12 @@ events of one session at one time, as file order is for the native engine.
 
 from __future__ import annotations
 
-import glob
 import os
+import re
 
 from ..errors import IngestError, UsageError
 from ..ingest.fields import FieldSpec
+from ..ingest.sources import MAX_LINE_BYTES, glob_files, shown_name, walk_files
 from . import sql as S
 from .base import Relation, SqlRunner, count_relation
 
@@ -62,22 +63,13 @@ def expand_files(paths: list[str]) -> list[str]:
         if p == "-":
             raise UsageError("the duckdb engine reads files, not standard input; use --engine native")
         if os.path.isdir(p):
-            found = []
-            for root, dirs, files in os.walk(p):
-                dirs[:] = sorted(x for x in dirs if not x.startswith("."))
-                found.extend(os.path.join(root, f) for f in sorted(files) if not f.startswith("."))
-            if not found:
-                raise UsageError(f"directory {p!r} holds no files")
-            out.extend(sorted(found))
+            out.extend(walk_files(p))  # the native reader's walk: regular files only
         elif os.path.exists(p):
             if not os.path.isfile(p):
                 raise UsageError(f"{p}: the duckdb engine reads files, not pipes; use --engine native")
             out.append(p)
         else:
-            matches = [m for m in sorted(glob.glob(p, recursive=True)) if os.path.isfile(m)]
-            if not matches:
-                raise UsageError(f"no such file: {p!r}")
-            out.extend(matches)
+            out.extend(glob_files(p))
     if not out:
         raise UsageError("no input given")
     return out
@@ -120,7 +112,19 @@ class _Conn:
         try:
             return self.con.execute(stmt, list(params)).fetchall()
         except duckdb.Error as err:
+            too_long = _LINE_SIZE.search(str(err))
+            if too_long:  # DuckDB's CSV reader stops at a line over its bound, even when told to skip errors
+                where = _FILE.search(str(err))
+                raise IngestError(
+                    f"line too long: {too_long.group(2)} bytes, over the limit of {too_long.group(1)} bytes "
+                    "(--max-line-bytes); the duckdb engine stops at such a line, --engine native skips it",
+                    where.group(1) if where else self.where) from None
             raise IngestError(f"DuckDB: {_first_line(err)}", self.where) from None
+
+
+#: DuckDB's words for a CSV line over ``max_line_size`` (from DuckDB 1.x/2.0 messages, checked in a test)
+_LINE_SIZE = re.compile(r"Maximum line size of (\d+) bytes exceeded\. Actual Size: ?(\d+) bytes")
+_FILE = re.compile(r"^\s*file = (.+)$", re.M)
 
 
 def _first_line(err: Exception) -> str:
@@ -182,19 +186,29 @@ def _columns(conn: _Conn, rel_sql: str) -> dict[str, str]:
 
 
 def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, format: str | None = None,
-                order_by: str | None = None, finished_names=None, strict: bool = False):
-    """Counts of event files read by DuckDB; returns ``(TransitionCounts, ParseReport)``."""
+                order_by: str | None = None, finished_names=None, strict: bool = False,
+                max_line_bytes: int | None = None):
+    """Counts of event files read by DuckDB; returns ``(TransitionCounts, ParseReport)``.
+
+    ``max_line_bytes`` (default: the native reader's bound) is DuckDB's ``max_line_size`` for
+    CSV, where a longer line stops the run (an IngestError); DuckDB's JSON reader has no such
+    bound per line, so for JSON Lines the option is refused (the native engine has it).
+    """
     from ..pipeline import ShapeOptions
 
     shape = shape or ShapeOptions()
     _check_shape(shape)
     files = expand_files(list(paths))
+    for f in files:
+        if shown_name(f) != f:  # DuckDB takes file names as UTF-8 text
+            raise UsageError(f"{shown_name(f)}: a file name that is not UTF-8, which DuckDB cannot open; "
+                             "use --engine native (or rename the file)")
     fmts = {file_format(f, format) for f in files}
     if len(fmts) > 1:
         raise UsageError("the duckdb engine reads one format per command; these files hold " + ", ".join(sorted(fmts)))
     fmt = fmts.pop()
     listed = "[" + ", ".join(_lit(os.path.abspath(f)) for f in files) + "]"
-    name = files[0] if len(files) == 1 else f"{files[0]} (+{len(files) - 1} more)"
+    name = shown_name(files[0]) if len(files) == 1 else f"{shown_name(files[0])} (+{len(files) - 1} more)"
     conn = _Conn(_connect(), name)
     fields = fields or FieldSpec()
     errors = "false" if strict else "true"
@@ -202,9 +216,13 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
         if fmt == "parquet":
             scan = f"read_parquet({listed}, hive_partitioning = true, union_by_name = true)"
         elif fmt == "csv":
+            limit = MAX_LINE_BYTES if max_line_bytes is None else int(max_line_bytes)
             scan = (f"read_csv({listed}, header = true, ignore_errors = {errors}, "
-                    "store_rejects = true)")
+                    f"store_rejects = true, max_line_size = {limit})")
         else:
+            if max_line_bytes is not None:
+                raise UsageError("--max-line-bytes: DuckDB's JSON reader reads each line whole, with no bound "
+                                 "per line; use --engine native to bound the lines of JSON Lines")
             # JSON Lines: the three fields are read as text from each object (a line that is no object, or
             # not JSON, gives a row without them, counted as skipped); the names come from the data
             auto = f"read_json({listed}, format = 'newline_delimited', ignore_errors = true)"
@@ -235,7 +253,7 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
         # (Arrow's CSV reader, under the native engine, reads ISO times with fractions as nanoseconds)
         runner = _runner(conn, {}, "ns" if fmt == "csv" else "us")
         counts, report = count_relation(runner, rel, fields, shape, order_by, finished_names)
-        report.sources = list(files)
+        report.sources = [shown_name(f) for f in files]
         if fmt == "csv":
             report.lines_read += len(files)  # the header lines, as the native reader counts them
             rej = conn.run("SELECT COUNT(DISTINCT (file_id, line)) FROM reject_errors "

@@ -200,8 +200,8 @@ def iter_json_values(
                     if nl >= 0:
                         pos = nl + 1
                         break
+                    pos = len(buf)  # (no newline yet: what was read is dropped, not held)
                     if eof:
-                        pos = len(buf)
                         break
                     more()
                 continue

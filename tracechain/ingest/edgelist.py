@@ -35,7 +35,7 @@ from ..counts import END, START, TransitionCounts, _csr
 from ..errors import FieldError, IngestError
 from ..events import ParseReport
 from .base import ReadOptions
-from .sources import DECOMPRESS_ERRORS, Source, open_binary
+from .sources import Source, iter_line_blocks_counted
 
 __all__ = ["EdgeListParser", "INT64_MAX", "parse_count"]
 
@@ -156,11 +156,10 @@ class EdgeListParser:
         return 0.0
 
     def read_counts(self, source: Source, options: ReadOptions, report: ParseReport) -> TransitionCounts:
-        with open_binary(source) as f:
-            try:
-                data = f.read()
-            except DECOMPRESS_ERRORS as err:  # a damaged gzip, bz2 or xz stream
-                raise IngestError(f"cannot decompress: {err}", source.name) from err
+        # read whole (an edge list is small: one row per edge), through the line-block reader so
+        # that a line over the bound is blanked and counted, not held (a damaged compressed
+        # stream is an IngestError there)
+        data = b"".join(bytes(b) for b, _, _ in iter_line_blocks_counted(source, count=False))
         text_head = data.split(b"\n", 1)[0].decode("utf-8", errors="replace")
         try:
             header = next(csv.reader(io.StringIO(text_head, newline="")))

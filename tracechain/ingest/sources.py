@@ -22,12 +22,13 @@ import lzma
 import os
 import queue
 import shutil
+import stat
 import sys
 import tempfile
 import threading
 import zlib
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import BinaryIO, TypeVar
 
 import numpy as np
@@ -43,6 +44,14 @@ DECOMPRESS_ERRORS = (OSError, EOFError, lzma.LZMAError, zlib.error)
 
 #: Bytes read per block; blocks end on a line boundary.
 BLOCK_BYTES = 1 << 24
+
+#: The default bound on the length of one line (bytes, its newline excluded): a longer line
+#: is skipped as "line too long" while its bytes are discarded as they stream by, so memory
+#: stays bounded whatever the input (``--max-line-bytes``).
+MAX_LINE_BYTES = 64 << 20
+
+#: Bytes read at a time while an over-long line is discarded.
+_DISCARD_BYTES = 1 << 20
 
 T = TypeVar("T")
 
@@ -66,6 +75,106 @@ class Source:
     name: str
     path: str
     on_read: Callable[[int], None] | None = field(default=None, compare=False, repr=False)
+    #: the longest line the line iterators hand on, in bytes (None: :data:`MAX_LINE_BYTES`)
+    max_line_bytes: int | None = field(default=None, compare=False, repr=False)
+    #: called with ``(line_number, length, blanked)`` for each line longer than that, whose bytes are
+    #: discarded as they are read; without it such a line is an :class:`IngestError`
+    on_long_line: Callable[[int, int], None] | None = field(default=None, compare=False, repr=False)
+
+
+def _not_regular(mode: int) -> str | None:
+    """What a file of this mode is, when it is not a regular file (None for one)."""
+    if stat.S_ISREG(mode):
+        return None
+    for test, what in ((stat.S_ISDIR, "a directory"), (stat.S_ISFIFO, "a named pipe"),
+                       (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"),
+                       (stat.S_ISSOCK, "a socket")):
+        if test(mode):
+            return what
+    return "not a regular file"
+
+
+def walk_files(directory: str) -> list[str]:
+    """The regular files under ``directory``, recursively, in sorted order; names starting
+    with a dot are skipped, links to directories are not followed, links to regular files are read.
+
+    Anything else met on the way (a device, a named pipe, a socket, a link to one of them, a
+    broken link) is refused with a :class:`UsageError` naming it: a walk reads only regular files
+    (reading ``/dev/zero`` or waiting on a pipe found in a folder would never end). A pipe is
+    read when it is named on its own. Shared by the native reader and the duckdb engine.
+    """
+    found = []
+    for root, dirs, files in os.walk(directory):
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
+        for f in sorted(files):
+            if f.startswith("."):
+                continue
+            path = os.path.join(root, f)
+            try:
+                what = _not_regular(os.stat(path).st_mode)
+            except OSError as err:
+                what = "a broken link" if os.path.islink(path) else f"unreadable ({err.strerror or err})"
+            if what is not None:
+                raise UsageError(f"{_shown(path)}: {what}, found in the folder {_shown(directory)}; a folder is read "
+                                 "for its regular files only (move it away, or name a pipe on its own)")
+            found.append(path)
+    if not found:
+        raise UsageError(f"directory {_shown(directory)!r} holds no files")
+    return sorted(found)
+
+
+def glob_files(pattern: str) -> list[str]:
+    """The regular files a glob pattern matches, sorted (folders it matches are passed over; a
+    device, pipe or socket it matches is refused as in :func:`walk_files`); UsageError when none."""
+    found = []
+    for m in sorted(glob.glob(pattern, recursive=True)):
+        try:
+            what = _not_regular(os.stat(m).st_mode)
+        except OSError:
+            what = "a broken link" if os.path.islink(m) else None
+        if what == "a directory":
+            continue
+        if what is not None:
+            raise UsageError(f"{_shown(m)}: {what}, matched by {_shown(pattern)}; a pattern is read for its "
+                             "regular files only (name a pipe on its own)")
+        found.append(m)
+    if not found:
+        raise UsageError(f"no such file: {_shown(pattern)!r}")
+    return found
+
+
+def shown_name(path: str) -> str:
+    """A path as tracechain names it to users (messages, reports, JSON, HTML): a file name that
+    is not UTF-8 (its bytes kept by the file system encoding's surrogate escapes, PEP 383) has
+    those bytes shown as backslash escapes (``b'\\xff.jsonl'`` is ``\\xff.jsonl``), so that the
+    name is valid text that every output can encode; any other name is itself."""
+    try:
+        path.encode("utf-8")
+        return path
+    except UnicodeEncodeError:
+        pass
+    try:
+        shown = os.fsencode(path).decode("utf-8", "backslashreplace")
+    except UnicodeError:  # pragma: no cover - a file system encoding other than UTF-8
+        shown = path.encode("utf-8", "backslashreplace").decode("ascii")
+    _SHOWN_PATHS.setdefault(shown, path)
+    return shown
+
+
+_shown = shown_name
+
+#: names changed by :func:`shown_name`, back to the path they stand for (SARIF names the file
+#: itself by a URI, whose percent escapes carry any byte)
+_SHOWN_PATHS: dict[str, str] = {}
+
+
+def path_of_name(name: str) -> str:
+    """The path a name from :func:`shown_name` stands for (the name itself when it was not changed)."""
+    return _SHOWN_PATHS.get(name, name)
+
+
+def _source(path: str) -> Source:
+    return Source(shown_name(path), path)
 
 
 def expand_sources(
@@ -73,7 +182,9 @@ def expand_sources(
 ) -> list[Source]:
     """Turn command-line paths (files, directories, globs, ``-``) into sources.
 
-    Directories are walked recursively in sorted order, skipping hidden files.
+    Directories are walked recursively in sorted order, skipping hidden files (see
+    :func:`walk_files`: regular files only). A named pipe (``<(zcat log)``) named on its own
+    is read once, like standard input; a device or socket named on its own is refused.
     ``copied``, when given, is called with the bytes copied from standard input as it is
     copied to its temporary file.
     """
@@ -83,32 +194,46 @@ def expand_sources(
             out.append(_spool_stdin(stdin, copied))
             continue
         if os.path.isdir(p):
-            found = []
-            for root, dirs, files in os.walk(p):
-                dirs[:] = sorted(d for d in dirs if not d.startswith("."))
-                found.extend(os.path.join(root, f) for f in sorted(files) if not f.startswith("."))
-            if not found:
-                raise UsageError(f"directory {p!r} holds no files")
-            out.extend(Source(f, f) for f in sorted(found))
+            out.extend(_source(f) for f in walk_files(p))
             continue
         if os.path.exists(p):
-            if os.path.isfile(p):
-                out.append(Source(p, p))
-            else:  # a named pipe or device (``<(zcat log)``): read once, like standard input
+            what = _not_regular(os.stat(p).st_mode)
+            if what is None:
+                out.append(_source(p))
+            elif what == "a named pipe":  # ``<(zcat log)``: read once, like standard input
                 try:
                     with open(p, "rb") as stream:
-                        out.append(_spool_stdin(stream, copied, name=p))
+                        out.append(_spool_stdin(stream, copied, name=shown_name(p)))
                 except OSError as err:
-                    raise UsageError(f"cannot read {p!r}: {err.strerror or err}") from err
+                    raise UsageError(f"cannot read {_shown(p)!r}: {err.strerror or err}") from err
+            else:
+                raise UsageError(f"{_shown(p)}: {what}; tracechain reads regular files, named pipes and "
+                                 "standard input ('-')")
             continue
-        matches = sorted(glob.glob(p, recursive=True))
-        matches = [m for m in matches if os.path.isfile(m)]
-        if not matches:
-            raise UsageError(f"no such file: {p!r}")
-        out.extend(Source(m, m) for m in matches)
+        out.extend(_source(m) for m in glob_files(p))
     if not out:
         raise UsageError("no input given")
     return out
+
+
+def with_line_limit(source: Source, report, limit: int | None = None, strict: bool = False) -> Source:
+    """``source`` with its over-long lines (longer than ``limit`` bytes, default
+    :data:`MAX_LINE_BYTES`) skipped and counted in ``report`` (a ParseReport) as
+    "line too long" (``strict``: an IngestError)."""
+    limit = MAX_LINE_BYTES if limit is None else int(limit)
+    name = source.name
+
+    def on_long_line(line: int, length: int, blanked: bool) -> None:
+        detail = f"{length} bytes, over the limit of {limit} (--max-line-bytes)"
+        if strict:
+            raise IngestError(f"line too long: {detail}", name, line)
+        report.skip(name, line, "line too long", detail)
+        if blanked:  # the parser sees an empty line there, not to be counted again
+            report.blanked.add((name, int(line)))
+        else:  # the line vanished from the stream: read, and skipped
+            report.lines_read += 1
+
+    return replace(source, max_line_bytes=limit, on_long_line=on_long_line)
 
 
 def _spool_stdin(
@@ -400,6 +525,65 @@ def iter_line_blocks_counted(
         raise ValueError("skip_lines needs count=True")
     spares = _BlockBuffers()
     _keep_freed_memory()
+    limit = source.max_line_bytes if source.max_line_bytes is not None else MAX_LINE_BYTES
+    # a block holds complete lines of up to ``limit`` bytes only when it is no longer than that
+    lengths_checked = limit < block_bytes
+    # line numbers for the "line too long" message are kept also when the caller counts none
+    limit_tracked = True
+
+    def too_long(at: int | None, length: int, blanked: bool = False) -> None:
+        if source.on_long_line is not None:
+            source.on_long_line(at if at is not None else 0, length, blanked)
+            return
+        raise IngestError(f"line too long: {length} bytes, over the limit of {limit} bytes "
+                          "(--max-line-bytes)", source.name, at)
+
+    def discard_line(start: bytes, at: int) -> bytes:
+        """Drop the line ``start`` begins (no newline in it yet) up to its newline, reading
+        and throwing away its bytes; return what follows, from the newline on."""
+        length = len(start)
+        del start
+        scratch = bytearray(_DISCARD_BYTES)
+        view = memoryview(scratch)
+        try:
+            while True:
+                try:
+                    got = _read_into(f, view)
+                except DECOMPRESS_ERRORS as err:
+                    raise IngestError(f"cannot decompress: {err}", source.name, at) from err
+                if not got:
+                    too_long(at, length)
+                    return b""
+                nl = scratch.find(b"\n", 0, got)
+                if nl >= 0:
+                    length += nl - (1 if nl > 0 and scratch[nl - 1] == 13 else 0)
+                    too_long(at, length, True)
+                    # its newline is kept (an empty line), so a reader counting lines itself counts right
+                    return bytes(scratch[nl:got])
+                length += got
+        finally:
+            view.release()
+
+    def check_lengths(block: bytearray, first: int) -> None:
+        """Blank the over-long lines of ``block`` in place (their newline kept, so the line
+        numbers hold) and report each (only needed when blocks exceed the limit)."""
+        a = np.frombuffer(block, dtype=np.uint8)
+        ends = np.flatnonzero(a == 10)
+        starts = np.concatenate(([0], ends[:-1] + 1))
+        lengths = ends - starts
+        if len(ends):  # a CR before the newline is part of the line ending, not of the line
+            lengths -= (a[np.maximum(ends - 1, 0)] == 13) & (lengths > 0)
+        long = np.flatnonzero(lengths > limit)
+        del a
+        if not len(long):
+            return
+        for i in long[::-1]:
+            s0, e0 = int(starts[i]), int(ends[i])
+            n = int(lengths[i])
+            del block[s0:e0]
+            too_long(first + int(i), n, True)
+
+    recheck = False
     with open_binary(source) as f:
         line_no = 1
         rest = b""
@@ -434,22 +618,48 @@ def iter_line_blocks_counted(
             cut = buf.rfind(b"\n")
             if cut < 0:
                 rest = bytes(buf)
+                del buf
+                if len(rest) > limit:
+                    rest = discard_line(rest, line_no)
+                    recheck = True  # what followed the newline may hold several lines
                 continue
             rest = bytes(buf[cut + 1 :])
             del buf[cut + 1 :]
+            if lengths_checked or recheck:
+                check_lengths(buf, line_no)
+                recheck = False
+            else:  # only the first line, which went on from the bytes kept, can be over the limit
+                first_nl = buf.find(b"\n")
+                n = first_nl - (1 if first_nl > 0 and buf[first_nl - 1] == 13 else 0)
+                if n > limit:
+                    del buf[:first_nl]
+                    too_long(line_no, n, True)
+            newlines = count_newlines(buf) if (count or limit_tracked) else None
             if not count:
                 yield buf, None, None
-                spares.give(buf)
-                del buf
-                continue
-            newlines = count_newlines(buf)
-            yield buf, line_no, newlines
+            else:
+                yield buf, line_no, newlines
             spares.give(buf)
             del buf
-            line_no += newlines
+            if newlines is not None:
+                line_no += newlines
+            if len(rest) > limit:
+                rest = discard_line(rest, line_no)
+                recheck = True
         if rest and not skip_lines:
             # (a last line with no newline that is still to be skipped is dropped too)
-            yield bytearray(rest), (line_no if count else None), (count_newlines(rest) if count else None)
+            # (after a discarded line, ``rest`` may hold several lines)
+            last = bytearray(rest)
+            del rest
+            tail = len(last) - last.rfind(b"\n") - 1
+            if tail > limit:
+                too_long(line_no + count_newlines(last), tail)
+                del last[len(last) - tail :]
+            check_lengths(last, line_no)
+            if not last:
+                return
+            yield last, (line_no if count else None), (count_newlines(last) if count else None)
+            return
 
 
 _BOM = b"\xef\xbb\xbf"

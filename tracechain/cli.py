@@ -24,7 +24,7 @@ from .errors import TracechainError, UsageError
 from .ingest.fields import FieldSpec
 from .ingest.registry import available_parsers
 from .ingest.sources import cleanup_spooled
-from .pipeline import ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
+from .pipeline import MAX_ORDER, ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
 from .report.dot import render_dot, render_image
 from .report.json_report import analysis_document, dumps
 from .report.text import render_text
@@ -73,6 +73,30 @@ def _positive_int(text: str) -> int:
     if v < 1:
         raise argparse.ArgumentTypeError("must be at least 1")
     return v
+
+
+def whole_number(lo: int, hi: int | None = None):
+    """An argparse type: a whole number from ``lo`` to ``hi`` (no upper bound when None)."""
+
+    def parse(text: str) -> int:
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"not a whole number: {text[:40]!r}") from None
+        if v < lo:
+            raise argparse.ArgumentTypeError(f"must be at least {lo}")
+        if hi is not None and v > hi:
+            raise argparse.ArgumentTypeError(f"must be at most {hi:,}")
+        return v
+
+    return parse
+
+
+#: a random seed: any whole number from 0 (numpy's generators refuse negative seeds)
+_seed = whole_number(0)
+#: the most sessions ``simulate`` draws and the most posterior draws a command makes (both are held in memory)
+MAX_SESSIONS = 10_000_000
+MAX_DRAWS = 1_000_000
 
 
 def _share(text: str) -> float:
@@ -145,7 +169,7 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     rep.add_argument("--no-collapse-repeats", dest="collapse", action="store_false")
     s.add_argument("--gap", type=parse_duration, metavar="DURATION",
                    help="start a new session after this much inactivity (e.g. 30m)")
-    s.add_argument("--order", type=int, default=1, metavar="K", help="chain order: states are the last K events")
+    s.add_argument("--order", type=int, default=1, metavar="K", help=f"chain order: states are the last K events (1 to {MAX_ORDER})")
     c = p.add_argument_group("workflows with open cases")
     c.add_argument("--terminal", action="append", default=[], metavar="STATE",
                    help="a state in which a case is finished; repeat for several (also 'terminal:' in the mapping)")
@@ -187,7 +211,7 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
     o.add_argument("--extended", action="store_true",
                    help="also report times, removal effects, most likely paths and intervals (see --seed)")
-    o.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
+    o.add_argument("--seed", type=_seed, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
     from .analyze.commands import add_interval_options
 
     add_interval_options(o)
@@ -212,8 +236,8 @@ def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, 
     mapping = load_mapping(args.mapping) if args.mapping else None
     goals = list(args.goal) or (list(mapping.goals) if mapping else [])
     terminal = list(mapping.terminal) if mapping else []
-    if args.order < 1:
-        raise UsageError("--order must be at least 1")
+    if not 1 <= args.order <= MAX_ORDER:
+        raise UsageError(f"--order must be between 1 and {MAX_ORDER}, not {args.order}")
     if not math.isfinite(args.smoothing) or args.smoothing < 0:
         raise UsageError("--smoothing must be a finite non-negative number")
     terminal += [t for t in (getattr(args, "terminal", None) or []) if t not in terminal]

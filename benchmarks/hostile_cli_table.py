@@ -107,6 +107,13 @@ def main(argv=None) -> int:
             "PyYAML or Python's `json` report it) or the option at fault, no input file changed, and a failed",
             "run left no file behind (no partial output, no temporary file).",
             "",
+            "Two of the rows, as a reader would type them (both refused before anything is read or written):",
+            "",
+            "```sh",
+            "tracechain analyze in.jsonl --json in.jsonl         # output over input: exit status 2, in.jsonl untouched",
+            "tracechain analyze in.jsonl --order 99999999999999999999   # exit status 2: --order is 1 to 100",
+            "```",
+            "",
             f"Run {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC, Python {platform.python_version()}, "
             f"{'as root' if root else 'as a normal user'}.",
             "",

@@ -28,7 +28,7 @@ from .errors import TracechainError, UsageError
 from .ingest.fields import FieldSpec
 from .ingest.registry import available_parsers
 from .ingest.sources import cleanup_spooled
-from .pipeline import ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
+from .pipeline import MAX_ORDER, ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
 from .report.dot import render_dot, render_image
 from .report.json_report import analysis_document, dumps
 from .report.text import render_text
@@ -41,7 +41,8 @@ __all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
 
 # moved to tracechain/options.py (shared with the command modules); the names stay here
 from .options import (  # noqa: E402, F401
-    _OUTPUT_OPTIONS, EXIT_ERROR, EXIT_FINDINGS, EXIT_INTERRUPTED, EXIT_OK, _positive_int, _share, count_from_args,
+    _OUTPUT_OPTIONS, EXIT_ERROR, EXIT_FINDINGS, EXIT_INTERRUPTED, EXIT_OK, MAX_DRAWS, MAX_SESSIONS, _positive_int, _seed,
+    _share, count_from_args, whole_number,
     native_only, progress_from_args, shape_from_args,
 )
 EXIT_PIPE = 141  # 128 + SIGPIPE: standard output's reader went away (``| head``); no message
@@ -132,7 +133,7 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     rep.add_argument("--no-collapse-repeats", dest="collapse", action="store_false")
     s.add_argument("--gap", type=parse_duration, metavar="DURATION",
                    help="start a new session after this much inactivity (e.g. 30m)")
-    s.add_argument("--order", type=int, default=1, metavar="K", help="chain order: states are the last K events")
+    s.add_argument("--order", type=int, default=1, metavar="K", help=f"chain order: states are the last K events (1 to {MAX_ORDER})")
     c = p.add_argument_group("workflows with open cases")
     c.add_argument("--terminal", action="append", default=[], metavar="STATE",
                    help="a state in which a case is finished; repeat for several (also 'terminal:' in the mapping)")
@@ -174,7 +175,7 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
     o.add_argument("--extended", action="store_true",
                    help="also report times, removal effects, most likely paths and intervals (see --seed)")
-    o.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
+    o.add_argument("--seed", type=_seed, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
     from .analyze.commands import add_interval_options
 
     add_interval_options(o)

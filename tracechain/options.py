@@ -14,7 +14,7 @@ import math
 
 from .errors import UsageError
 from .ingest.fields import FieldSpec
-from .pipeline import ShapeOptions
+from .pipeline import MAX_ORDER, ShapeOptions
 from .shape.cases import CasePolicy
 from .shape.mapping import load_mapping
 
@@ -38,6 +38,30 @@ def _positive_int(text: str) -> int:
     return v
 
 
+def whole_number(lo: int, hi: int | None = None):
+    """An argparse type: a whole number from ``lo`` to ``hi`` (no upper bound when None)."""
+
+    def parse(text: str) -> int:
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"not a whole number: {text[:40]!r}") from None
+        if v < lo:
+            raise argparse.ArgumentTypeError(f"must be at least {lo}")
+        if hi is not None and v > hi:
+            raise argparse.ArgumentTypeError(f"must be at most {hi:,}")
+        return v
+
+    return parse
+
+
+#: a random seed: any whole number from 0 (numpy's generators refuse negative seeds)
+_seed = whole_number(0)
+#: the most sessions ``simulate`` draws and the most posterior draws a command makes (both are held in memory)
+MAX_SESSIONS = 10_000_000
+MAX_DRAWS = 1_000_000
+
+
 def _share(text: str) -> float:
     try:
         v = float(text.rstrip("%")) / (100.0 if text.endswith("%") else 1.0)
@@ -52,8 +76,8 @@ def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, 
     mapping = load_mapping(args.mapping) if args.mapping else None
     goals = list(args.goal) or (list(mapping.goals) if mapping else [])
     terminal = list(mapping.terminal) if mapping else []
-    if args.order < 1:
-        raise UsageError("--order must be at least 1")
+    if not 1 <= args.order <= MAX_ORDER:
+        raise UsageError(f"--order must be between 1 and {MAX_ORDER}, not {args.order}")
     if not math.isfinite(args.smoothing) or args.smoothing < 0:
         raise UsageError("--smoothing must be a finite non-negative number")
     terminal += [t for t in (getattr(args, "terminal", None) or []) if t not in terminal]

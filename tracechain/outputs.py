@@ -7,7 +7,8 @@
   path), since writing it would destroy the data it is computed from;
 - two outputs naming the same file (``--json X --svg X``), since one would silently replace the
   other;
-- an output whose folder does not exist: tracechain never creates folders.
+- an output whose folder does not exist: tracechain never creates folders;
+- an empty file name (``--json ''``, often an unset shell variable), which would otherwise write nothing.
 
 ``-`` (standard output) is never compared. Devices, FIFOs and sockets given as outputs
 (``/dev/null``) are written in place and are only compared with the inputs.
@@ -57,6 +58,8 @@ def check_outputs(args: argparse.Namespace) -> None:
     outputs = []
     for dest, option in OUTPUT_OPTIONS.items():
         value = getattr(args, dest, None)
+        if value == "":  # `--json ''` (an unset shell variable): refused rather than silently not written
+            raise UsageError(f"{option}: the file name is empty (name a file, or '-' for standard output)")
         if isinstance(value, str) and value and value != "-":
             outputs.append((option, value))
     if not outputs:

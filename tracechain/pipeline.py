@@ -30,7 +30,11 @@ from .shape.cases import CasePolicy
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
 
-__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed"]
+__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed", "MAX_ORDER"]
+
+#: the highest chain order accepted (--order, --max-order, a rules file's 'order:'): counting keeps the
+#: last K-1 codes of every open session, so an order of millions would exhaust memory before reading
+MAX_ORDER = 100
 
 
 @dataclass(frozen=True)

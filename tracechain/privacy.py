@@ -137,11 +137,20 @@ def read_or_create_salt(path: str) -> str:
     return salt
 
 
+def _salt_text(text: str) -> str:
+    """``--salt TEXT``: an empty salt would silently fall back to a random one, so it is refused."""
+    import argparse
+
+    if not text:
+        raise argparse.ArgumentTypeError("the salt must not be empty (leave --salt out for a random one)")
+    return text
+
+
 def add_privacy_options(p) -> None:
     """``--salt``, ``--salt-file`` and ``--raw-keys`` (one definition for every command that shows keys)."""
     g = p.add_argument_group("session keys (personal data)")
     k = g.add_mutually_exclusive_group()
-    k.add_argument("--salt", metavar="TEXT",
+    k.add_argument("--salt", metavar="TEXT", type=_salt_text,
                    help="salt of the keyed hash that pseudonymises session keys (default: a new random salt, "
                         "printed to standard error, never written into an output)")
     k.add_argument("--salt-file", metavar="FILE",

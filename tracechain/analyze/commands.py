@@ -62,13 +62,16 @@ def _iso_time(text: str) -> float:
 def register(subparsers) -> None:
     """Add ``order``, ``simulate`` and ``whatif`` to the ``tracechain`` subparsers action."""
     from ..cli import _add_input_options
+    from ..options import MAX_DRAWS, MAX_SESSIONS, _seed, whole_number
+    from ..pipeline import MAX_ORDER
 
     o = subparsers.add_parser(
         "order", help="which chain order the sessions support (likelihood-ratio tests, AIC, BIC)",
         description="Fit chains of order 0..K to the sessions and compare them: log-likelihood, free parameters, "
                     "AIC, BIC, and the likelihood-ratio test of each order against the next.")
     _add_input_options(o)
-    o.add_argument("--max-order", type=_positive_int, default=3, metavar="K", help="highest order fitted (default 3)")
+    o.add_argument("--max-order", type=whole_number(0, MAX_ORDER), default=3, metavar="K",
+                   help=f"highest order fitted (default 3, at most {MAX_ORDER})")
     o.add_argument("--level", type=_level, default=0.05, metavar="ALPHA", help="significance level of the tests (default 0.05)")
     o.add_argument("--condition", action="store_true",
                    help="condition on the first K events of each session instead of using partial windows")
@@ -92,9 +95,9 @@ def register(subparsers) -> None:
             action.nargs = "*"
             action.help = "event logs (same as --from)"
     s.add_argument("--from", dest="from_paths", nargs="+", default=[], metavar="PATH", help="event logs to fit")
-    s.add_argument("-n", "--sessions", dest="n", type=_positive_int, default=1000, metavar="N",
-                   help="sessions to draw (default 1000)")
-    s.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    s.add_argument("-n", "--sessions", dest="n", type=whole_number(0, MAX_SESSIONS), default=1000,
+                   metavar="N", help=f"sessions to draw (default 1000, at most {MAX_SESSIONS:,}: held in memory)")
+    s.add_argument("--seed", type=_seed, default=0, help="random seed (default 0)")
     s.add_argument("--max-steps", type=_positive_int, default=1000, metavar="N", help="events per session at most")
     s.add_argument("-o", "--output", required=True, metavar="FILE", help="JSON Lines file to write ('-' for stdout)")
     s.set_defaults(handler=cmd_simulate)
@@ -113,8 +116,9 @@ def register(subparsers) -> None:
                    help="remove the transition A → B (A's other exits are renormalised)")
     e.add_argument("--fix-dead-end", dest="edits", action=_Edit, const="fix-dead-end", metavar="S=TARGET:SHARE",
                    help="route SHARE (0-1 or a percentage) of S's exits to TARGET")
-    w.add_argument("--draws", type=_positive_int, default=200, metavar="N", help="posterior draws (default 200; 0: no intervals)")
-    w.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    w.add_argument("--draws", type=whole_number(0, MAX_DRAWS), default=200, metavar="N",
+                   help=f"posterior draws (default 200; 0: no intervals; at most {MAX_DRAWS:,})")
+    w.add_argument("--seed", type=_seed, default=0, help="random seed (default 0)")
     add_level_option(w)
     w.add_argument("--prior", type=float, default=0.5, help="Dirichlet prior per cell (default 0.5, Jeffreys)")
     w.set_defaults(handler=cmd_whatif, edits=None)

@@ -419,8 +419,8 @@ def compare_counts(
         raise UsageError(f"the interval level must be between 0 and 1, not {level!r}")
     if draws < 1:
         raise UsageError("at least one draw is needed")
-    if min_expected <= 0:
-        raise UsageError("the minimum expected count must be positive")
+    if not min_expected > 0 or not math.isfinite(min_expected):  # (NaN passes a plain <= 0)
+        raise UsageError("the minimum expected count must be a positive number")
     if a.sessions == 0 or b.sessions == 0 or a.n_states == 0 or b.n_states == 0:
         raise AnalysisError(f"nothing to compare: side {names[0] if a.n_states == 0 else names[1]} has no sessions")
     goals, terminal = list(goals), list(terminal)

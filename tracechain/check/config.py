@@ -233,6 +233,10 @@ def _input(value: Any, source: str | None, base_dir: str, line: int) -> InputOpt
             raise p.error(f"'gap' must be a positive duration such as 90s, 30m, 1h or a number of seconds, not "
                           f"{raw.get('gap', value['gap'])!r}", "gap")
     order = p.number("order", None, minimum=1, integer=True)
+    from ..pipeline import MAX_ORDER
+
+    if order is not None and order > MAX_ORDER:
+        raise p.error(f"'order' must be at most {MAX_ORDER}, not {order}", "order")
     collapse = p.flag("collapse_repeats", None) if value.get("collapse_repeats") is not None else None
     keep = p.flag("keep_after_goal", None) if value.get("keep_after_goal") is not None else None
     names = {}

@@ -59,7 +59,7 @@ def _diagram_options(p: argparse.ArgumentParser) -> None:
 
 def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
-    from ..options import add_interval_options, add_level_option
+    from ..options import MAX_DRAWS, _seed, _share, add_interval_options, add_level_option, whole_number
     from ..cli import _add_input_options
 
     r = subparsers.add_parser(
@@ -78,7 +78,7 @@ def register(subparsers) -> None:
     o.add_argument("--no-charts", action="store_true", help="leave the charts out")
     o.add_argument("--title", metavar="TEXT", help="title of the report")
     o.add_argument("--top", type=int, default=15, metavar="N", help="rows in the loss tables (default 15)")
-    o.add_argument("--seed", type=int, default=0, help="seed of the interval draws (default 0)")
+    o.add_argument("--seed", type=_seed, default=0, help="seed of the interval draws (default 0)")
     add_interval_options(o)
     o.add_argument("--order-test", action="store_true",
                    help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
@@ -103,15 +103,16 @@ def register(subparsers) -> None:
     t.add_argument("--min-expected", type=float, default=5.0, metavar="N",
                    help="pool successors with an expected count below N (default 5)")
     add_level_option(t)
-    t.add_argument("--draws", type=int, default=1000, help="Dirichlet draws per side (default 1000)")
-    t.add_argument("--seed", type=int, default=0, help="seed of the draws (default 0)")
+    t.add_argument("--draws", type=whole_number(1, MAX_DRAWS), default=1000,
+                   help=f"Dirichlet draws per side (default 1000, at most {MAX_DRAWS:,})")
+    t.add_argument("--seed", type=_seed, default=0, help="seed of the draws (default 0)")
     o = c.add_argument_group("output")
     o.add_argument("--html", metavar="FILE", help="write the comparison as an HTML report")
     o.add_argument("--markdown", "--md", dest="markdown", metavar="FILE", help="write it as Markdown")
     o.add_argument("--dot", metavar="FILE", help="write the comparison diagram as Graphviz DOT")
     o.add_argument("--svg", metavar="FILE", help="write the comparison diagram as SVG")
     o.add_argument("--title", metavar="TEXT", help="title of the report")
-    o.add_argument("--min-edge-share", type=float, default=0.0, metavar="SHARE",
+    o.add_argument("--min-edge-share", type=_share, default=0.0, metavar="SHARE",
                    help="leave out unchanged transitions under this share on both sides (default 0: draw all)")
     o.add_argument("--full-diagram", action="store_true",
                    help="draw every state in the comparison diagram (default: the changed states and their neighbours)")

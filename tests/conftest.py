@@ -49,6 +49,38 @@ def write_jsonl(path: Path, rows: list[dict]) -> Path:
     return path
 
 
+def analysis_of(sessions: dict[str, list[str]], goals: list[str]):
+    """(chain, analysis) of invented sessions ``{session: [events...]}`` with these goals, counted
+    by the streaming counter (first order, one log). Shared by the diagram tests."""
+    from tracechain.analyze.summary import analyze
+    from tracechain.chain import Chain
+    from tracechain.events import EventChunk
+    from tracechain.pipeline import ShapeOptions, count_chunks
+
+    sess, ev = [], []
+    for sid, events in sessions.items():
+        sess += [sid] * len(events)
+        ev += events
+    counts = count_chunks([EventChunk.from_lists("log", sess, ev)], ShapeOptions(goals=tuple(goals)))
+    ch = Chain.from_counts(counts, goals=goals)
+    return ch, analyze(ch)
+
+
+def graph_caption(g: dict) -> str:
+    """The caption of a diagram as Graphviz read it (its ``json0`` graph label), one line per row:
+    plain text for a DOT string label, the text of an HTML-like label (the review layout's caption
+    and legend strip) with its tags removed and entities decoded (HTML 4 entities, from memory)."""
+    import html
+    import re
+
+    label = g.get("label", "")
+    if not label.lstrip().startswith("<"):
+        return label
+    text = re.sub(r"</T[DR]>", "\n", label)
+    text = re.sub(r"<[^>]*>", "", text)
+    return "\n".join(ln for ln in (html.unescape(x) for x in text.split("\n")) if ln.strip())
+
+
 def sessions_to_rows(sessions: dict[str, list[str]], t0: int = 1_700_000_000) -> list[dict]:
     """JSON Lines rows (session_id, timestamp, event) for ``{session: [events...]}``, interleaved."""
     rows = []

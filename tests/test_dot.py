@@ -16,11 +16,9 @@ import pytest
 from tracechain.analyze.summary import analyze
 from tracechain.chain import Chain
 from tracechain.counts import END, START, TransitionCounts
-from tracechain.events import EventChunk
-from tracechain.pipeline import ShapeOptions, count_chunks
 from tracechain.report.dot import render_dot
 
-from conftest import sessions_to_rows, write_jsonl
+from conftest import analysis_of, graph_caption, sessions_to_rows, write_jsonl
 
 graphviz = pytest.importorskip("graphviz")
 
@@ -30,16 +28,6 @@ except graphviz.ExecutableNotFound:  # pragma: no cover
     pytest.skip("the Graphviz 'dot' program is not installed", allow_module_level=True)
 
 SVG = "{http://www.w3.org/2000/svg}"
-
-
-def analysis_of(sessions: dict[str, list[str]], goals: list[str]):
-    sess, ev = [], []
-    for sid, events in sessions.items():
-        sess += [sid] * len(events)
-        ev += events
-    counts = count_chunks([EventChunk.from_lists("log", sess, ev)], ShapeOptions(goals=tuple(goals)))
-    ch = Chain.from_counts(counts, goals=goals)
-    return ch, analyze(ch)
 
 
 def parsed(dot_text: str) -> dict:
@@ -75,13 +63,15 @@ def nasty():
     return ch, a, render_dot(a)
 
 
-def test_dot_accepted_and_no_injected_nodes(nasty):
-    ch, a, text = nasty
-    g = parsed(text)
+@pytest.mark.parametrize("layout", ["review", "classic"])
+def test_dot_accepted_and_no_injected_nodes(nasty, layout):
+    ch, a, _ = nasty
+    g = parsed(render_dot(a, layout=layout))
     names = set(nodes_by_name(g))
     ours = {n for n in names if not n.startswith("lg_")}
-    # exactly one node per chain state, with our own ids: no name became a node of its own
-    assert ours == {f"n{i}" for i in range(ch.n)}
+    # exactly one node per chain state, with our own ids: no name became a node of its own (the
+    # review layout draws no end node: exits are a share in each state)
+    assert ours == {f"n{i}" for i in range(ch.n) if layout == "classic" or i != ch.end}
     assert "evil" not in names and "pwned" not in json.dumps(sorted(names))
 
 
@@ -125,9 +115,10 @@ def test_roles_are_not_told_by_colour_alone(nasty):
     assert "dashed" in dead.get("style", "").split(",")
     assert plain.get("peripheries") in (None, "1")
     assert not {"dashed", "dotted", "bold"} & set(plain.get("style", "").split(","))
-    # the end is a dashed plain box; the start a circle
-    assert nodes[f"n{ch.end}"]["shape"] == "box" and "dashed" in nodes[f"n{ch.end}"]["style"]
     assert nodes[f"n{ch.start}"]["shape"] == "circle"
+    # in the classic layout the end is a dashed plain box
+    classic = nodes_by_name(parsed(render_dot(a, layout="classic")))
+    assert classic[f"n{ch.end}"]["shape"] == "box" and "dashed" in classic[f"n{ch.end}"]["style"]
 
 
 def test_trap_is_framed_by_a_dashed_cluster():
@@ -167,8 +158,9 @@ def test_rare_edge_pruning_states_the_share(rare):
     # Item->end 40, Help<k>->end 4 x 1, Item->Home 2. The ends recorded after the goal are not
     # transitions of the chain (the goal absorbs) and are not drawn, so they are not in the denominator.
     total = 246 + 244 + 4 + 202 + 40 + 4 + 2
-    g = parsed(render_dot(a, min_edge_share=0.005, min_edge_prob=0.1))
-    label = g["label"]
+    # the classic layout, which draws the exits as edges into the end
+    g = parsed(render_dot(a, min_edge_share=0.005, min_edge_prob=0.1, layout="classic"))
+    label = graph_caption(g)
     m = re.search(r"(\d+) rare edges? hidden .* carrying (\d+(?:\.\d+)?)% of all transitions", label)
     assert m, label
     # rare (under 0.5% of all and under 10% of the source's exits): Item -> Home (2/742, 2/244) and
@@ -191,7 +183,7 @@ def test_rare_edge_pruning_states_the_share(rare):
 def test_no_pruning_no_caption(rare):
     ch, a = rare
     g = parsed(render_dot(a, min_edge_share=0.0))
-    assert "rare edge" not in g.get("label", "")
+    assert "rare edge" not in graph_caption(g)
     nodes = {o["_gvid"]: o["name"] for o in g["objects"] if "name" in o}
     drawn = {(nodes[e["tail"]], nodes[e["head"]]) for e in g["edges"]}
     for k in range(4):
@@ -201,7 +193,7 @@ def test_no_pruning_no_caption(rare):
 def test_hidden_states_are_stated():
     sessions = {f"s{k}": ["Home", f"Page{k % 9}"] + (["Paid"] if k % 3 == 0 else []) for k in range(90)}
     ch, a = analysis_of(sessions, ["Paid"])
-    g = parsed(render_dot(a, max_states=4))
+    g = parsed(render_dot(a, max_states=4, layout="classic"))
     # Home (90 visits) and Paid (30) stay; the nine pages have 10 visits each, so two stay and
     # seven are hidden, each with two edges: Home -> page (10) and page -> Paid or end (10).
     # Drawable transitions: start -> Home 90, Home -> pages 90, pages -> Paid/end 90 = 270.

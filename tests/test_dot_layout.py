@@ -13,27 +13,15 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from tracechain.analyze.summary import analyze
-from tracechain.chain import Chain
-from tracechain.events import EventChunk
-from tracechain.pipeline import ShapeOptions, count_chunks
 from tracechain.report.dot import build_diagram
+
+from conftest import analysis_of as chain_of, graph_caption
 
 graphviz = pytest.importorskip("graphviz")
 try:
     graphviz.Source("digraph { a }").pipe(format="svg")
 except graphviz.ExecutableNotFound:  # pragma: no cover
     pytest.skip("the Graphviz 'dot' program is not installed", allow_module_level=True)
-
-
-def chain_of(sessions, goals):
-    sess, ev = [], []
-    for sid, events in sessions.items():
-        sess += [sid] * len(events)
-        ev += events
-    counts = count_chunks([EventChunk.from_lists("log", sess, ev)], ShapeOptions(goals=tuple(goals)))
-    ch = Chain.from_counts(counts, goals=goals)
-    return ch, analyze(ch)
 
 
 def generated_40(seed: int = 7, n_sessions: int = 600):
@@ -70,7 +58,8 @@ def parsed_graph(dot_text: str) -> tuple[nx.DiGraph, dict]:
         if "nodes" not in o and "subgraphs" not in o and o["name"].startswith("n"):
             G.add_node(o["name"])
     for e in g.get("edges", []):
-        G.add_edge(names[e["tail"]], names[e["head"]])
+        if e.get("style") != "invis":  # the review layout's column order, not drawn
+            G.add_edge(names[e["tail"]], names[e["head"]])
     return G, g
 
 
@@ -206,3 +195,160 @@ def test_layout_and_fit_are_checked(big):
         build_diagram(a, layout="fancy")
     with pytest.raises(AnalysisError, match="fit"):
         build_diagram(a, fit="poster")
+
+
+# -- legibility of the presets, measured on what Graphviz draws ----------------------------------
+# Targets: a 16:9 slide shown at 1280 x 720 px with no text under 14 px (the size asked for in the
+# issue; common practice for projected text, no source), a page 960 px wide with no text under
+# 10 px (our own target). The whole diagram must fit the slide, so its scale is the smaller of
+# 1280 / width and 720 / height of the SVG's viewBox (SVG 1.1, 7.7: the viewBox maps onto the
+# viewport; from memory).
+TARGETS = {"slide": (1280, 720, 14.0), "page": (960, None, 10.0)}
+SAMPLE_RUNS = {
+    "shop": ["shop/clickstream.jsonl.gz", "--mapping", "shop/mapping.yaml", "--gap", "30m"],
+    "tickets": ["tickets/ticket_events.csv", "--mapping", "tickets/mapping.yaml", "--stale-after", "2d"],
+    "onboarding": ["edges/warehouse_edges.csv", "--goal", "Home"],
+}
+SVG_NS = "{http://www.w3.org/2000/svg}"
+
+
+def smallest_px(svg: bytes, fit: str) -> float:
+    import xml.etree.ElementTree as ET
+
+    w_px, h_px, _ = TARGETS[fit]
+    root = ET.fromstring(svg)
+    _, _, vw, vh = (float(v) for v in root.get("viewBox").split())
+    scale = w_px / vw if h_px is None else min(w_px / vw, h_px / vh)
+    sizes = [float(t.get("font-size")) for t in root.iter(SVG_NS + "text")]
+    assert sizes
+    return min(sizes) * scale
+
+
+def text_boxes(g: dict) -> list[tuple]:
+    """Every text Graphviz draws (its ``json`` output's text operations, xdot format: ``F`` sets
+    the font size, ``T`` draws text at a baseline point with a width and alignment), as boxes
+    (owner, text, x0, y0, x1, y1); the box spans 0.2 em below the baseline to 0.8 em above."""
+    out = []
+
+    def take(owner, ops):
+        size = 14.0
+        for op in ops:
+            if op["op"] == "F":
+                size = op["size"]
+            elif op["op"] == "T":
+                x, y = op["pt"]
+                w = op["width"]
+                x0 = {"c": x - w / 2, "r": x - w}.get(op["align"], x)
+                out.append((owner, op["text"], x0, y - 0.2 * size, x0 + w, y + 0.8 * size))
+
+    take("graph", g.get("_ldraw_", []))
+    for o in g.get("objects", []):
+        for k in ("_ldraw_", "_xldraw_"):
+            take(o["name"], o.get(k, []))
+    for e in g.get("edges", []):
+        for k in ("_ldraw_", "_xldraw_", "_hldraw_", "_tldraw_"):
+            take(f"edge{e['_gvid']}", e.get(k, []))
+    return out
+
+
+def overlapping(boxes, tol: float = 0.5) -> list[tuple]:
+    import itertools
+
+    return [(a[:2], b[:2]) for a, b in itertools.combinations(boxes, 2)
+            if a[0] != b[0] and min(a[4], b[4]) - max(a[2], b[2]) > tol and min(a[5], b[5]) - max(a[3], b[3]) > tol]
+
+
+def test_overlap_check_can_fail():
+    # two labelled nodes forced onto the same spot (neato with pinned positions): the check sees it
+    g = json.loads(graphviz.Source('graph { a [label="hello", pos="0,0!"]; b [label="hello", pos="0.1,0!"] }',
+                                   engine="neato").pipe(format="json"))
+    assert overlapping(text_boxes(g))
+    g = json.loads(graphviz.Source('graph { a [label="hello", pos="0,0!"]; b [label="hello", pos="3,0!"] }',
+                                   engine="neato").pipe(format="json"))
+    assert not overlapping(text_boxes(g))
+
+
+@pytest.fixture(scope="module")
+def drawn_presets(tmp_path_factory, samples):
+    """Every sample and the generated 40-state chain through ``analyze --fit``, for both presets."""
+    from conftest import run_command, sessions_to_rows, write_jsonl
+
+    tmp = tmp_path_factory.mktemp("fit")
+    runs = {name: [str(samples / argv[0])] + [str(samples / v) if v.endswith(".yaml") else v for v in argv[1:]]
+            for name, argv in SAMPLE_RUNS.items()}
+    rng = np.random.default_rng(7)  # the same seeded funnel as generated_40, written as a log
+    sessions = {}
+    for k in range(600):
+        s = int(rng.integers(0, 4))
+        path = [f"S{s:02d}"]
+        while s < 39 and len(path) < 60:
+            r = rng.random()
+            if r < 0.08:
+                break
+            s = max(0, s - int(rng.integers(1, 3))) if r < 0.2 else min(39, s + int(rng.integers(1, 4)))
+            path.append(f"S{s:02d}")
+        sessions[f"g{k}"] = path
+    runs["generated-40"] = [str(write_jsonl(tmp / "g40.jsonl", sessions_to_rows(sessions))), "--goal", "S39"]
+    out = {}
+    for name, argv in runs.items():
+        for fit in TARGETS:
+            svg, dot = tmp / f"{name}-{fit}.svg", tmp / f"{name}-{fit}.dot"
+            assert run_command(["analyze", *argv, "--fit", fit, "--svg", svg, "--dot", dot, "-q"]) == 0
+            out[(name, fit)] = (svg.read_bytes(), dot.read_text(encoding="utf-8"))
+    return out
+
+
+CASES = [(n, f) for n in [*SAMPLE_RUNS, "generated-40"] for f in TARGETS]
+
+
+@pytest.mark.parametrize("name,fit", CASES)
+def test_no_text_under_the_presets_minimum(drawn_presets, name, fit):
+    svg, _ = drawn_presets[(name, fit)]
+    assert smallest_px(svg, fit) >= TARGETS[fit][2], (name, fit, smallest_px(svg, fit))
+
+
+@pytest.mark.parametrize("name,fit", CASES)
+def test_no_two_texts_overlap(drawn_presets, name, fit):
+    _, dot = drawn_presets[(name, fit)]
+    g = json.loads(graphviz.Source(dot).pipe(format="json"))
+    boxes = text_boxes(g)
+    assert len(boxes) > 10
+    assert not overlapping(boxes), overlapping(boxes)[:5]
+
+
+@pytest.mark.parametrize("name,fit", CASES)
+def test_every_drawn_state_has_an_edge_and_a_path_from_the_start(drawn_presets, name, fit):
+    _, dot = drawn_presets[(name, fit)]
+    G, g = parsed_graph(dot)
+    starts = [o["name"] for o in g["objects"] if o.get("label") == "start"]
+    assert len(starts) == 1
+    reach = nx.descendants(G, starts[0]) | {starts[0]}  # networkx as the oracle
+    assert set(G.nodes) <= reach, sorted(set(G.nodes) - reach)
+    assert all(G.degree(v) > 0 for v in G.nodes)
+
+
+def test_slide_check_can_fail(big):
+    # the same chain with the classic sizes and all 40 states is not legible on a slide
+    ch, a = big
+    svg = graphviz.Source(build_diagram(a, layout="classic").dot).pipe(format="svg")
+    assert smallest_px(svg, "slide") < 14
+
+
+def test_a_state_reached_only_through_hidden_states_gets_a_dotted_stand_in():
+    # Home -> Item0 -> Item1 -> Item2 -> Paid, with a few Home -> Help visits: limited to three states
+    # (Paid, Home and one more), Paid is reached only through items that are not drawn; the stand-in
+    # edge counts them, checked against networkx's shortest path over the whole chain
+    sessions = {f"o{k}": ["Home", "Item0", "Item1", "Item2", "Paid"] for k in range(30)}
+    sessions.update({f"h{k}": ["Home", "Help"] for k in range(40)})
+    ch, a = chain_of(sessions, ["Paid"])
+    d = build_diagram(a, max_states=3, min_edge_share=0.0)
+    G, g = parsed_graph(d.dot)
+    start, paid = f"n{ch.start}", f"n{ch.index('Paid')}"
+    assert set(G.nodes) <= nx.descendants(G, start) | {start}
+    full = nx.DiGraph([(int(i), int(j)) for i, j in zip(*ch.P.nonzero()) if not ch.absorbing_mask[i] and i != j])
+    dotted = [e for e in g["edges"] if e.get("style") == "dotted"]
+    assert len(dotted) == 1
+    tail = g["objects"][dotted[0]["tail"]]["name"]
+    hops = nx.shortest_path_length(full, int(tail[1:]), ch.index("Paid")) - 1
+    assert g["objects"][dotted[0]["head"]]["name"] == paid and dotted[0]["label"] == f"⋯ {hops} not drawn"
+    assert "1 dotted edge (⋯) stands for paths through states not drawn" in graph_caption(g)

@@ -165,11 +165,13 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--max-edges", type=_positive_int, default=None, metavar="N",
                    help="draw at most N edges, weakest hidden first, never one that is a drawn state's last path "
                         "from the start (default: 80 or two per state)")
-    o.add_argument("--layout", choices=("classic", "review"), default="classic",
-                   help="diagram layout: classic (default) or review (exits as a share in each state, columns by "
-                        "the typical step a state is reached, goals and terminals in the last column)")
-    o.add_argument("--fit", choices=("page", "slide"), default=None,
-                   help="diagram type sizes for a page or a 16:9 slide (at least 14 px at 1280 px wide)")
+    o.add_argument("--layout", choices=("review", "classic"), default="review",
+                   help="diagram layout: review (default: exits as a share in each state, ranks by the typical step "
+                        "a state is reached, goals and terminals at the far side) or classic (exits as edges to "
+                        "an end node)")
+    o.add_argument("--fit", choices=("page", "slide"), default="page",
+                   help="diagram sizes for a page (default: ranks top to bottom, text at least 10 px at 960 px "
+                        "wide) or a 16:9 slide (ranks left to right, text at least 14 px at 1280 x 720 px)")
     o.add_argument("--max-states", type=int, default=60, metavar="N", help="draw at most N states (default 60)")
     o.add_argument("--top", type=int, default=10, metavar="N", help="rows in the exit-state table (default 10; 0 for all)")
     o.add_argument("--quiet", "-q", action="store_true", help="no terminal summary")
@@ -271,8 +273,12 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))
     wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
     if wants_diagram:
-        dot_text = render_dot(result, min_edge_share=args.min_edge_share, max_states=args.max_states,
-                              max_edges=args.max_edges, layout=args.layout, fit=args.fit)
+        from .report.dot import fit_diagram
+
+        opts = dict(min_edge_share=args.min_edge_share, max_states=args.max_states, max_edges=args.max_edges,
+                    layout=args.layout)
+        dot_text = (fit_diagram(result, args.fit, **opts).dot if args.fit
+                    else render_dot(result, **opts))
         if args.dot:
             written.append(write_output(args.dot, dot_text))
         for fmt in ("svg", "png", "pdf"):

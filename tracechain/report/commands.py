@@ -134,11 +134,11 @@ def _pseudonymizer(args):
 def _diagram(result, args, groups):
     """(Diagram, svg bytes or None, why missing)"""
     from ..errors import RenderError
-    from .dot import build_diagram, render_image
+    from .dot import build_diagram, fit_diagram, render_image
 
-    d = build_diagram(result, min_edge_share=args.min_edge_share, max_states=args.max_states, groups=groups,
-                      focus=args.focus, radius=args.focus_radius, max_edges=args.max_edges,
-                      layout=args.layout, fit=args.fit)
+    opts = dict(min_edge_share=args.min_edge_share, max_states=args.max_states, groups=groups,
+                focus=args.focus, radius=args.focus_radius, max_edges=args.max_edges, layout=args.layout)
+    d = fit_diagram(result, args.fit, **opts) if args.fit else build_diagram(result, **opts)
     try:
         return d, render_image(d.dot, "svg"), None
     except RenderError as err:

@@ -55,7 +55,7 @@ import scipy.sparse as sp
 from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
-__all__ = ["first_arrival_median", "FIT_PRESETS", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
+__all__ = ["first_arrival_median", "FIT_PRESETS", "fit_diagram", "measure_layout", "legible_px", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
            "resolve_state", "FORMATS"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
@@ -262,7 +262,9 @@ def _bfs_levels(n: int, start: int | None, edges: list[tuple[int, int, float]], 
 def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
                   min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
                   radius: int = 1, rank_by_distance: bool | str = "auto", max_edges: int | None = None,
-                  end_edges: str = "auto", layout: str = "classic", fit: str | None = None) -> Diagram:
+                  end_edges: str = "auto", layout: str = "review", fit: str | None = None,
+                  font_scale: float = 1.0, bare_edges: frozenset = frozenset(), extra_notes: tuple = (),
+                  direction: str | None = None) -> Diagram:
     """The diagram of an analysis, with what it left out.
 
     An edge is *rare*, and hidden, when it carries less than ``min_edge_share`` of all
@@ -296,13 +298,22 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     exit share the last column; loops are not framed (their titles collided with edge labels).
     ``fit`` sets the type sizes for a target: ``"slide"`` (16:9, at least
     ``FIT_PRESETS["slide"]["min_px"]`` px at 1280 px wide: fewer states and edges by default)
-    or ``"page"``; ``None`` keeps the classic sizes.
+    or ``"page"``; ``None`` keeps the classic sizes. :func:`fit_diagram` checks the laid-out result
+    against the preset and adjusts.
+
+    ``font_scale`` multiplies the preset's type sizes; ``bare_edges`` (pairs of chain indices)
+    are drawn without a label, their text kept as the edge's tooltip; ``extra_notes`` are added
+    to the caption (both set by :func:`fit_diagram`); ``direction`` (``"TB"`` or ``"LR"``) overrides
+    the direction of the review layout's ranks (by default top to bottom on a page, else left to right).
     """
     if layout not in ("classic", "review"):
         raise AnalysisError(f"layout must be 'classic' or 'review', not {layout!r}")
     if fit is not None and fit not in FIT_PRESETS:
         raise AnalysisError(f"fit must be one of {', '.join(FIT_PRESETS)}, not {fit!r}")
-    preset = FIT_PRESETS.get(fit) if fit else None
+    preset = dict(FIT_PRESETS[fit]) if fit else None
+    if preset is not None and font_scale != 1.0:
+        for k in ("node", "edge", "caption"):
+            preset[k] = max(1, int(round(preset[k] * font_scale)))
     if preset is not None:
         if max_states == 60:
             max_states = preset["max_states"]
@@ -408,6 +419,12 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         edges, dropped, kept = _prune_connected(edges, others, start_drawn, limit=limit)
         capped_n, capped_w = len(dropped), sum(e[2] for e in dropped)
         capped_kept = max(0, len(edges) - limit)
+    # a drawn state the start does not reach over the drawn edges (its way in runs through states
+    # left out) gets a dotted stand-in edge from the nearest reached state, saying how many
+    # states the path passes that are not drawn
+    shortcuts = _shortcuts(ch, edges, [i for i in range(ch.n) if keep[i]], start_drawn) if start_drawn is not None else []
+    edges += [(i, j, float(Wm[i, j])) for i, j, hops in shortcuts if hops == 0]  # a direct edge: the real one
+    shortcuts = [x for x in shortcuts if x[2] > 0]
     wmax = max((w for _, _, w in edges), default=1.0)
 
     notes: list[str] = []
@@ -440,6 +457,11 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             f"{limit} edges, each state keeping its strongest exit), carrying {100 * capped_w / total:.1f}% of all "
             "transitions"
         )
+    notes.extend(extra_notes)
+    if shortcuts:
+        notes.append(
+            f"{len(shortcuts)} dotted edge{'s (⋯) stand' if len(shortcuts) != 1 else ' (⋯) stands'} for paths "
+            "through states not drawn, so every drawn state shows its way from the start")
     if fold_ends:
         notes.append("sessions ending in a state are shown in its label (⤓ share of its exits), not as edges to the end")
     if selection == "top" and hidden_states:
@@ -464,16 +486,22 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             cap.append(f"{pruned_n + capped_n} weak edges not drawn ({100 * gone_share:.1f}% of transitions)")
         if selection and hidden_states:
             cap.append(f"{hidden_states} states not drawn ({100 * hidden_w / total:.1f}% of transitions)")
+        cap.extend(extra_notes)
     elif preset:
         import textwrap
 
         cap.extend(part for n in notes for part in textwrap.wrap(n, preset["wrap"]))
     else:
         cap.extend(notes)
+    review = layout == "review"
+    # a page scrolls down: its ranks run top to bottom (goals at the bottom); a slide is wide (16:9)
+    rankdir = direction or ("TB" if review and fit == "page" else "LR")
+    # in the review layout the caption and the legend share the graph's label (a strip above the
+    # diagram), so the legend does not widen a column
     out.append(
-        "  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t", nojustify="true",
-                            label=_label(*cap, limit=200) if cap else None, newrank="true", ranksep=0.55,
-                            nodesep=0.5, forcelabels="true")
+        "  graph " + _attrs(rankdir=rankdir, fontname="Helvetica", fontsize=11, labelloc="t", nojustify="true",
+                            label=(_label(*cap, limit=200) if cap else None) if not review else _REVIEW_LABEL,
+                            newrank="true", ranksep=0.55, nodesep=0.5, forcelabels="false" if review else "true")
         + ";"
     )
     fs_node, fs_edge = (preset["node"], preset["edge"]) if preset else (10, 9)
@@ -621,7 +649,7 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             text = (f"{100 * p:.0f}%" if short else f"{100 * p:.0f}% ({int(w):,})") if p < 0.995 else f"{int(w):,}"
         else:
             text = f"{100 * p:.0f}%"
-        kw = dict(penwidth=round(width, 2), label=text)
+        kw = dict(penwidth=round(width, 2), label=text, id=f"e{i}_{j}")
         if i == ch.start:
             kw["label"] = None
             kw["tooltip"] = f"{text} of sessions start here"
@@ -633,10 +661,16 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             present.add("end_edge")
         if layout == "review" and i in level and j in level and level[j] <= level[i]:
             kw["constraint"] = "false"  # a step back or within a column does not move the columns
+        if (i, j) in bare_edges and kw.get("label"):
+            kw["tooltip"] = kw.pop("label")
         if kw.get("label") and i in level and level.get(j) == level[i] and i != j:
             # an edge within one column: dot places its label badly; an external label avoids the overlap
             kw["xlabel"] = kw.pop("label")
         out.append(f"  n{i} -> n{j} " + _attrs(**kw) + ";")
+    for i, j, hops in shortcuts:
+        present.add("shortcut")
+        out.append(f"  n{i} -> n{j} " + _attrs(style="dotted", color=_END_EDGE, fontcolor="#555555", penwidth=1.5,
+                                               label=f"⋯ {hops} not drawn", id=f"s{i}_{j}") + ";")
     if rank_by_distance:
         by_level: dict[int, list[int]] = {}
         for i, lv in level.items():
@@ -655,7 +689,13 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             out.append("  { rank=max; " + " ".join(f"n{i};" for i in sorted(sink_side)) + legend_here + " }")
         elif ch.end is not None and keep[ch.end]:
             out.append(f"  {{ rank=max; n{ch.end}; }}")
-    out.extend(_legend(present, fontsize=preset["edge"] if preset else 9))
+    legend_size = preset["edge"] if preset else 9
+    if review:
+        label = _caption_table(cap, _legend_rows(present), caption_size=preset["caption"] if preset else 11,
+                               legend_size=legend_size, per_row=3 if rankdir == "TB" else 4)
+        out = [ln.replace(_REVIEW_LABEL.text, label) for ln in out]
+    else:
+        out.extend(_legend(present, fontsize=legend_size))
     out.append("}")
     return Diagram(
         dot="\n".join(out) + "\n", notes=tuple(notes), shown=tuple(drawn), pruned_edges=pruned_n,
@@ -677,6 +717,47 @@ def _reach(edges, start: int) -> set[int]:
                 seen.add(v)
                 q.append(v)
     return seen
+
+
+def _shortcuts(ch, edges, drawn: list[int], start: int) -> list[tuple[int, int, int]]:
+    """Stand-in edges (reached state, unreached drawn state, states passed) so that every drawn state
+    is reached from ``start``: repeatedly the nearest unreached drawn state, by a breadth-first search
+    over the whole chain (exits of absorbing states not followed) from every reached state. A drawn
+    state the chain itself does not reach stays without one."""
+    drawn_set = set(drawn)
+    reached = _reach(edges, start)
+    todo = {i for i in drawn if i not in reached and ch.roles[i] not in ("start", "end")}
+    if not todo:
+        return []
+    P = ch.P.tocsr()
+    absorbing = ch.absorbing_mask
+    adj = {i: [j for j in map(int, P.indices[P.indptr[i]:P.indptr[i + 1]]) if j != i] for i in range(ch.n)
+           if not absorbing[i]}
+    out = []
+    while todo:
+        parent = {r: None for r in sorted(reached)}
+        q = deque(sorted(reached))
+        hit = None
+        while q and hit is None:
+            u = q.popleft()
+            for v in adj.get(u, ()):
+                if v not in parent:
+                    parent[v] = u
+                    if v in todo:
+                        hit = v
+                        break
+                    q.append(v)
+        if hit is None:
+            break
+        path = [hit]
+        while parent[path[-1]] is not None:
+            path.append(parent[path[-1]])
+        src = path[-1]
+        out.append((src, hit, len(path) - 2))
+        more = _reach(list(edges) + [(src, hit, 0.0)] + [(a, b, 0.0) for a, b, _ in out], start)
+        reached = {x for x in more if x in drawn_set or x == start}
+        todo -= reached
+    return out
 
 
 def _prune_connected(edges, candidates, start: int | None, limit: int | None = None):
@@ -718,6 +799,93 @@ def _short(name: str, limit: int = 40) -> str:
     return name if len(name) <= limit else name[: limit - 1] + "…"
 
 
+def measure_layout(dot_text: str) -> dict:
+    """What Graphviz draws for ``dot_text``: the SVG's viewBox size and smallest font size (in
+    the drawing's units), and the edges whose external label found no room (their ids).
+
+    Runs the ``dot`` program twice (``-Tsvg`` and ``-Tjson``); raises :class:`RenderError`
+    without it.
+    """
+    import json
+    import xml.etree.ElementTree as ET
+
+    svg = render_image(dot_text, "svg")
+    root = ET.fromstring(svg)
+    vb = [float(v) for v in (root.get("viewBox") or "0 0 0 0").split()]
+    sizes = [float(t.get("font-size")) for t in root.iter("{http://www.w3.org/2000/svg}text") if t.get("font-size")]
+    g = json.loads(render_image(dot_text, "json"))
+    unplaced = [e.get("id") for e in g.get("edges", [])
+                if e.get("xlabel") and not any(k in e for k in ("_xldraw_", "_ldraw_"))]
+    return dict(width=vb[2], height=vb[3], min_font=min(sizes, default=0.0), unplaced=unplaced, svg=svg)
+
+
+def legible_px(m: dict, fit: str) -> float:
+    """The smallest text of a measured layout, in px, shown as large as fits the preset's target."""
+    p = FIT_PRESETS[fit]
+    if not m["width"]:
+        return 0.0
+    scale = p["width_px"] / m["width"]
+    if p["height_px"] and m["height"]:
+        scale = min(scale, p["height_px"] / m["height"])
+    return m["min_font"] * scale
+
+
+def fit_diagram(a: Analysis, fit: str, **kw) -> Diagram:
+    """:func:`build_diagram` for a target (``"slide"`` or ``"page"``), checked on the layout.
+
+    The diagram is laid out by Graphviz and measured: where the smallest text would be under the
+    preset's ``min_px`` at its target size (for a slide, the whole diagram shown in
+    1280 x 720 px), type sizes grow (at most by half); where that is not enough, fewer states are
+    drawn (three quarters each time, at least four) and the caption says so. Edge labels for
+    which Graphviz found no room are dropped (kept as the edge's tooltip) and counted in the
+    caption, so no two texts overlap. Without Graphviz the unchecked diagram is returned.
+    """
+    if fit not in FIT_PRESETS:
+        raise AnalysisError(f"fit must be one of {', '.join(FIT_PRESETS)}, not {fit!r}")
+    want = FIT_PRESETS[fit]["min_px"]
+    scale, bare, notes = 1.0, set(), []
+    max_states = kw.pop("max_states", None)
+    d = build_diagram(a, fit=fit, **kw, **({"max_states": max_states} if max_states else {}))
+    states_now = len([i for i in d.shown if a.chain.roles[i] not in ("start", "end")])
+    try:
+        m = measure_layout(d.dot)
+    except RenderError:
+        return d
+    if fit == "page" and kw.get("layout", "review") == "review" and legible_px(m, fit) < want:
+        # a page scrolls down, so a chain that fans out wide reads better with its ranks left to right
+        alt = build_diagram(a, fit=fit, direction="LR", **kw, **({"max_states": max_states} if max_states else {}))
+        m_alt = measure_layout(alt.dot)
+        if legible_px(m_alt, fit) > legible_px(m, fit):
+            d, m = alt, m_alt
+            kw["direction"] = "LR"
+    for _ in range(8):
+        px = legible_px(m, fit)
+        ids = {tuple(int(x) for x in e[1:].split("_")) for e in m["unplaced"] if e and e.startswith("e")}
+        changed = False
+        if ids - bare:
+            bare |= ids
+            changed = True
+        elif px < want - 1e-9:
+            need = scale * want / px * 1.02 if px > 0 else 2.0
+            if need <= 1.5 and need > scale + 1e-3:
+                scale = need
+            elif states_now > 4:
+                states_now = max(4, int(states_now * 0.75))
+                max_states = states_now
+                scale = 1.0
+            else:
+                break
+            changed = True
+        if not changed:
+            break
+        notes = [f"{len(bare)} edge label{'s' if len(bare) != 1 else ''} left out for lack of room "
+                 "(in the edge's tooltip)"] if bare else []
+        d = build_diagram(a, fit=fit, font_scale=scale, bare_edges=frozenset(bare), extra_notes=tuple(notes),
+                          **kw, **({"max_states": max_states} if max_states else {}))
+        m = measure_layout(d.dot)
+    return d
+
+
 def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60, title: str | None = None,
                min_edge_prob: float = 0.1, groups: dict[str, str] | None = None, focus: str | None = None,
                radius: int = 1, max_edges: int | None = None, **kw) -> str:
@@ -727,12 +895,45 @@ def render_dot(a: Analysis, min_edge_share: float = 0.005, max_states: int = 60,
                          max_edges=max_edges, **kw).dot
 
 
+_REVIEW_LABEL = _Raw("@@tracechain-caption@@")  # replaced by the caption table once the legend is known
+
+
+def _html_text(text: str, limit: int = 200) -> str:
+    """Untrusted text for a Graphviz HTML-like label: control and bidirectional-format
+    characters replaced (as in :func:`dot_quote`), shortened, ``& < > "`` as entities."""
+    s = "".join("\ufffd" if unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp") else ch for ch in str(text))
+    if len(s) > limit:
+        s = s[: limit - 1] + "…"
+    return s.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;").replace('"', "&quot;")
+
+
+def _caption_table(cap: list[str], legend: list[str], caption_size: int, legend_size: int, per_row: int) -> str:
+    """The graph label of the review layout: the caption lines (escaped), then the legend as a
+    strip of (sample, meaning) pairs, ``per_row`` to a row."""
+    rows = [f'<TR><TD COLSPAN="{2 * per_row}"><FONT POINT-SIZE="{caption_size}">{_html_text(c)}</FONT></TD></TR>'
+            for c in cap]
+    strip = []
+    for k in range(0, len(legend), per_row):
+        cells = "".join(legend[k:k + per_row])
+        strip.append(f"<TR>{cells}</TR>")
+    inner = ('<TABLE BORDER="1" STYLE="rounded" COLOR="#bbbbbb" CELLBORDER="0" CELLSPACING="3" CELLPADDING="2">'
+             f'<TR><TD ALIGN="LEFT"><B>legend</B></TD></TR>'
+             f'<TR><TD><TABLE BORDER="0" CELLSPACING="4" CELLPADDING="1">{"".join(strip)}</TABLE></TD></TR></TABLE>')
+    return (f'<<TABLE BORDER="0" CELLSPACING="2" CELLPADDING="0">{"".join(rows)}'
+            f'<TR><TD COLSPAN="{2 * per_row}"><FONT POINT-SIZE="{legend_size}">{inner}</FONT></TD></TR></TABLE>>')
+
+
 def _legend(present: set[str], fontsize: int = 9) -> list[str]:
     """A compact legend of what the diagram shows (only the kinds of node and edge that appear).
 
     One node with a Graphviz HTML-like table (our own fixed text only, never a state name):
     each row shows a sample outline or a line drawn with box-drawing glyphs, then its meaning.
     """
+    return [_legend_node(_legend_rows(present), fontsize)]
+
+
+def _legend_rows(present: set[str]) -> list[str]:
+    """The legend's (sample, meaning) cell pairs for the kinds of node and edge in ``present``."""
     rows = []
     if "goal" in present:
         rows.append(_cell_double("goal", _GOAL_LINE, _GOAL_FILL) + _desc("★ goal: double outline"))
@@ -754,7 +955,9 @@ def _legend(present: set[str], fontsize: int = 9) -> list[str]:
         rows.append(_line("━━━▶", _GOAL_LINE) + _desc("★ into a goal: solid green"))
     if "end_edge" in present:
         rows.append(_line("╍╍╍▶", _END_EDGE) + _desc("into the end: dashed grey"))
-    return [_legend_node(rows, fontsize)]
+    if "shortcut" in present:
+        rows.append(_line("┈┈┈▶", _END_EDGE) + _desc("⋯ a path through states not drawn: dotted"))
+    return rows
 
 
 def _legend_node(rows: list[str], fontsize: int = 9) -> str:
@@ -962,10 +1165,10 @@ def render_image(dot_text: str, fmt: str) -> bytes:
     """Render DOT text to svg, png or pdf with the Graphviz ``dot`` program."""
     import graphviz
 
-    if fmt not in ("svg", "png", "pdf"):
+    if fmt not in ("svg", "png", "pdf", "json"):
         raise RenderError(f"unknown diagram format {fmt!r}")
     try:
-        return graphviz.Source(dot_text).pipe(format=fmt)
+        return graphviz.Source(dot_text).pipe(format=fmt, quiet=True)
     except graphviz.ExecutableNotFound as err:
         raise RenderError(
             "the Graphviz 'dot' program is not installed (Debian/Ubuntu: apt-get install graphviz); "

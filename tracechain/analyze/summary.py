@@ -18,6 +18,7 @@ from ..events import ParseReport
 from .absorbing import AbsorbingResult, absorbing_analysis
 from .classes import ClassesResult, communicating_classes
 from .stuck import OpenCases, open_cases
+from .visits import chain_visits
 from .dead_ends import DeadEnd, ExitState, dead_ends, exit_states, goal_unreachable
 
 __all__ = ["Analysis", "StateRow", "GoalConversion", "analyze"]
@@ -59,6 +60,8 @@ class StateRow:
     steps: float | None
     steps_sd: float | None
     steps_given: dict[str, float | None]
+    open: int = 0  # cases still open (stuck) here, part of the visits
+    in_flight: int = 0  # recent unfinished cases here, part of the visits
 
 
 @dataclass(frozen=True)
@@ -109,7 +112,8 @@ class Analysis:
     def state_rows(self) -> list[StateRow]:
         ch, ab = self.chain, self.absorbing
         W = ch.weights
-        visits = np.asarray(W.sum(axis=1)).ravel()
+        vis = chain_visits(ch)  # arrivals, the one definition of a visit
+        visits = vis.visits
         to_end = W[:, [ch.end]].toarray().ravel() if ch.end is not None else np.zeros(ch.n)
         goal_cols = {int(g): ab.column(int(g)) for g in ch.goals}
         trap_cols = [k for k, nm in enumerate(ab.outcomes) if nm.startswith("trap:")]
@@ -137,6 +141,7 @@ class Analysis:
                 state=ch.label(i), index=i, role=role, visits=int(visits[i]),
                 sessions_lost=int(to_end[i]) if role == "transient" else 0,
                 p_goal=pg, p_any_goal=pany, p_trap=ptrap, steps=steps, steps_sd=sd, steps_given=given,
+                open=int(vis.open[i]), in_flight=int(vis.in_flight[i]),
             ))
         return rows
 

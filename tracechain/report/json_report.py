@@ -18,7 +18,10 @@ from ..analyze.summary import Analysis
 
 __all__ = ["SCHEMA_VERSION", "analysis_document", "dumps", "load_schema"]
 
-SCHEMA_VERSION = "1.0"
+#: 1.1: ``visits`` everywhere counts arrivals in the state (whoever arrives; before, the per-state
+#: rows left out the last visit of open and in-flight cases); state rows gain ``open`` and
+#: ``in_flight``.
+SCHEMA_VERSION = "1.1"
 
 
 def load_schema() -> dict:
@@ -69,7 +72,8 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
         ],
         "states": [
             {
-                "state": r.state, "role": r.role, "visits": r.visits, "sessions_lost": r.sessions_lost,
+                "state": r.state, "role": r.role, "visits": r.visits, "open": r.open, "in_flight": r.in_flight,
+                "sessions_lost": r.sessions_lost,
                 "p_goal": r.p_goal, "p_any_goal": r.p_any_goal, "p_trap": r.p_trap,
                 "expected_steps": r.steps, "steps_sd": r.steps_sd, "steps_given": r.steps_given,
             }

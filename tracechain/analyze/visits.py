@@ -17,6 +17,8 @@ the part of the arrivals not accounted for by departures, ends and open cases, a
 filled when an open-case policy (terminal states) was applied. (The native counter also records
 it in ``meta["open_cases"]["in_flight_states"]``; that record is not used here, since merged counts
 keep the meta of one side only, and serves the tests as an independent tally.)
+With stuck outcomes (:mod:`.stuck_outcome`) the transitions X → ``[stuck] X`` are not departures
+(the cases are still open in X), and the visits of ``[stuck] X`` are X's open cases.
 These definitions are common practice, no source.
 """
 
@@ -47,13 +49,20 @@ def state_visits(counts: TransitionCounts) -> StateVisits:
     n = counts.n_states
     arrivals = np.asarray(counts.counts.sum(axis=0)).ravel().astype(np.int64) + counts.starts
     departures = np.asarray(counts.counts.sum(axis=1)).ravel().astype(np.int64)
-    held = departures + counts.ends + counts.open
+    from .stuck_outcome import stuck_map
+
+    stuck = stuck_map(counts)  # [stuck] X pseudo-states: their "arrivals" are X's open cases
+    for k, x in stuck.items():
+        departures[x] -= int(counts.counts[x, k])
+    opened = counts.open.astype(np.int64).copy()
+    for k in stuck:
+        opened[k] = arrivals[k]
+    held = departures + counts.ends + opened
     in_flight = np.zeros(n, dtype=np.int64)
     if counts.meta.get("open_cases"):
         in_flight = np.maximum(arrivals - held, 0)
     visits = np.maximum(arrivals, held + in_flight)
-    return StateVisits(visits.astype(np.int64), departures, counts.ends.astype(np.int64),
-                       counts.open.astype(np.int64), in_flight)
+    return StateVisits(visits.astype(np.int64), departures, counts.ends.astype(np.int64), opened, in_flight)
 
 
 def chain_visits(chain) -> StateVisits:

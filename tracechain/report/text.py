@@ -97,6 +97,21 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines += _table(["goal", "probability", "sessions"], rows)
         lines.append("")
 
+    oo = a.outcomes
+    if oo is not None:
+        assumed = not (ch.counts is not None and ch.counts.meta.get("stuck_outcomes"))
+        lines.append("Observed outcomes (sessions, counted)" + (
+            " - the chain's figures above and below ASSUME open cases carry on like finished ones "
+            "(--open-cases continue)" if assumed and oo.stuck else ""))
+        orow = [[f"goal {safe_text(g)}", f"{n:,}", _pct(oo.share(n))] for g, n in oo.goals.items()]
+        orow += [[f"finished in {safe_text(t)}", f"{n:,}", _pct(oo.share(n))] for t, n in oo.terminal.items()]
+        orow += [["stuck (open, stale)", f"{oo.stuck:,}", _pct(oo.share(oo.stuck))],
+                 ["in flight (censored)", f"{oo.in_flight:,}", _pct(oo.share(oo.in_flight))]]
+        if oo.ended_elsewhere:
+            orow.append(["ended elsewhere", f"{oo.ended_elsewhere:,}", _pct(oo.share(oo.ended_elsewhere))])
+        lines += _table(["outcome", "sessions", "share"], orow)
+        lines.append("")
+
     lines.append("Dead ends (every observed exit leaves the product)")
     if a.dead_ends:
         lines += _table(["state", "sessions lost", "visits"],

@@ -157,3 +157,17 @@ def test_cli_labels_the_assumption_and_writes_outcomes(tmp_path, capsys):
     doc = json.loads((tmp_path / "c.json").read_text(encoding="utf-8"))
     assert doc["outcomes"]["open_cases"] == "continue"
     assert doc["conversion"]["from_start"] == pytest.approx(2 / 3)
+
+
+def test_a_state_left_only_by_exits_and_stuck_cases_is_still_a_dead_end():
+    # counts by hand: 4 sessions start in s; s -> x 3, s -> ok 1; x: 2 end there, 1 is open there.
+    # No case moves on from x: a dead end losing 2 sessions out of 3 visits (2 ended + 1 open)
+    from tracechain.counts import TransitionCounts
+
+    edges = {("[s]", "s"): 4, ("s", "x"): 3, ("s", "ok"): 1, ("x", "[e]"): 2, ("ok", "[e]"): 1}
+    tc = TransitionCounts.from_edges(edges, "[s]", "[e]")
+    opened = np.array([1 if st == "x" else 0 for st in tc.states])
+    tc = TransitionCounts(tc.states, tc.counts, tc.starts, tc.ends, opened, tc.gap_sum, tc.gap_n,
+                          tc.sessions, tc.events, {}, {"open_cases": {"in_flight": 0}})
+    a = analyze(Chain.from_counts(with_stuck_outcomes(tc), terminal=["ok"]))
+    assert [(a.chain.label(d.state), d.sessions_lost, d.visits) for d in a.dead_ends] == [("x", 2, 3)]

@@ -58,7 +58,12 @@ def dead_ends(chain: Chain) -> tuple[DeadEnd, ...]:
         return ()
     W, visits, to_end = _counts(chain)
     Wc = W.tocoo()
-    other = (Wc.col != Wc.row) & (Wc.col != chain.end)
+    from .stuck_outcome import stuck_map
+
+    off = 1 if chain.start is not None else 0
+    stuck = np.zeros(chain.n, dtype=bool)  # [stuck] X: the open cases of X, not a way on
+    stuck[[k + off for k in stuck_map(chain.counts)]] = True
+    other = (Wc.col != Wc.row) & (Wc.col != chain.end) & ~stuck[Wc.col]
     leaves = np.zeros(chain.n, dtype=bool)
     leaves[Wc.row[other & (Wc.data > 0)]] = True
     out = []

@@ -142,6 +142,11 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                         "every unfinished case); more recent ones are in flight")
     c.add_argument("--as-of", type=_timestamp, metavar="TIME",
                    help="the time ages are measured from, ISO 8601 (default: the latest time in the data)")
+    c.add_argument("--open-cases", choices=("stuck", "continue"), default="stuck",
+                   help="stuck (default): an open case is an outcome, 'stuck in' its last state, in every "
+                        "probability and what-if; continue: the assumption that open cases carry on like the "
+                        "finished ones (they are left out of the estimates). In-flight cases are right-censored "
+                        "either way")
     s.add_argument("--smoothing", type=float, default=0.0, metavar="ALPHA",
                    help="additive smoothing of transition probabilities (default 0)")
 
@@ -239,12 +244,18 @@ def build_chain(args: argparse.Namespace):
     shape, fields, goals, terminal = shape_from_args(args)
     fmt, extra = extra_from_args(args, shape.mapping)
     counts, report = count_from_args(args, shape, fields, fmt, extra)
+    mode = getattr(args, "open_cases", "stuck") or "stuck"
+    if shape.cases is not None and mode == "stuck":
+        from .analyze.stuck_outcome import with_stuck_outcomes
+
+        counts = with_stuck_outcomes(counts)
     chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
     settings = {
         "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,
         "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": counts.meta.get("inactivity_gap_s", shape.gap), "order": shape.order,
         "smoothing": args.smoothing, "mapping": args.mapping,
         "stale_after_seconds": shape.cases.stale_after if shape.cases else None,
+        "open_cases": mode if shape.cases else None,
     }
     return chain, report, settings
 

@@ -174,8 +174,11 @@ class TransitionCounts:
             raise KeyError(state) from None
 
     def visits(self) -> np.ndarray:
-        """Times each state was left or held at the end: out-transitions + ends + open."""
-        return np.asarray(self.counts.sum(axis=1)).ravel() + self.ends + self.open
+        """Arrivals in each state (starts + transitions in), the one definition of a visit: see
+        :mod:`tracechain.analyze.visits` (it also holds the open and in-flight parts)."""
+        from .analyze.visits import state_visits
+
+        return state_visits(self).visits
 
     def edge_count(self, a: State, b: State) -> int:
         return int(self.counts[self.index(a), self.index(b)])

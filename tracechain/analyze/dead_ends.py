@@ -3,7 +3,8 @@
 * A *dead end* is a state that is not a goal and whose observed exits all go to the end
   (or back to itself): every session that gets there leaves the product from there.
 * *Exit states* rank states by the sessions that ended there without converting
-  ("sessions lost"), with the exit rate: sessions lost / visits.
+  ("sessions lost"), with the exit rate: sessions lost / visits (visits are arrivals, see
+  :mod:`tracechain.analyze.visits`).
 * A state is *goal-unreachable* when no path leads from it to a goal, i.e. its absorption
   probability into every goal is exactly 0. This is decided on the graph (reachability),
   not by comparing floating-point numbers with 0.
@@ -41,13 +42,10 @@ class ExitState:
 
 
 def _counts(chain: Chain):
+    from .visits import chain_visits
+
     W = chain.weights
-    visits = np.asarray(W.sum(axis=1)).ravel()
-    if chain.counts is not None:
-        off = 1 if chain.start is not None else 0
-        opened = np.zeros(chain.n)
-        opened[off : off + chain.counts.n_states] = chain.counts.open
-        visits = visits + opened
+    visits = chain_visits(chain).visits  # arrivals: the one definition of a visit
     to_end = np.zeros(chain.n)
     if chain.end is not None:
         to_end = W[:, [chain.end]].toarray().ravel()
@@ -60,7 +58,12 @@ def dead_ends(chain: Chain) -> tuple[DeadEnd, ...]:
         return ()
     W, visits, to_end = _counts(chain)
     Wc = W.tocoo()
-    other = (Wc.col != Wc.row) & (Wc.col != chain.end)
+    from .stuck_outcome import stuck_map
+
+    off = 1 if chain.start is not None else 0
+    stuck = np.zeros(chain.n, dtype=bool)  # [stuck] X: the open cases of X, not a way on
+    stuck[[k + off for k in stuck_map(chain.counts)]] = True
+    other = (Wc.col != Wc.row) & (Wc.col != chain.end) & ~stuck[Wc.col]
     leaves = np.zeros(chain.n, dtype=bool)
     leaves[Wc.row[other & (Wc.data > 0)]] = True
     out = []

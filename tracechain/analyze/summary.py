@@ -18,6 +18,7 @@ from ..events import ParseReport
 from .absorbing import AbsorbingResult, absorbing_analysis
 from .classes import ClassesResult, communicating_classes
 from .stuck import OpenCases, open_cases
+from .visits import chain_visits
 from .dead_ends import DeadEnd, ExitState, dead_ends, exit_states, goal_unreachable
 
 __all__ = ["Analysis", "StateRow", "GoalConversion", "analyze"]
@@ -59,6 +60,9 @@ class StateRow:
     steps: float | None
     steps_sd: float | None
     steps_given: dict[str, float | None]
+    open: int = 0  # cases still open (stuck) here, part of the visits
+    in_flight: int = 0  # recent unfinished cases here, part of the visits
+    p_stuck: float | None = None  # P(ending stuck in some state | here), with stuck outcomes only
 
 
 @dataclass(frozen=True)
@@ -73,6 +77,7 @@ class Analysis:
     notes: tuple[str, ...] = ()
     settings: dict = field(default_factory=dict)
     open_cases: OpenCases | None = None
+    outcomes: object = None  # ObservedOutcomes with an open-case policy
 
     # -- headline figures -------------------------------------------------------------
     @property
@@ -109,10 +114,16 @@ class Analysis:
     def state_rows(self) -> list[StateRow]:
         ch, ab = self.chain, self.absorbing
         W = ch.weights
-        visits = np.asarray(W.sum(axis=1)).ravel()
+        vis = chain_visits(ch)  # arrivals, the one definition of a visit
+        visits = vis.visits
         to_end = W[:, [ch.end]].toarray().ravel() if ch.end is not None else np.zeros(ch.n)
         goal_cols = {int(g): ab.column(int(g)) for g in ch.goals}
         trap_cols = [k for k, nm in enumerate(ab.outcomes) if nm.startswith("trap:")]
+        from .stuck_outcome import stuck_map
+
+        off = 1 if ch.start is not None else 0
+        stuck_idx = {k + off for k in stuck_map(ch.counts)}
+        stuck_cols = [k for k, st in enumerate(ab.outcome_states) if len(st) == 1 and st[0] in stuck_idx]
         rows = []
         for i in range(ch.n):
             r = ab.row(i)
@@ -125,7 +136,9 @@ class Analysis:
                 var = ab.steps_var[r]
                 sd = _num(math.sqrt(var)) if math.isfinite(var) else None
                 given = {ab.outcomes[c]: _num(v[r]) for c, v in ab.steps_given.items()}
+                pstuck = _prob(sum(ab.B[r, c] for c in stuck_cols)) if stuck_idx else None
             else:
+                pstuck = (1.0 if i in stuck_idx else 0.0) if stuck_idx else None
                 in_trap = any(i in ab.outcome_states[c] for c in trap_cols)
                 pg = {ch.label(g): (1.0 if g == i else 0.0) for g in goal_cols}
                 pany = (1.0 if i in goal_cols else 0.0) if goal_cols else None
@@ -137,6 +150,7 @@ class Analysis:
                 state=ch.label(i), index=i, role=role, visits=int(visits[i]),
                 sessions_lost=int(to_end[i]) if role == "transient" else 0,
                 p_goal=pg, p_any_goal=pany, p_trap=ptrap, steps=steps, steps_sd=sd, steps_given=given,
+                open=int(vis.open[i]), in_flight=int(vis.in_flight[i]), p_stuck=pstuck,
             ))
         return rows
 
@@ -180,17 +194,34 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
                 "(a session that leaves a goal and comes back counts again), and the conversion probability, "
                 "which treats goals as absorbing, is not the observed share of sessions"
             )
-    sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink"]
+    from .stuck_outcome import observed_outcomes, stuck_map
+
+    off = 1 if chain.start is not None else 0
+    stuck_idx = {k + off for k in stuck_map(chain.counts)}
+    sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink" and i not in stuck_idx]
     if sinks:
         notes.append(f"{len(sinks)} state(s) have no observed exit and are treated as absorbing: {', '.join(sinks[:5])}")
     oc = open_cases(chain.counts) if chain.counts is not None else None
+    outcomes = observed_outcomes(chain)
     if oc is not None and oc.open_total:
+        if stuck_idx:
+            notes.append(
+                f"{oc.open_total} open case(s) (unfinished, older than the stale limit) are an outcome: 'stuck in' "
+                "their last state ([stuck] X), in every probability and what-if"
+            )
+        else:
+            notes.append(
+                f"assumption (--open-cases continue): {oc.open_total} open case(s) are left out of the estimates, "
+                "as if they will carry on like the cases that finished; conversion and P(goal | state) are "
+                "then not observed outcomes"
+            )
+    if oc is not None and oc.in_flight:
         notes.append(
-            f"{oc.open_total} open case(s) are counted as stuck in their last state, not as exits"
-            + (f"; {oc.in_flight} recent unfinished case(s) are in flight (neither)" if oc.in_flight else "")
+            f"{oc.in_flight} recent unfinished case(s) are in flight: right-censored (their last visit counts as a "
+            "visit but not in the estimates)"
         )
     return Analysis(
         chain=chain, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
         exits=exit_states(chain, top), unreachable=goal_unreachable(chain), report=report,
-        notes=tuple(notes), settings=dict(settings or {}), open_cases=oc,
+        notes=tuple(notes), settings=dict(settings or {}), open_cases=oc, outcomes=outcomes,
     )

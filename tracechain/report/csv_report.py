@@ -1,7 +1,8 @@
 """Per-state figures as CSV, safe to open in a spreadsheet.
 
-One row per state of the data (plus the start): role, visits, sessions lost, whether it is a
-dead end, sessions still open, the probability of reaching each goal, expected steps (empty
+One row per state of the data (plus the start): role, visits (arrivals in the state, see
+:mod:`tracechain.analyze.visits`), sessions lost, whether it is a dead end, cases still open
+there and cases in flight there (both part of the visits), the probability of reaching each goal, expected steps (empty
 when infinite or undefined), and the mean time to the next event in seconds. Given the extended
 analysis, the start's row also carries the intervals of its conversion and expected steps, with
 the level and the method named in the column ``interval`` (e.g. ``95% session bootstrap``).
@@ -47,13 +48,9 @@ def render_csv(a: Analysis, extended=None) -> str:
     goals = a.goal_labels
     dead = {d.state for d in a.dead_ends}
     dwell = _dwell(a)
-    opened = {}
-    if ch.counts is not None:
-        off = 1 if ch.start is not None else 0
-        opened = {k + off: int(v) for k, v in enumerate(ch.counts.open) if v}
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\r\n")
-    header = ["state", "role", "visits", "sessions_lost", "dead_end", "still_open"]
+    header = ["state", "role", "visits", "sessions_lost", "dead_end", "still_open", "in_flight"]
     header += [f"p_reach:{g}" for g in goals]
     header += ["p_any_goal", "expected_steps", "steps_sd", "mean_seconds_to_next_event"]
     civ = getattr(extended, "conversion_interval", None)
@@ -71,7 +68,7 @@ def render_csv(a: Analysis, extended=None) -> str:
             continue
         d = dwell.get(r.index)
         row = [csv_cell(r.state), r.role, str(r.visits), str(r.sessions_lost), "yes" if r.index in dead else "no",
-               str(opened.get(r.index, 0))]
+               str(r.open), str(r.in_flight)]
         row += [_f(r.p_goal.get(g)) for g in goals]
         row += [_f(r.p_any_goal), _f(r.steps), _f(r.steps_sd), _f(d[0]) if d else ""]
         if with_iv:

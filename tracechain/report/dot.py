@@ -334,11 +334,12 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     W = Wm.tocoo()
     drawable = ~ch.absorbing_mask[W.row]
     total = float(W.data[drawable].sum()) or 1.0
-    visits = np.asarray(Wm.sum(axis=1)).ravel()
-    opened = np.zeros(ch.n, dtype=np.int64)
-    if has_counts:
-        off = 1 if ch.start is not None else 0
-        opened[off: off + ch.counts.n_states] = ch.counts.open
+    from ..analyze.visits import chain_visits
+
+    _vis = chain_visits(ch)  # arrivals: the one definition of a visit (open and in-flight cases included)
+    visits = _vis.visits
+    opened = _vis.open
+    flying = _vis.in_flight
     roles = ch.roles
     dead = {d.state for d in a.dead_ends}
     goals = [int(g) for g in ch.goals]
@@ -516,10 +517,12 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
     def node_line(i: int) -> str:
         role = roles[i]
         name = ch.label(i)
-        v = int(visits[i] + opened[i])
+        v = int(visits[i])
         extra = f"{v:,} visits" if has_counts else None
         if has_counts and opened[i]:
             extra += f" · {int(opened[i]):,} still open"
+        if has_counts and flying[i]:
+            extra += f" · {int(flying[i]):,} in flight"
         foc = dict(penwidth=3) if i == focus_idx else {}
         tag = (["◎ focus"] if i == focus_idx else [])
         if i in starts_of and starts_of[i][1] >= 0.01:  # under 1% of starts: the edge's width says enough

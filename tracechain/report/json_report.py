@@ -18,7 +18,10 @@ from ..analyze.summary import Analysis
 
 __all__ = ["SCHEMA_VERSION", "analysis_document", "dumps", "load_schema"]
 
-SCHEMA_VERSION = "1.0"
+#: 1.1: ``visits`` everywhere counts arrivals in the state (whoever arrives; before, the per-state
+#: rows left out the last visit of open and in-flight cases); state rows gain ``open`` and
+#: ``in_flight`` (and ``p_stuck``); stale open cases are an outcome by default (``outcomes``).
+SCHEMA_VERSION = "1.1"
 
 
 def load_schema() -> dict:
@@ -69,13 +72,15 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
         ],
         "states": [
             {
-                "state": r.state, "role": r.role, "visits": r.visits, "sessions_lost": r.sessions_lost,
-                "p_goal": r.p_goal, "p_any_goal": r.p_any_goal, "p_trap": r.p_trap,
+                "state": r.state, "role": r.role, "visits": r.visits, "open": r.open, "in_flight": r.in_flight,
+                "sessions_lost": r.sessions_lost,
+                "p_goal": r.p_goal, "p_any_goal": r.p_any_goal, "p_trap": r.p_trap, "p_stuck": r.p_stuck,
                 "expected_steps": r.steps, "steps_sd": r.steps_sd, "steps_given": r.steps_given,
             }
             for r in a.state_rows()
         ],
         "open_cases": _open_cases(a),
+        "outcomes": _outcomes(a),
         "notes": list(a.notes),
     }
     if extended is not None:
@@ -97,6 +102,18 @@ def _open_cases(a: Analysis) -> dict[str, Any] | None:
              "p90_age_s": r.p90_age_s, "mean_dwell_s": r.mean_dwell_s}
             for r in oc.states
         ],
+    }
+
+
+def _outcomes(a: Analysis) -> dict[str, Any] | None:
+    o = a.outcomes
+    if o is None:
+        return None
+    return {
+        "sessions": o.sessions, "goals": dict(o.goals), "terminal": dict(o.terminal), "stuck": o.stuck,
+        "in_flight": o.in_flight, "ended_elsewhere": o.ended_elsewhere,
+        "open_cases": a.settings.get("open_cases") or ("stuck" if a.chain.counts is not None
+                                                       and a.chain.counts.meta.get("stuck_outcomes") else "continue"),
     }
 
 

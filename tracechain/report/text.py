@@ -101,6 +101,21 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines += _table(["goal", "probability", "sessions"], rows)
         lines.append("")
 
+    oo = a.outcomes
+    if oo is not None:
+        assumed = not (ch.counts is not None and ch.counts.meta.get("stuck_outcomes"))
+        lines.append("Observed outcomes (sessions, counted)" + (
+            " - the chain's figures above and below ASSUME open cases carry on like finished ones "
+            "(--open-cases continue)" if assumed and oo.stuck else ""))
+        orow = [[f"goal {safe_text(g)}", f"{n:,}", _pct(oo.share(n))] for g, n in oo.goals.items()]
+        orow += [[f"finished in {safe_text(t)}", f"{n:,}", _pct(oo.share(n))] for t, n in oo.terminal.items()]
+        orow += [["stuck (open, stale)", f"{oo.stuck:,}", _pct(oo.share(oo.stuck))],
+                 ["in flight (censored)", f"{oo.in_flight:,}", _pct(oo.share(oo.in_flight))]]
+        if oo.ended_elsewhere:
+            orow.append(["ended elsewhere", f"{oo.ended_elsewhere:,}", _pct(oo.share(oo.ended_elsewhere))])
+        lines += _table(["outcome", "sessions", "share"], orow)
+        lines.append("")
+
     lines.append("Dead ends (every observed exit leaves the product)")
     if a.dead_ends:
         lines += _table(["state", "sessions lost", "visits"],
@@ -158,18 +173,23 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
     rows = a.state_rows()
     goal_names = a.goal_labels
     given_cols = [o for o in a.absorbing.outcomes if o in goal_names]
-    headers = ["state", "role", "visits"] + [f"P({safe_text(g, 20)})" for g in goal_names]
+    with_cases = a.open_cases is not None
+    headers = ["state", "role", "visits"] + (["open", "in flight"] if with_cases else [])
+    headers += [f"P({safe_text(g, 20)})" for g in goal_names]
     headers += ["steps to absorption", "sd"] + [f"steps | {safe_text(g, 20)}" for g in given_cols]
     body = []
     shown = [r for r in rows if r.role in ("start", "transient", "sink", "terminal", "goal")]
     shown.sort(key=lambda r: (r.role != "start", -r.visits))
     for r in shown[:max_states]:
         cells = [safe_text(r.state, 40), r.role, f"{r.visits:,}"]
+        if with_cases:
+            cells += [f"{r.open:,}", f"{r.in_flight:,}"]
         cells += [_pct(r.p_goal.get(g)) for g in goal_names]
         cells += [_num(r.steps), _num(r.steps_sd)]
         cells += ["-" if r.steps_given.get(g) is None else _num(r.steps_given.get(g)) for g in given_cols]
         body.append(cells)
-    lines.append("Per state (probability of reaching each goal, expected steps to absorption)")
+    lines.append("Per state (visits: arrivals in the state; probability of reaching each goal, expected steps "
+                 "to absorption)")
     lines += _table(headers, body, right=set(range(2, len(headers))))
     if len(shown) > max_states:
         lines.append(f"  ... {len(shown) - max_states} more states in the JSON output (--json)")

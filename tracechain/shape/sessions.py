@@ -551,8 +551,13 @@ class SessionCounter:
             for c, a in zip(states[open_mask], (as_of - rt[open_mask]) if as_of is not None else
                             np.full(int(open_mask.sum()), np.nan)):
                 ages.setdefault(state_label(labels[c - 2]), []).append(float(a))
+            flying: dict[str, int] = {}
+            for c in states[flight_mask]:
+                lab = state_label(labels[c - 2])
+                flying[lab] = flying.get(lab, 0) + 1
             info = {"as_of": as_of, "stale_after_s": cases.stale_after, "terminal": sorted(cases.terminal),
-                    "in_flight": int(flight_mask.sum()), "finished": int(finished.sum()), "ages": ages}
+                    "in_flight": int(flight_mask.sum()), "finished": int(finished.sum()), "ages": ages,
+                    "in_flight_states": flying}
         ended = live[~open_mask & ~flight_mask]
         self._emit(self._c_state[ended], np.full(len(ended), _E), np.full(len(ended), np.nan),
                    self._c_line[ended], self._c_src[ended], ended)

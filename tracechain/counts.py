@@ -173,13 +173,6 @@ class TransitionCounts:
         except ValueError:
             raise KeyError(state) from None
 
-    def visits(self) -> np.ndarray:
-        """Arrivals in each state (starts + transitions in), the one definition of a visit: see
-        :mod:`tracechain.analyze.visits` (it also holds the open and in-flight parts)."""
-        from .analyze.visits import state_visits
-
-        return state_visits(self).visits
-
     def edge_count(self, a: State, b: State) -> int:
         return int(self.counts[self.index(a), self.index(b)])
 

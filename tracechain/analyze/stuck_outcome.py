@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..counts import TransitionCounts, _csr, state_label
+from .visits import state_visits, stuck_map  # noqa: F401  (stuck_map: part of this module's interface)
 
 __all__ = ["STUCK_PREFIX", "with_stuck_outcomes", "stuck_map", "ObservedOutcomes", "observed_outcomes",
            "OPEN_CASE_MODES"]
@@ -33,17 +34,6 @@ STUCK_PREFIX = "[stuck] "
 #: ``stuck``: open cases are an outcome (the default); ``continue``: the assumption that open
 #: cases carry on like the finished ones (they are left out of the estimates).
 OPEN_CASE_MODES = ("stuck", "continue")
-
-
-def stuck_map(counts: TransitionCounts | None) -> dict[int, int]:
-    """``{index of [stuck] X: index of X}`` in ``counts`` (empty without stuck outcomes)."""
-    if counts is None:
-        return {}
-    m = counts.meta.get("stuck_outcomes") or {}
-    if not m:
-        return {}
-    pos = {state_label(s): k for k, s in enumerate(counts.states)}
-    return {pos[a]: pos[b] for a, b in m.items() if a in pos and b in pos}
 
 
 def with_stuck_outcomes(counts: TransitionCounts) -> TransitionCounts:
@@ -106,8 +96,6 @@ def observed_outcomes(chain) -> ObservedOutcomes | None:
     c = chain.counts
     if c is None or not c.meta.get("open_cases"):
         return None
-    from .visits import state_visits
-
     sv = state_visits(c)
     off = 1 if chain.start is not None else 0
     stuck_idx = set(stuck_map(c))

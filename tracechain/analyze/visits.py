@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..counts import TransitionCounts
+from ..counts import TransitionCounts, state_label
 
 __all__ = ["StateVisits", "state_visits", "chain_visits"]
 
@@ -44,13 +44,22 @@ class StateVisits:
     in_flight: np.ndarray  # recent unfinished cases there
 
 
+def stuck_map(counts: TransitionCounts | None) -> dict[int, int]:
+    """``{index of [stuck] X: index of X}`` in ``counts`` (empty without stuck outcomes)."""
+    if counts is None:
+        return {}
+    m = counts.meta.get("stuck_outcomes") or {}
+    if not m:
+        return {}
+    pos = {state_label(s): k for k, s in enumerate(counts.states)}
+    return {pos[a]: pos[b] for a, b in m.items() if a in pos and b in pos}
+
+
 def state_visits(counts: TransitionCounts) -> StateVisits:
     """The visit figures of ``counts``, one per state of ``counts.states``."""
     n = counts.n_states
     arrivals = np.asarray(counts.counts.sum(axis=0)).ravel().astype(np.int64) + counts.starts
     departures = np.asarray(counts.counts.sum(axis=1)).ravel().astype(np.int64)
-    from .stuck_outcome import stuck_map
-
     stuck = stuck_map(counts)  # [stuck] X pseudo-states: their "arrivals" are X's open cases
     for k, x in stuck.items():
         departures[x] -= int(counts.counts[x, k])

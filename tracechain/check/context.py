@@ -120,7 +120,9 @@ class CheckContext:
         """Per chain state: times it was left or held at the end (sessions for the start,
         sessions ended for the end)."""
         out = np.zeros(self.chain.n, dtype=np.int64)
-        v = self.counts.visits()
+        from ..analyze.visits import state_visits
+
+        v = state_visits(self.counts).visits
         out[self._off:self._off + len(v)] = v
         if self.chain.start is not None:
             out[self.chain.start] = int(self.counts.starts.sum())

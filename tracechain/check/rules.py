@@ -595,7 +595,9 @@ class RegressionRule(Rule):
 
         # (1) exit shares per state: visits that ended the session
         def exits(c):
-            v, e = c.visits(), c.ends
+            from ..analyze.visits import state_visits
+
+            v, e = state_visits(c).visits, c.ends
             return {state_label(s): (int(e[k]), int(v[k])) for k, s in enumerate(c.states)}
 
         before, now = exits(base), exits(ctx.counts)

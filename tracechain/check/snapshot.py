@@ -55,7 +55,9 @@ def snapshot_document(chain: Chain, settings: dict | None = None) -> dict[str, A
     if c is None:
         raise ValueError("a snapshot needs a chain built from counts")
     off = 1 if chain.start is not None else 0
-    visits = c.visits()
+    from ..analyze.visits import state_visits
+
+    visits = state_visits(c).visits
     states = []
     for k, s in enumerate(c.states):
         entry: dict[str, Any] = {"name": state_label(s), "role": chain.roles[k + off], "visits": int(visits[k]),

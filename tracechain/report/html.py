@@ -401,7 +401,9 @@ def _loss_sections(a: Analysis, pseudo: Pseudonymizer, top: int) -> list[Section
     c = ch.counts
     if c is not None and int(c.open.sum()) > 0:
         off = 1 if ch.start is not None else 0
-        visits = c.visits()
+        from ..analyze.visits import state_visits
+
+        visits = state_visits(c).visits
         idx = [k for k in np.argsort(-c.open, kind="stable") if c.open[k] > 0]
         from ..analyze.stuck import open_cases
         from ..counts import state_label

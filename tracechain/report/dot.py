@@ -65,6 +65,7 @@ _GOAL_LINE = "#007a5a"
 _DEAD_FILL = "#fbe3c0"  # tint of orange #E69F00
 _TERM_FILL = "#e4e4e4"  # neutral grey
 _TRAP_LINE = "#D55E00"  # vermillion
+_STUCK_FILL = "#d5ebf8"  # tint of sky blue #56B4E9
 _UP = "#0072B2"  # blue
 _DOWN = "#D55E00"  # vermillion
 _MUTED = "#b3b3b3"
@@ -513,6 +514,11 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
 
     present: set[str] = set()
 
+    trapped = {int(x) for cl in a.classes.traps for x in cl.states}
+    # stuck: open cases (sessions not finished when the logs end, counted where they stopped) make up
+    # at least 1% of the state's visits (below that the count stays in the label as text)
+    stuck = {i for i in range(ch.n) if opened[i] > 0 and opened[i] >= 0.01 * (visits[i] + opened[i])}
+
     def node_line(i: int) -> str:
         role = roles[i]
         name = ch.label(i)
@@ -548,16 +554,43 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             present.add("terminal")
             return f"  n{i} " + _attrs(label=_label(*lines, "■ finished"), shape="box", style="filled,bold",
                                        fillcolor=_TERM_FILL, **foc) + ";"
+        # the codes below combine: outline shape (eight-sided: stuck), line style (dashed: dead end,
+        # dotted: no observed exit) and cut corners (diagonals: in a closed loop), each with a glyph
+        style = ["rounded"]
+        kw: dict = {}
+        codes = []
         if role == "sink":
             present.add("sink")
-            return f"  n{i} " + _attrs(label=_label(*lines, "no observed exit"), style="rounded,dotted", **foc) + ";"
+            style.append("dotted")
+            codes.append("no observed exit")
         if i in dead:
             present.add("dead")
-            more = f" · {v:,} visits" if has_counts else ""
-            return f"  n{i} " + _attrs(label=_label(*lines, f"⊘ dead end{more}"), style="rounded,filled,dashed",
-                                       fillcolor=_DEAD_FILL, **foc) + ";"
-        present.add("state")
-        return f"  n{i} " + _attrs(label=_label(*lines, *([extra] if extra else [])), **foc) + ";"
+            style += ["filled", "dashed"]
+            kw["fillcolor"] = _DEAD_FILL
+            codes.append("⊘ dead end")
+        if i in trapped:
+            present.add("trapped")
+            style.append("diagonals")
+            codes.append("↻ loop, no way out")
+        if i in stuck:
+            present.add("stuck")
+            kw["shape"] = "octagon"
+            style = [x for x in style if x != "rounded"]
+            if "filled" not in style:
+                style.append("filled")
+                kw["fillcolor"] = _STUCK_FILL
+            kw["penwidth"] = 2
+            codes.append(f"◷ {int(opened[i]):,} still open")
+            extra = f"{v:,} visits" if has_counts else None
+        if not codes:
+            present.add("state")
+        if i in dead and has_counts:
+            k = codes.index("⊘ dead end")
+            codes[k] += f" · {v:,} visits"
+            extra = None
+        kw.update(foc)
+        return f"  n{i} " + _attrs(label=_label(*lines, *codes, *([extra] if extra else [])),
+                                   style=",".join(style) if style != ["rounded"] else None, **kw) + ";"
 
     drawn = [i for i in range(ch.n) if keep[i]]
     drawn_set = set(drawn)
@@ -943,6 +976,10 @@ def _legend_rows(present: set[str]) -> list[str]:
         rows.append(_cell("dead end", style="dashed", fill=_DEAD_FILL) + _desc("⊘ dead end: dashed outline"))
     if "sink" in present:
         rows.append(_cell("no exit", style="dotted") + _desc("no observed exit: dotted outline"))
+    if "stuck" in present:
+        rows.append(_cell("◷ open", border=2, fill=_STUCK_FILL) + _desc("◷ stuck, cases still open: eight-sided, bold"))
+    if "trapped" in present:
+        rows.append(_cell("↻ loop") + _desc("↻ in a closed loop: corners cut by diagonals"))
     rows.append(_cell("state", style="rounded") + _desc("state, with its visits"))
     if "end" in present:
         rows.append(_cell("end", style="dashed") + _desc("end of a session"))

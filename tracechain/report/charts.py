@@ -30,7 +30,6 @@ WORSE = "#d55e00"  # Okabe-Ito vermillion (warm)
 BETTER = "#0072b2"  # Okabe-Ito blue (cool)
 NEUTRAL = "#999999"
 _SVG_NS = "http://www.w3.org/2000/svg"
-_XLINK = "http://www.w3.org/1999/xlink"
 
 
 @dataclass
@@ -289,99 +288,13 @@ _ATTRS = {"width", "height", "viewBox", "transform", "d", "x", "y", "fill", "str
 _STYLE_PROPS = _ATTRS - {"width", "height", "viewBox", "transform", "d", "x", "y", "id", "href", "patternUnits"}
 
 
-def _local(tag: str) -> str:
-    return tag.split("}", 1)[-1] if tag.startswith("{") else tag
-
-
 def inline_svg(svg: bytes, name: str, label: str) -> str:
-    """A chart's SVG rebuilt from an allow-list for inlining in the report.
-
-    The report's Content-Security-Policy allows no inline style, so matplotlib's ``style``
-    attributes become presentation attributes; ids are prefixed with the chart's name, and
-    the only references kept are local (``url(#...)``, ``href="#..."``). No script, no
-    links, no foreign content. Data attributes (``data-...``) are kept.
-    """
-    import re
-
-    from .html import safe_name
+    """A chart's SVG rebuilt from an allow-list for inlining in the report
+    (:func:`tracechain.report.svgclean.clean_svg`): style attributes become presentation
+    attributes, ``<use>`` is drawn in place, ids are prefixed with the chart's name, only local
+    references are kept; data attributes stay. No script, no links, no foreign content."""
+    from .svgclean import clean_svg
 
     pre = "c-" + "".join(ch for ch in name if ch.isalnum() or ch == "-")[:30] + "-"
-    root = ET.fromstring(svg)
-
-    def ref(v: str) -> str | None:
-        m = re.fullmatch(r"url\(#([\w.-]+)\)", v.strip())
-        if m:
-            return f"url(#{pre}{m.group(1)})"
-        return None if "url(" in v or "(" in v else v
-
-    by_id = {el.get("id"): el for el in root.iter() if el.get("id")}
-
-    def clean(el, depth: int = 0):
-        tag = _local(el.tag)
-        if tag == "use" and depth < 4:  # drawn in place: the report allows no <use> element
-            href = el.get(f"{{{_XLINK}}}href") or el.get("href") or ""
-            target = by_id.get(href[1:]) if href.startswith("#") else None
-            if target is None:
-                return None
-            g = ET.Element("g")
-            try:
-                x, y = float(el.get("x", 0)), float(el.get("y", 0))
-            except ValueError:
-                return None
-            g.set("transform", f"translate({x!r} {y!r})")
-            for decl in (el.get("style") or "").split(";"):
-                if ":" in decl:
-                    k, v = (t.strip() for t in decl.split(":", 1))
-                    if k in _STYLE_PROPS and "(" not in v:
-                        g.set(k, v)
-            c = clean(target, depth + 1)
-            if c is not None:
-                c.attrib.pop("id", None)
-                g.append(c)
-            return g
-        if tag not in _TAGS:
-            return None
-        new = ET.Element(tag)
-        items = list(el.attrib.items())
-        style = el.get("style")
-        if style:
-            for decl in style.split(";"):
-                if ":" in decl:
-                    k, v = (x.strip() for x in decl.split(":", 1))
-                    if k in _STYLE_PROPS:
-                        items.append((k, v))
-        for k, v in items:
-            n = _local(k)
-            if n.startswith("data-") and "{" not in k and re.fullmatch(r"data-[a-z-]+", n):
-                new.set(n, v)
-                continue
-            if n not in _ATTRS or n.lower().startswith("on"):
-                continue
-            if n == "id":
-                v = pre + "".join(ch for ch in v if ch.isalnum() or ch in "-_")[:60]
-            elif n == "href":
-                if not v.startswith("#"):
-                    continue
-                v = "#" + pre + "".join(ch for ch in v[1:] if ch.isalnum() or ch in "-_")[:60]
-            else:
-                v = ref(v)
-                if v is None:
-                    continue
-            new.set(n, v)
-        new.text = el.text if tag in ("text", "tspan", "title", "desc") else None
-        for child in el:
-            c = clean(child, depth)
-            if c is not None:
-                new.append(c)
-                c.tail = None
-        return new
-
-    out = clean(root)
-    if out is None or out.tag != "svg":
-        raise ValueError("not an SVG document")
-    out.set("xmlns", _SVG_NS)
-    out.set("role", "img")
-    out.set("aria-label", safe_name(label, 200))
-    for k in ("width", "height"):
-        out.attrib.pop(k, None)
-    return ET.tostring(out, encoding="unicode", method="xml")
+    return clean_svg(svg, label=label, tags=_TAGS, attrs=_ATTRS, style_props=_STYLE_PROPS, id_prefix=pre,
+                     check_values=True, drop_size=True)

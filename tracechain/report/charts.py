@@ -222,10 +222,69 @@ def conversion_chart(a, max_states: int = 15, level: float = 0.95, seed: int = 0
     return c
 
 
+def steps_to_goal(ch, max_steps: int | None = None):
+    """The distribution of the number of steps from the start to the first goal, among sessions that
+    reach one: ``f[t]`` = P(first goal at step t) / P(reach a goal), t = 0 .. max_steps (default
+    3 x states + 20, at most 500), by propagating the start's distribution over P with the
+    absorbing states taking their mass out (first-passage probabilities). Also returns the mass
+    arriving after ``max_steps`` (as a share of those reaching a goal). None without a goal or start."""
+    import numpy as np
+
+    goals = [int(g) for g in ch.goals]
+    if ch.start is None or not goals:
+        return None
+    T = max_steps if max_steps is not None else min(500, 3 * ch.n + 20)
+    PT = ch.P.T.tocsr()
+    absorbing = ch.absorbing_mask
+    v = np.zeros(ch.n)
+    v[ch.start] = 1.0
+    f = np.zeros(T + 1)
+    for t in range(1, T + 1):
+        v = PT @ v
+        f[t] = v[goals].sum()
+        v[absorbing] = 0.0
+        if v.sum() < 1e-12:
+            break
+    total = f.sum()
+    if total <= 0:
+        return None
+    rest = float(v.sum())  # still moving after T steps: an upper bound of the late arrivals
+    return f / total, rest / total
+
+
+def steps_to_goal_chart(a) -> Chart | None:
+    """How many steps sessions take to reach a goal (among those that do): bars per number of
+    steps up to the one where 95% have arrived (at most 14 bars), then one bar for the rest."""
+    res = steps_to_goal(a.chain)
+    if res is None:
+        return None
+    import numpy as np
+
+    f, _late = res
+    cum = np.cumsum(f)
+    first = int(np.argmax(f > 0))
+    last = int(np.searchsorted(cum, 0.95 - 1e-12))
+    last = min(max(last, first), first + 13)
+    labels = [f"{t} step{'s' if t != 1 else ''}" for t in range(first, last + 1)]
+    values = [float(f[t]) for t in range(first, last + 1)]
+    tail = float(max(0.0, 1.0 - cum[last]))
+    if tail > 1e-6:
+        labels.append(f"more than {last} steps")
+        values.append(tail)
+    texts = [f"{100 * v:.1f}%" for v in values]
+    points = [{"state": lab, "value": v} for lab, v in zip(labels, values)]
+    c = _hbar("Steps to the goal, among sessions that reach it", "share of converting sessions (the chain's "
+              "first-passage distribution)", labels, values, texts, "steps-to-goal", points)
+    c.notes = ["Steps, not clock time: the counts keep only the mean gap of each transition, so the chain gives "
+               "the distribution of steps; the expected time is in the expected-time section."]
+    return c
+
+
 def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[Chart]:
     """The charts of a report (those that have data); conversion intervals at ``level``."""
     out = []
-    for make in (exit_chart, lambda a, top: conversion_chart(a, top, level=level, seed=seed)):
+    for make in (exit_chart, lambda a, top: conversion_chart(a, top, level=level, seed=seed),
+                 lambda a, top: steps_to_goal_chart(a)):
         c = make(a, top)
         if c is not None:
             out.append(c)

@@ -10,6 +10,10 @@ goal           rounded box with a double outline, bold, green tint, "★ goal"
 terminal       square-cornered box with one bold outline, grey tint, "■ finished"
 dead end       rounded box with a dashed outline, orange tint, "⊘ dead end"
 sink           rounded box with a dotted outline ("no observed exit")
+stuck          eight-sided bold box, sky-blue tint, "◷ N still open" (open cases at least 1% of
+               the state's visits; fewer stay as text in the label)
+in a trap      corners cut by diagonals, "↻ loop, no way out", inside the closed-loop frame
+dotted edge    "⋯ N not drawn": a path through states left out (so every drawn state is reached)
 other state    rounded box
 end            plain box with a dashed outline, labelled "end"
 focus          (``focus=``) the focused state has a thick outline and "◎ focus"
@@ -23,7 +27,9 @@ edge           width grows with the number of transitions; label: probability
                label, into the end dashed grey
 =============  =====================================================================
 
-Layout: columns run from the start; above 20 states, states are placed in columns by
+Layout (``layout="review"``, the default): exits are a share in each state, ranks follow the
+median first-arrival step, goals and terminals share the far rank, caption and legend sit in one
+strip above; :func:`fit_diagram` checks the laid-out drawing against a size preset. Classic layout: columns run from the start; above 20 states, states are placed in columns by
 their distance (in drawn edges) from the start, the end in the last column. Rare edges (a share of all transitions below
 ``min_edge_share``) are pruned and the pruned share is stated in the diagram's caption.
 "All transitions" are the exits of non-absorbing states (start and end edges included),

@@ -238,3 +238,43 @@ def test_cli_diagram_of_sample_edge_list(run_cli, samples, tmp_path):
     root = ET.fromstring(svg.read_bytes())
     texts = ["".join(t.itertext()) for t in root.iter(SVG + "text")]
     assert "Welcome" in texts and "Home" in texts
+
+
+def _signature(node: dict) -> tuple:
+    """What tells a node apart without colour: its shape, line styles and outlines."""
+    styles = frozenset(x for x in node.get("style", "").split(",") if x and x != "filled")
+    return (node.get("shape", "box"), styles, node.get("peripheries", "1"))
+
+
+def test_stuck_trapped_dead_end_goal_and_terminal_have_codes_beyond_colour(run_cli, samples, tmp_path):
+    # the shipped samples hold each kind: tickets (stuck, goal, terminal), onboarding (a closed
+    # loop), shop (a dead end); each kind must have a signature of its own without any colour and a
+    # legend entry (common practice for colour-blind readers: never colour alone, no source)
+    runs = {
+        "tickets": [samples / "tickets/ticket_events.csv", "--mapping", samples / "tickets/mapping.yaml",
+                    "--stale-after", "2d"],
+        "onboarding": [samples / "edges/warehouse_edges.csv", "--goal", "Home"],
+        "shop": [samples / "shop/clickstream.jsonl.gz", "--mapping", samples / "shop/mapping.yaml", "--gap", "30m"],
+    }
+    kinds: dict[str, set] = {}
+    legend = ""
+    for name, argv in runs.items():
+        dot = tmp_path / f"{name}.dot"
+        status, _, err = run_cli("analyze", *argv, "--dot", dot, "-q")
+        assert status == 0, err
+        g = parsed(dot.read_text(encoding="utf-8"))
+        legend += graph_caption(g)
+        for n in nodes_by_name(g).values():
+            label = n.get("label", "")
+            for kind, mark in (("stuck", "still open"), ("trapped", "↻ loop"), ("dead", "⊘ dead end"),
+                               ("goal", "★ goal"), ("terminal", "■ finished")):
+                if mark in label and (kind != "stuck" or "◷" in label):
+                    kinds.setdefault(kind, set()).add(_signature(n))
+            if n["name"].startswith("n") and not any(m in label for m in ("still open", "↻", "⊘", "★", "■", "start")):
+                kinds.setdefault("plain", set()).add(_signature(n))
+    assert set(kinds) == {"stuck", "trapped", "dead", "goal", "terminal", "plain"}, set(kinds)
+    for k, sigs in kinds.items():
+        others = set().union(*(v for j, v in kinds.items() if j != k))
+        assert not sigs & others, (k, sigs & others)
+    for words in ("◷ stuck", "↻ in a closed loop", "⊘ dead end", "★ goal", "■ terminal"):
+        assert words in legend, words

@@ -496,3 +496,26 @@ def test_order_test_is_stated_among_the_assumptions(tmp_path):
     out2 = tmp_path / "o2.html"
     assert commands_main(["report", str(log), "--html", str(out2), "--no-diagram"]) == 0
     assert "No test of the chain's order was run" in dom(out2.read_text(encoding="utf-8")).all_text()
+
+
+def test_one_sanitiser_for_diagrams_and_charts():
+    # the same hostile SVG through the diagram's and the charts' entry points (one implementation,
+    # tracechain/report/svgclean.py): no script, handler, foreign content, outside link or style
+    import xml.etree.ElementTree as ET
+
+    from tracechain.report.charts import inline_svg
+    from tracechain.report.html import sanitize_svg
+
+    hostile = ('<svg xmlns="http://www.w3.org/2000/svg" xmlns:xlink="http://www.w3.org/1999/xlink" onload="x()">'
+               '<script>alert(1)</script><foreignObject><p>hi</p></foreignObject>'
+               '<a xlink:href="javascript:alert(2)" xlink:title="tip"><text x="1" y="2" style="fill: red">ok</text></a>'
+               '<rect id="r" width="5" height="5" fill="url(http://evil/x)" onclick="y()"/>'
+               '<use xlink:href="http://evil/#z"/></svg>')
+    for out in (sanitize_svg(hostile, "d"), inline_svg(hostile.encode(), "c", "c")):
+        root = ET.fromstring(out)
+        tags = {el.tag.split("}")[-1] for el in root.iter()}
+        assert not tags & {"script", "foreignObject", "a", "use", "p"}, tags
+        attrs = {k for el in root.iter() for k in el.attrib}
+        assert not [k for k in attrs if k.lower().startswith("on")] and "style" not in attrs
+        assert "evil" not in out and "javascript" not in out
+        assert "ok" in ["".join(t.itertext()) for t in root.iter("{http://www.w3.org/2000/svg}text")]

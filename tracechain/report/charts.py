@@ -30,7 +30,6 @@ WORSE = "#d55e00"  # Okabe-Ito vermillion (warm)
 BETTER = "#0072b2"  # Okabe-Ito blue (cool)
 NEUTRAL = "#999999"
 _SVG_NS = "http://www.w3.org/2000/svg"
-_XLINK = "http://www.w3.org/1999/xlink"
 
 
 @dataclass
@@ -223,10 +222,69 @@ def conversion_chart(a, max_states: int = 15, level: float = 0.95, seed: int = 0
     return c
 
 
+def steps_to_goal(ch, max_steps: int | None = None):
+    """The distribution of the number of steps from the start to the first goal, among sessions that
+    reach one: ``f[t]`` = P(first goal at step t) / P(reach a goal), t = 0 .. max_steps (default
+    3 x states + 20, at most 500), by propagating the start's distribution over P with the
+    absorbing states taking their mass out (first-passage probabilities). Also returns the mass
+    arriving after ``max_steps`` (as a share of those reaching a goal). None without a goal or start."""
+    import numpy as np
+
+    goals = [int(g) for g in ch.goals]
+    if ch.start is None or not goals:
+        return None
+    T = max_steps if max_steps is not None else min(500, 3 * ch.n + 20)
+    PT = ch.P.T.tocsr()
+    absorbing = ch.absorbing_mask
+    v = np.zeros(ch.n)
+    v[ch.start] = 1.0
+    f = np.zeros(T + 1)
+    for t in range(1, T + 1):
+        v = PT @ v
+        f[t] = v[goals].sum()
+        v[absorbing] = 0.0
+        if v.sum() < 1e-12:
+            break
+    total = f.sum()
+    if total <= 0:
+        return None
+    rest = float(v.sum())  # still moving after T steps: an upper bound of the late arrivals
+    return f / total, rest / total
+
+
+def steps_to_goal_chart(a) -> Chart | None:
+    """How many steps sessions take to reach a goal (among those that do): bars per number of
+    steps up to the one where 95% have arrived (at most 14 bars), then one bar for the rest."""
+    res = steps_to_goal(a.chain)
+    if res is None:
+        return None
+    import numpy as np
+
+    f, _late = res
+    cum = np.cumsum(f)
+    first = int(np.argmax(f > 0))
+    last = int(np.searchsorted(cum, 0.95 - 1e-12))
+    last = min(max(last, first), first + 13)
+    labels = [f"{t} step{'s' if t != 1 else ''}" for t in range(first, last + 1)]
+    values = [float(f[t]) for t in range(first, last + 1)]
+    tail = float(max(0.0, 1.0 - cum[last]))
+    if tail > 1e-6:
+        labels.append(f"more than {last} steps")
+        values.append(tail)
+    texts = [f"{100 * v:.1f}%" for v in values]
+    points = [{"state": lab, "value": v} for lab, v in zip(labels, values)]
+    c = _hbar("Steps to the goal, among sessions that reach it", "share of converting sessions (the chain's "
+              "first-passage distribution)", labels, values, texts, "steps-to-goal", points)
+    c.notes = ["Steps, not clock time: the counts keep only the mean gap of each transition, so the chain gives "
+               "the distribution of steps; the expected time is in the expected-time section."]
+    return c
+
+
 def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[Chart]:
     """The charts of a report (those that have data); conversion intervals at ``level``."""
     out = []
-    for make in (exit_chart, lambda a, top: conversion_chart(a, top, level=level, seed=seed)):
+    for make in (exit_chart, lambda a, top: conversion_chart(a, top, level=level, seed=seed),
+                 lambda a, top: steps_to_goal_chart(a)):
         c = make(a, top)
         if c is not None:
             out.append(c)
@@ -289,99 +347,13 @@ _ATTRS = {"width", "height", "viewBox", "transform", "d", "x", "y", "fill", "str
 _STYLE_PROPS = _ATTRS - {"width", "height", "viewBox", "transform", "d", "x", "y", "id", "href", "patternUnits"}
 
 
-def _local(tag: str) -> str:
-    return tag.split("}", 1)[-1] if tag.startswith("{") else tag
-
-
 def inline_svg(svg: bytes, name: str, label: str) -> str:
-    """A chart's SVG rebuilt from an allow-list for inlining in the report.
-
-    The report's Content-Security-Policy allows no inline style, so matplotlib's ``style``
-    attributes become presentation attributes; ids are prefixed with the chart's name, and
-    the only references kept are local (``url(#...)``, ``href="#..."``). No script, no
-    links, no foreign content. Data attributes (``data-...``) are kept.
-    """
-    import re
-
-    from .html import safe_name
+    """A chart's SVG rebuilt from an allow-list for inlining in the report
+    (:func:`tracechain.report.svgclean.clean_svg`): style attributes become presentation
+    attributes, ``<use>`` is drawn in place, ids are prefixed with the chart's name, only local
+    references are kept; data attributes stay. No script, no links, no foreign content."""
+    from .svgclean import clean_svg
 
     pre = "c-" + "".join(ch for ch in name if ch.isalnum() or ch == "-")[:30] + "-"
-    root = ET.fromstring(svg)
-
-    def ref(v: str) -> str | None:
-        m = re.fullmatch(r"url\(#([\w.-]+)\)", v.strip())
-        if m:
-            return f"url(#{pre}{m.group(1)})"
-        return None if "url(" in v or "(" in v else v
-
-    by_id = {el.get("id"): el for el in root.iter() if el.get("id")}
-
-    def clean(el, depth: int = 0):
-        tag = _local(el.tag)
-        if tag == "use" and depth < 4:  # drawn in place: the report allows no <use> element
-            href = el.get(f"{{{_XLINK}}}href") or el.get("href") or ""
-            target = by_id.get(href[1:]) if href.startswith("#") else None
-            if target is None:
-                return None
-            g = ET.Element("g")
-            try:
-                x, y = float(el.get("x", 0)), float(el.get("y", 0))
-            except ValueError:
-                return None
-            g.set("transform", f"translate({x!r} {y!r})")
-            for decl in (el.get("style") or "").split(";"):
-                if ":" in decl:
-                    k, v = (t.strip() for t in decl.split(":", 1))
-                    if k in _STYLE_PROPS and "(" not in v:
-                        g.set(k, v)
-            c = clean(target, depth + 1)
-            if c is not None:
-                c.attrib.pop("id", None)
-                g.append(c)
-            return g
-        if tag not in _TAGS:
-            return None
-        new = ET.Element(tag)
-        items = list(el.attrib.items())
-        style = el.get("style")
-        if style:
-            for decl in style.split(";"):
-                if ":" in decl:
-                    k, v = (x.strip() for x in decl.split(":", 1))
-                    if k in _STYLE_PROPS:
-                        items.append((k, v))
-        for k, v in items:
-            n = _local(k)
-            if n.startswith("data-") and "{" not in k and re.fullmatch(r"data-[a-z-]+", n):
-                new.set(n, v)
-                continue
-            if n not in _ATTRS or n.lower().startswith("on"):
-                continue
-            if n == "id":
-                v = pre + "".join(ch for ch in v if ch.isalnum() or ch in "-_")[:60]
-            elif n == "href":
-                if not v.startswith("#"):
-                    continue
-                v = "#" + pre + "".join(ch for ch in v[1:] if ch.isalnum() or ch in "-_")[:60]
-            else:
-                v = ref(v)
-                if v is None:
-                    continue
-            new.set(n, v)
-        new.text = el.text if tag in ("text", "tspan", "title", "desc") else None
-        for child in el:
-            c = clean(child, depth)
-            if c is not None:
-                new.append(c)
-                c.tail = None
-        return new
-
-    out = clean(root)
-    if out is None or out.tag != "svg":
-        raise ValueError("not an SVG document")
-    out.set("xmlns", _SVG_NS)
-    out.set("role", "img")
-    out.set("aria-label", safe_name(label, 200))
-    for k in ("width", "height"):
-        out.attrib.pop(k, None)
-    return ET.tostring(out, encoding="unicode", method="xml")
+    return clean_svg(svg, label=label, tags=_TAGS, attrs=_ATTRS, style_props=_STYLE_PROPS, id_prefix=pre,
+                     check_values=True, drop_size=True)

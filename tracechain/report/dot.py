@@ -10,6 +10,10 @@ goal           rounded box with a double outline, bold, green tint, "★ goal"
 terminal       square-cornered box with one bold outline, grey tint, "■ finished"
 dead end       rounded box with a dashed outline, orange tint, "⊘ dead end"
 sink           rounded box with a dotted outline ("no observed exit")
+stuck          eight-sided bold box, sky-blue tint, "◷ N still open" (open cases at least 1% of
+               the state's visits; fewer stay as text in the label)
+in a trap      corners cut by diagonals, "↻ loop, no way out", inside the closed-loop frame
+dotted edge    "⋯ N not drawn": a path through states left out (so every drawn state is reached)
 other state    rounded box
 end            plain box with a dashed outline, labelled "end"
 focus          (``focus=``) the focused state has a thick outline and "◎ focus"
@@ -23,7 +27,9 @@ edge           width grows with the number of transitions; label: probability
                label, into the end dashed grey
 =============  =====================================================================
 
-Layout: columns run from the start; above 20 states, states are placed in columns by
+Layout (``layout="review"``, the default): exits are a share in each state, ranks follow the
+median first-arrival step, goals and terminals share the far rank, caption and legend sit in one
+strip above; :func:`fit_diagram` checks the laid-out drawing against a size preset. Classic layout: columns run from the start; above 20 states, states are placed in columns by
 their distance (in drawn edges) from the start, the end in the last column. Rare edges (a share of all transitions below
 ``min_edge_share``) are pruned and the pruned share is stated in the diagram's caption.
 "All transitions" are the exits of non-absorbing states (start and end edges included),
@@ -65,6 +71,7 @@ _GOAL_LINE = "#007a5a"
 _DEAD_FILL = "#fbe3c0"  # tint of orange #E69F00
 _TERM_FILL = "#e4e4e4"  # neutral grey
 _TRAP_LINE = "#D55E00"  # vermillion
+_STUCK_FILL = "#d5ebf8"  # tint of sky blue #56B4E9
 _UP = "#0072B2"  # blue
 _DOWN = "#D55E00"  # vermillion
 _MUTED = "#b3b3b3"
@@ -514,6 +521,11 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
 
     present: set[str] = set()
 
+    trapped = {int(x) for cl in a.classes.traps for x in cl.states}
+    # stuck: open cases (sessions not finished when the logs end, counted where they stopped) make up
+    # at least 1% of the state's visits (below that the count stays in the label as text)
+    stuck = {i for i in range(ch.n) if opened[i] > 0 and opened[i] >= 0.01 * (visits[i] + opened[i])}
+
     def node_line(i: int) -> str:
         role = roles[i]
         name = ch.label(i)
@@ -551,16 +563,43 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             present.add("terminal")
             return f"  n{i} " + _attrs(label=_label(*lines, "■ finished"), shape="box", style="filled,bold",
                                        fillcolor=_TERM_FILL, **foc) + ";"
+        # the codes below combine: outline shape (eight-sided: stuck), line style (dashed: dead end,
+        # dotted: no observed exit) and cut corners (diagonals: in a closed loop), each with a glyph
+        style = ["rounded"]
+        kw: dict = {}
+        codes = []
         if role == "sink":
             present.add("sink")
-            return f"  n{i} " + _attrs(label=_label(*lines, "no observed exit"), style="rounded,dotted", **foc) + ";"
+            style.append("dotted")
+            codes.append("no observed exit")
         if i in dead:
             present.add("dead")
-            more = f" · {v:,} visits" if has_counts else ""
-            return f"  n{i} " + _attrs(label=_label(*lines, f"⊘ dead end{more}"), style="rounded,filled,dashed",
-                                       fillcolor=_DEAD_FILL, **foc) + ";"
-        present.add("state")
-        return f"  n{i} " + _attrs(label=_label(*lines, *([extra] if extra else [])), **foc) + ";"
+            style += ["filled", "dashed"]
+            kw["fillcolor"] = _DEAD_FILL
+            codes.append("⊘ dead end")
+        if i in trapped:
+            present.add("trapped")
+            style.append("diagonals")
+            codes.append("↻ loop, no way out")
+        if i in stuck:
+            present.add("stuck")
+            kw["shape"] = "octagon"
+            style = [x for x in style if x != "rounded"]
+            if "filled" not in style:
+                style.append("filled")
+                kw["fillcolor"] = _STUCK_FILL
+            kw["penwidth"] = 2
+            codes.append(f"◷ {int(opened[i]):,} still open")
+            extra = f"{v:,} visits" if has_counts else None
+        if not codes:
+            present.add("state")
+        if i in dead and has_counts:
+            k = codes.index("⊘ dead end")
+            codes[k] += f" · {v:,} visits"
+            extra = None
+        kw.update(foc)
+        return f"  n{i} " + _attrs(label=_label(*lines, *codes, *([extra] if extra else [])),
+                                   style=",".join(style) if style != ["rounded"] else None, **kw) + ";"
 
     drawn = [i for i in range(ch.n) if keep[i]]
     drawn_set = set(drawn)
@@ -946,6 +985,10 @@ def _legend_rows(present: set[str]) -> list[str]:
         rows.append(_cell("dead end", style="dashed", fill=_DEAD_FILL) + _desc("⊘ dead end: dashed outline"))
     if "sink" in present:
         rows.append(_cell("no exit", style="dotted") + _desc("no observed exit: dotted outline"))
+    if "stuck" in present:
+        rows.append(_cell("◷ open", border=2, fill=_STUCK_FILL) + _desc("◷ stuck, cases still open: eight-sided, bold"))
+    if "trapped" in present:
+        rows.append(_cell("↻ loop") + _desc("↻ in a closed loop: corners cut by diagonals"))
     rows.append(_cell("state", style="rounded") + _desc("state, with its visits"))
     if "end" in present:
         rows.append(_cell("end", style="dashed") + _desc("end of a session"))

@@ -30,7 +30,6 @@ import hashlib
 import html
 import math
 import unicodedata
-import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -212,8 +211,6 @@ def load_extended(a: Analysis, seed: int = 0, **options) -> tuple[Any, str | Non
 
 
 # -- SVG sanitising -------------------------------------------------------------------------
-_SVG_NS = "http://www.w3.org/2000/svg"
-_XLINK_NS = "http://www.w3.org/1999/xlink"
 _SVG_TAGS = {"svg", "g", "title", "desc", "path", "polygon", "polyline", "ellipse", "circle", "rect", "line",
              "text", "tspan"}
 _SVG_ATTRS = {
@@ -225,50 +222,12 @@ _SVG_ATTRS = {
 
 
 def sanitize_svg(svg: bytes | str, label: str = "diagram") -> str:
-    """Graphviz SVG rebuilt from an allow-list: no script, no links, no event handlers, no
-    foreign content, no style attributes; ``<a>`` becomes ``<g>`` with its tooltip as a
-    ``<title>``. Returns markup for inlining in HTML (no XML declaration or doctype)."""
-    data = svg.encode("utf-8") if isinstance(svg, str) else svg
-    parser = ET.XMLParser()
-    root = ET.fromstring(data, parser=parser)
+    """Graphviz SVG rebuilt from an allow-list (:func:`tracechain.report.svgclean.clean_svg`): no
+    script, no links, no event handlers, no foreign content, no style attributes; ``<a>`` becomes
+    ``<g>`` with its tooltip as a ``<title>``. Returns markup for inlining in HTML."""
+    from .svgclean import clean_svg
 
-    def local(tag: str) -> str:
-        return tag.split("}", 1)[-1] if tag.startswith("{") else tag
-
-    def clean(el: ET.Element) -> ET.Element | None:
-        tag = local(el.tag)
-        tooltip = None
-        if tag == "a":
-            tooltip = el.get(f"{{{_XLINK_NS}}}title") or el.get("title")
-            tag = "g"
-        if tag not in _SVG_TAGS:
-            return None
-        new = ET.Element(tag)
-        for k, v in el.attrib.items():
-            name = local(k)
-            if name in _SVG_ATTRS and "{" not in k and not name.lower().startswith("on"):
-                if name == "id":
-                    v = "d-" + "".join(c for c in v if c.isalnum() or c in "-_")[:40]
-                new.set(name, v)
-        new.text = el.text if tag in ("text", "tspan", "title", "desc") else None
-        if tooltip:
-            t = ET.SubElement(new, "title")
-            t.text = tooltip
-        for child in el:
-            c = clean(child)
-            if c is not None:
-                new.append(c)
-            if c is not None and local(child.tag) in ("text", "tspan"):
-                c.tail = None
-        return new
-
-    out = clean(root)
-    if out is None or out.tag != "svg":
-        raise ValueError("not an SVG document")
-    out.set("xmlns", _SVG_NS)
-    out.set("role", "img")
-    out.set("aria-label", safe_name(label, 200))
-    return ET.tostring(out, encoding="unicode", method="xml")
+    return clean_svg(svg, label=label, tags=_SVG_TAGS, attrs=_SVG_ATTRS, style_props=set(), id_prefix="d-")
 
 
 # -- building the report --------------------------------------------------------------------

@@ -78,6 +78,7 @@ class Analysis:
     settings: dict = field(default_factory=dict)
     open_cases: OpenCases | None = None
     outcomes: object = None  # ObservedOutcomes with an open-case policy
+    loops: tuple = ()  # Loop rows (analyze/loops.py)
 
     # -- headline figures -------------------------------------------------------------
     @property
@@ -220,8 +221,19 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
             f"{oc.in_flight} recent unfinished case(s) are in flight: right-censored (their last visit counts as a "
             "visit but not in the estimates)"
         )
+    from .loops import loops as _loops
+
+    found_loops = _loops(chain)
+    for lp in found_loops:
+        if lp.partial_trap:
+            names = ", ".join(lp.states[:4]) + (" ..." if len(lp.states) > 4 else "")
+            notes.append(
+                f"partial trap: the loop {names} holds {lp.open} open case(s) ({100 * (lp.open_share or 0):.1f}% of "
+                f"its {lp.entries} entries) past the stale limit while {lp.left} left it"
+                + ("; the leavers are a minority" if lp.leavers_minority else "")
+            )
     return Analysis(
-        chain=chain, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
+        chain=chain, loops=found_loops, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
         exits=exit_states(chain, top), unreachable=goal_unreachable(chain), report=report,
         notes=tuple(notes), settings=dict(settings or {}), open_cases=oc, outcomes=outcomes,
     )

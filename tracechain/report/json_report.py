@@ -81,6 +81,11 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
         ],
         "open_cases": _open_cases(a),
         "outcomes": _outcomes(a),
+        "loops": [
+            {"states": list(lp.states), "entries": lp.entries, "rounds": lp.rounds, "left": lp.left, "open": lp.open,
+             "in_flight": lp.in_flight, "partial_trap": lp.partial_trap, "leavers_minority": lp.leavers_minority}
+            for lp in a.loops
+        ],
         "notes": list(a.notes),
     }
     if extended is not None:

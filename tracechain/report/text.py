@@ -150,6 +150,19 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines.append(f"  {oc.open_total:,} open, {oc.in_flight:,} in flight, {oc.finished:,} finished")
         lines.append("")
 
+    if a.loops:
+        lines.append("Loops (rework: states that cases go round; partial trap: some leave, open cases stay)")
+        lrows = []
+        for lp in a.loops[:10]:
+            names = ", ".join(safe_text(x, 30) for x in lp.states[:4]) + (" ..." if len(lp.states) > 4 else "")
+            lrows.append([names, f"{lp.entries:,}", f"{lp.rounds:,}", f"{lp.left:,}", f"{lp.open:,}",
+                          f"{lp.in_flight:,}", "PARTIAL TRAP" if lp.partial_trap else "-"])
+        lines += _table(["loop", "entries", "rounds", "left", "open", "in flight", "finding"], lrows,
+                        right={1, 2, 3, 4, 5})
+        if len(a.loops) > 10:
+            lines.append(f"  ... and {len(a.loops) - 10} more loops in the JSON output (--json)")
+        lines.append("")
+
     lines.append("Communicating classes")
     cls_rows = []
     for k, cl in enumerate(a.classes.classes):

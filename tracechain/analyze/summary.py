@@ -199,6 +199,16 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
 
     off = 1 if chain.start is not None else 0
     stuck_idx = {k + off for k in stuck_map(chain.counts)}
+    asked_terminal = [t for t in (settings or {}).get("terminal") or () if isinstance(t, str)]
+    hidden = set(meta.get("cut_after_goal") or ())
+    after_goal = [t for t in asked_terminal if t in hidden and t not in set(chain.counts.states if chain.counts
+                                                                               is not None else ())]
+    if after_goal:
+        notes.append(
+            f"terminal state(s) {', '.join(after_goal[:3])} occur only after a goal: sessions are cut at the goal "
+            "(--keep-after-goal keeps what follows), so they are not in the chain; a case that reached the goal "
+            "counts as finished"
+        )
     sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink" and i not in stuck_idx]
     if sinks:
         notes.append(f"{len(sinks)} state(s) have no observed exit and are treated as absorbing: {', '.join(sinks[:5])}")

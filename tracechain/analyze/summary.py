@@ -79,6 +79,8 @@ class Analysis:
     open_cases: OpenCases | None = None
     outcomes: object = None  # ObservedOutcomes with an open-case policy
     loops: tuple = ()  # Loop rows (analyze/loops.py)
+    case_times: object = None  # CaseTimes from the sessions (analyze --cases)
+    rework: object = None  # CaseRework from the sessions (analyze --cases)
 
     # -- headline figures -------------------------------------------------------------
     @property

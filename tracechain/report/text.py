@@ -163,6 +163,29 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
             lines.append(f"  ... and {len(a.loops) - 10} more loops in the JSON output (--json)")
         lines.append("")
 
+    ct = getattr(a, "case_times", None)
+    if ct is not None:
+        lines.append(f"Observed times (sessions themselves; percentiles: numpy '{ct.method}' method)")
+        trows = [[f"to goal {safe_text(r.name, 30)}", f"{r.n:,}", _dur(r.mean_s), _dur(r.median_s), _dur(r.p90_s)]
+                 for r in ct.to_goal]
+        trows += [[f"in {safe_text(r.name, 30)}", f"{r.n:,}", _dur(r.mean_s), _dur(r.median_s), _dur(r.p90_s)]
+                  for r in ct.dwell[:15]]
+        lines += _table(["time", "n", "mean", "median", "90%"], trows, right={1, 2, 3, 4})
+        if len(ct.dwell) > 15:
+            lines.append(f"  ... {len(ct.dwell) - 15} more states in the JSON output (--json)")
+        lines.append("")
+    rw = getattr(a, "rework", None)
+    if rw is not None:
+        rrows = [[safe_text(r.state, 40), f"{r.cases:,}", f"{r.reentered:,}", _num(r.mean), _num(r.median),
+                  _num(r.p90), f"{r.max:,}"] for r in rw.states if r.reentered][:15]
+        lines.append("Rework per case (re-entries of the cases that came back)")
+        lines += _table(["state", "cases", "came back", "mean", "median", "90%", "max"], rrows or [["none"] + [""] * 6],
+                        right={1, 2, 3, 4, 5, 6})
+        for lr in rw.loops:
+            lines.append(f"  loop {', '.join(safe_text(x, 30) for x in lr.states[:4])}: {lr.cases:,} cases entered, "
+                         f"{lr.over:,} went round more than {rw.rounds} times (most: {lr.max_rounds})")
+        lines.append("")
+
     lines.append("Communicating classes")
     cls_rows = []
     for k, cl in enumerate(a.classes.classes):

@@ -98,9 +98,24 @@ class Chain:
                 ending = [s for s in windows if s[-1] == t] if t not in known else []
                 expanded.extend(ending or [t])
             terminal = expanded
+        # a terminal state seen only after the goal (closed after done): the goal cut hides it, which
+        # is no error; it simply does not occur in the cut sessions
+        hidden = set(counts.meta.get("cut_after_goal") or ())
+        terminal = [t for t in terminal if t in known or t not in hidden]
         for kind, names in (("goal", goals), ("terminal state", terminal)):
             missing = [g for g in names if g not in known]
             if missing:
+                cut = bool(counts.meta.get("truncate_at_goal")) and bool(counts.meta.get("goals"))
+                if kind == "terminal state" and cut:
+                    if "cut_after_goal" in counts.meta:
+                        raise AnalysisError(
+                            f"terminal state {missing[0]!r} does not occur in the data, not even after a goal "
+                            "(sessions are cut at their first goal, and the events cut there were looked at too)"
+                        )
+                    raise AnalysisError(
+                        f"terminal state {missing[0]!r} does not occur in the data as counted: sessions are cut at "
+                        "their first goal, which hides a state that only follows it (--keep-after-goal keeps it)"
+                    )
                 labels = [state_label(s) for s in counts.states]
                 hint = difflib.get_close_matches(str(missing[0]), labels, n=3)
                 more = f"; did you mean {', '.join(repr(h) for h in hint)}?" if hint else ""

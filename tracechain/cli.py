@@ -183,6 +183,12 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--extended", action="store_true",
                    help="also report times, removal effects, most likely paths and intervals (see --seed)")
     o.add_argument("--seed", type=_seed, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
+    o.add_argument("--cases", action="store_true",
+                   help="also read the sessions themselves (native engine; they are held in memory): observed "
+                        "times to each goal and in each state (mean, median, 90th percentile), re-entries per "
+                        "state and rounds per loop")
+    o.add_argument("--loop-rounds", type=_positive_int, default=3, metavar="N",
+                   help="with --cases: count the cases that went round a loop more than N times (default 3)")
     from .analyze.commands import add_interval_options
 
     add_interval_options(o)
@@ -267,6 +273,17 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--max-states must be at least 1")
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings)
+    if getattr(args, "cases", False):
+        import dataclasses
+
+        from .analyze.case_times import case_times
+        from .analyze.commands import sessions_from_args
+        from .analyze.loops import case_rework
+
+        sess = sessions_from_args(args, "analyze --cases")
+        result = dataclasses.replace(
+            result, case_times=case_times(sess, result.goal_labels),
+            rework=case_rework(sess, [lp.states for lp in result.loops], rounds=args.loop_rounds))
     ext = None
     if not args.extended and (args.intervals != "posterior" or args.level != 0.95):
         print("tracechain: warning: --intervals and --level apply to the intervals of --extended; add it to see them",

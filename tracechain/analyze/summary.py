@@ -78,6 +78,9 @@ class Analysis:
     settings: dict = field(default_factory=dict)
     open_cases: OpenCases | None = None
     outcomes: object = None  # ObservedOutcomes with an open-case policy
+    loops: tuple = ()  # Loop rows (analyze/loops.py)
+    case_times: object = None  # CaseTimes from the sessions (analyze --cases)
+    rework: object = None  # CaseRework from the sessions (analyze --cases)
 
     # -- headline figures -------------------------------------------------------------
     @property
@@ -198,6 +201,16 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
 
     off = 1 if chain.start is not None else 0
     stuck_idx = {k + off for k in stuck_map(chain.counts)}
+    asked_terminal = [t for t in (settings or {}).get("terminal") or () if isinstance(t, str)]
+    hidden = set(meta.get("cut_after_goal") or ())
+    after_goal = [t for t in asked_terminal if t in hidden and t not in set(chain.counts.states if chain.counts
+                                                                               is not None else ())]
+    if after_goal:
+        notes.append(
+            f"terminal state(s) {', '.join(after_goal[:3])} occur only after a goal: sessions are cut at the goal "
+            "(--keep-after-goal keeps what follows), so they are not in the chain; a case that reached the goal "
+            "counts as finished"
+        )
     sinks = [chain.label(i) for i, r in enumerate(chain.roles) if r == "sink" and i not in stuck_idx]
     if sinks:
         notes.append(f"{len(sinks)} state(s) have no observed exit and are treated as absorbing: {', '.join(sinks[:5])}")
@@ -220,8 +233,19 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
             f"{oc.in_flight} recent unfinished case(s) are in flight: right-censored (their last visit counts as a "
             "visit but not in the estimates)"
         )
+    from .loops import loops as _loops
+
+    found_loops = _loops(chain)
+    for lp in found_loops:
+        if lp.partial_trap:
+            names = ", ".join(lp.states[:4]) + (" ..." if len(lp.states) > 4 else "")
+            notes.append(
+                f"partial trap: the loop {names} holds {lp.open} open case(s) ({100 * (lp.open_share or 0):.1f}% of "
+                f"its {lp.entries} entries) past the stale limit while {lp.left} left it"
+                + ("; the leavers are a minority" if lp.leavers_minority else "")
+            )
     return Analysis(
-        chain=chain, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
+        chain=chain, loops=found_loops, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
         exits=exit_states(chain, top), unreachable=goal_unreachable(chain), report=report,
         notes=tuple(notes), settings=dict(settings or {}), open_cases=oc, outcomes=outcomes,
     )

@@ -44,7 +44,7 @@ from .params import META_KEYS, Params, states_list
 __all__ = [
     "ENTRY_POINT_GROUP", "Rule", "available_rules", "get_rule", "builtin_rules", "wilson_lower",
     "DeadEndRule", "GoalReachableRule", "ConversionFloorRule", "StepsCeilingRule", "TrapRule",
-    "AllowedTransitionsRule", "OpenShareRule", "NewStateRule", "NewTransitionRule", "RegressionRule",
+    "AllowedTransitionsRule", "OpenShareRule", "PartialTrapRule", "NewStateRule", "NewTransitionRule", "RegressionRule",
     "parse_min_change",
 ]
 
@@ -430,6 +430,44 @@ class OpenShareRule(Rule):
         )
 
 
+class PartialTrapRule(Rule):
+    id = "TC111-partial-trap"
+    kind = "partial-trap"
+    short_description = "A loop that some cases leave but in which open cases stay past the stale limit."
+    full_description = (
+        "A loop (states that cases go round) is a partial trap when some cases leave it but cases are "
+        "still open inside it (their last event older than the stale limit): at least 'min_share' of "
+        "the cases that entered it are open there, or those that left are a minority. Loops whose "
+        "states are all listed in 'allow' are accepted."
+    )
+    help = ("Parameters: min_share (default 1%), allow (states). Needs 'input: finished_states: [...]'. "
+            "Give the loop a way out for the cases it keeps (a timeout, an escalation).")
+    default_severity = "warning"
+    needs_open_cases = True
+
+    def configure(self, params: Params):
+        from ..analyze.loops import MIN_TRAP_SHARE
+
+        return {"min_share": params.share("min_share", MIN_TRAP_SHARE), "allow": frozenset(params.states("allow"))}
+
+    def evaluate(self, ctx, options):
+        from ..analyze.loops import loops
+
+        for lp in loops(ctx.chain, min_share=options["min_share"]):
+            if not lp.partial_trap or set(lp.states) <= options["allow"]:
+                continue
+            loc = ctx.first_location(ctx.state_location(i) for i in lp.index)
+            share = lp.open_share or 0.0
+            yield Issue(
+                f"partial trap: the loop {', '.join(repr(n) for n in lp.states)} holds {_n(lp.open, 'open case')} "
+                f"({_pct(share)} of its {lp.entries} entries) while {lp.left} left it"
+                + ("; the leavers are a minority" if lp.leavers_minority else ""),
+                states=lp.states, location=loc, key="partial-trap\x1f" + "\x1f".join(sorted(lp.states)),
+                properties={"entries": lp.entries, "left": lp.left, "open": lp.open, "in_flight": lp.in_flight,
+                            "open_share": share},
+            )
+
+
 class NewStateRule(Rule):
     id = "TC108-new-state"
     kind = "new-state"
@@ -686,7 +724,8 @@ class RegressionRule(Rule):
 
 
 _BUILTIN_CLASSES = (DeadEndRule, GoalReachableRule, ConversionFloorRule, StepsCeilingRule, TrapRule,
-                    AllowedTransitionsRule, OpenShareRule, NewStateRule, NewTransitionRule, RegressionRule)
+                    AllowedTransitionsRule, OpenShareRule, NewStateRule, NewTransitionRule, RegressionRule,
+                    PartialTrapRule)
 
 
 def builtin_rules() -> dict[str, Any]:

@@ -81,8 +81,15 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
         ],
         "open_cases": _open_cases(a),
         "outcomes": _outcomes(a),
+        "loops": [
+            {"states": list(lp.states), "entries": lp.entries, "rounds": lp.rounds, "left": lp.left, "open": lp.open,
+             "in_flight": lp.in_flight, "partial_trap": lp.partial_trap, "leavers_minority": lp.leavers_minority}
+            for lp in a.loops
+        ],
         "notes": list(a.notes),
     }
+    if a.case_times is not None or a.rework is not None:
+        doc["cases"] = _cases(a)
     if extended is not None:
         from ..analyze.extended import extended_document
 
@@ -103,6 +110,24 @@ def _open_cases(a: Analysis) -> dict[str, Any] | None:
             for r in oc.states
         ],
     }
+
+
+def _cases(a: Analysis) -> dict[str, Any]:
+    def t(r):
+        return {"name": r.name, "n": r.n, "mean_s": r.mean_s, "median_s": r.median_s, "p90_s": r.p90_s}
+
+    ct, rw = a.case_times, a.rework
+    out: dict[str, Any] = {"quantile_method": getattr(ct, "method", None) or getattr(rw, "method", None)}
+    if ct is not None:
+        out["time_to_goal"] = [t(r) for r in ct.to_goal]
+        out["dwell"] = [t(r) for r in ct.dwell]
+    if rw is not None:
+        out["rounds_over"] = rw.rounds
+        out["reentries"] = [{"state": r.state, "cases": r.cases, "reentered": r.reentered, "mean": r.mean,
+                             "median": r.median, "p90": r.p90, "max": r.max} for r in rw.states]
+        out["loops"] = [{"states": list(r.states), "cases": r.cases, "over": r.over, "max_rounds": r.max_rounds}
+                        for r in rw.loops]
+    return out
 
 
 def _outcomes(a: Analysis) -> dict[str, Any] | None:

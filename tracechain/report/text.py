@@ -154,6 +154,42 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines.append(f"  {oc.open_total:,} open, {oc.in_flight:,} in flight, {oc.finished:,} finished")
         lines.append("")
 
+    if a.loops:
+        lines.append("Loops (rework: states that cases go round; partial trap: some leave, open cases stay)")
+        lrows = []
+        for lp in a.loops[:10]:
+            names = ", ".join(safe_text(x, 30) for x in lp.states[:4]) + (" ..." if len(lp.states) > 4 else "")
+            lrows.append([names, f"{lp.entries:,}", f"{lp.rounds:,}", f"{lp.left:,}", f"{lp.open:,}",
+                          f"{lp.in_flight:,}", "PARTIAL TRAP" if lp.partial_trap else "-"])
+        lines += _table(["loop", "entries", "rounds", "left", "open", "in flight", "finding"], lrows,
+                        right={1, 2, 3, 4, 5})
+        if len(a.loops) > 10:
+            lines.append(f"  ... and {len(a.loops) - 10} more loops in the JSON output (--json)")
+        lines.append("")
+
+    ct = getattr(a, "case_times", None)
+    if ct is not None:
+        lines.append(f"Observed times (sessions themselves; percentiles: numpy '{ct.method}' method)")
+        trows = [[f"to goal {safe_text(r.name, 30)}", f"{r.n:,}", _dur(r.mean_s), _dur(r.median_s), _dur(r.p90_s)]
+                 for r in ct.to_goal]
+        trows += [[f"in {safe_text(r.name, 30)}", f"{r.n:,}", _dur(r.mean_s), _dur(r.median_s), _dur(r.p90_s)]
+                  for r in ct.dwell[:15]]
+        lines += _table(["time", "n", "mean", "median", "90%"], trows, right={1, 2, 3, 4})
+        if len(ct.dwell) > 15:
+            lines.append(f"  ... {len(ct.dwell) - 15} more states in the JSON output (--json)")
+        lines.append("")
+    rw = getattr(a, "rework", None)
+    if rw is not None:
+        rrows = [[safe_text(r.state, 40), f"{r.cases:,}", f"{r.reentered:,}", _num(r.mean), _num(r.median),
+                  _num(r.p90), f"{r.max:,}"] for r in rw.states if r.reentered][:15]
+        lines.append("Rework per case (re-entries of the cases that came back)")
+        lines += _table(["state", "cases", "came back", "mean", "median", "90%", "max"], rrows or [["none"] + [""] * 6],
+                        right={1, 2, 3, 4, 5, 6})
+        for lr in rw.loops:
+            lines.append(f"  loop {', '.join(safe_text(x, 30) for x in lr.states[:4])}: {lr.cases:,} cases entered, "
+                         f"{lr.over:,} went round more than {rw.rounds} times (most: {lr.max_rounds})")
+        lines.append("")
+
     lines.append("Communicating classes")
     cls_rows = []
     for k, cl in enumerate(a.classes.classes):

@@ -416,6 +416,7 @@ class SessionCounter:
         self._src_code: dict[str, int] = {}
         self.events = 0
         self.dropped = 0
+        self._cut_after: set[int] = set()  # base codes of states seen only in events cut after a goal
         self._pending: list[tuple[np.ndarray, ...]] = []
 
     # -- codes ------------------------------------------------------------------------
@@ -660,6 +661,9 @@ class SessionCounter:
             before = cg - base_at[seg]
             done0 = (seg_start & ~brk & self._c_done[s])[seg_start]  # continuing a finished session
             keep &= (before == 0) & ~done0[seg]
+            cut = ~keep & ~brk  # events dropped after a goal: remember which states they were
+            if cut.any():
+                self._cut_after.update(np.unique(x[cut]).tolist())
         # collapse immediate repeats (compared with the previous kept state)
         if self.collapse:
             kx = np.flatnonzero(keep)
@@ -920,6 +924,7 @@ class SessionCounter:
             "inactivity_gap_s": self.gap,
             "events_dropped_by_mapping": self.dropped,
             "session_keys": len(self._keys),
+            "cut_after_goal": sorted(self._names[c] for c in self._cut_after),
         }
         return TransitionCounts(
             states, counts, starts, ends, opened, gap_sum, gap_n,

@@ -1,0 +1,72 @@
+"""Observed times to the goal and dwell per state, against hand arithmetic and numpy.percentile
+(method "linear", named in the output)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from tracechain.analyze.case_times import case_times
+from tracechain.analyze.order import Sessions
+
+H = 3600.0
+
+
+def _sessions(rows):
+    by: dict[str, list] = {}
+    for s, t, e in rows:
+        by.setdefault(s, []).append((t, e))
+    keys = sorted(by)
+    return Sessions(tuple(tuple(e for _t, e in by[k]) for k in keys),
+                    tuple(np.array([t for t, _e in by[k]]) for k in keys), tuple(keys), ("done",))
+
+
+ROWS = [
+    ("a", 0 * H, "new"), ("a", 1 * H, "work"), ("a", 3 * H, "done"),
+    ("b", 0 * H, "new"), ("b", 2 * H, "work"), ("b", 7 * H, "done"),
+    ("c", 5 * H, "new"), ("c", 6 * H, "work"), ("c", 7 * H, "work2"), ("c", 15 * H, "done"),
+    ("d", 0 * H, "new"), ("d", 4 * H, "work"),  # never done
+]
+
+
+def test_time_to_goal_and_dwell_by_hand():
+    ct = case_times(_sessions(ROWS), goals=["done"])
+    (g,) = ct.to_goal
+    # a 3 h, b 7 h, c 15 - 5 = 10 h; d never reached it
+    assert g.n == 3
+    assert g.mean_s == pytest.approx((3 + 7 + 10) / 3 * H)
+    assert g.median_s == pytest.approx(7 * H)
+    assert g.p90_s == pytest.approx(np.percentile([3 * H, 7 * H, 10 * H], 90, method="linear"))
+    assert g.p90_s == pytest.approx((7 + 0.8 * 3) * H)  # rank 0.9 * 2 = 1.8: 7 + 0.8 * (10 - 7)
+    dw = {r.name: r for r in ct.dwell}
+    # new: a 1, b 2, c 1, d 4 hours; work: a 2, b 5, c 1 (d's last visit has no dwell); work2: c 8
+    assert dw["new"].n == 4 and dw["new"].median_s == pytest.approx(1.5 * H)
+    assert dw["work"].n == 3 and dw["work"].mean_s == pytest.approx(8 / 3 * H)
+    assert dw["work2"].p90_s == pytest.approx(8 * H)
+    assert "done" not in dw  # a goal ends the session
+    assert ct.method == "linear"
+
+
+def test_cli_cases_section_in_json_and_text(tmp_path, capsys):
+    import jsonschema
+
+    from tracechain.cli import main
+    from tracechain.report.json_report import load_schema
+
+    log = tmp_path / "t.jsonl"
+    log.write_text("".join(json.dumps({"case": s, "time": t, "event": e}) + "\n" for s, t, e in ROWS))
+    out = tmp_path / "c.json"
+    assert main(["analyze", str(log), "--goal", "done", "--cases", "--json", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "Observed times" in text and "numpy 'linear' method" in text
+    doc = json.loads(out.read_text(encoding="utf-8"))
+    jsonschema.Draft202012Validator(load_schema()).validate(doc)
+    (g,) = doc["cases"]["time_to_goal"]
+    assert (g["name"], g["n"], g["median_s"]) == ("done", 3, 7 * H)  # a 3 h, b 7 h, c 10 h
+    assert doc["cases"]["quantile_method"] == "linear"
+    dw = {r["name"]: r for r in doc["cases"]["dwell"]}
+    assert dw["work"]["n"] == 3 and dw["work"]["mean_s"] == pytest.approx(8 / 3 * H)
+    # nobody comes back to a state in this log
+    assert all(r["reentered"] == 0 for r in doc["cases"]["reentries"])

@@ -79,7 +79,7 @@ def _attach(svg: bytes, points: list[dict]) -> bytes:
         el = by_id.get(p["gid"])
         if el is None:
             raise RuntimeError(f"chart mark {p['gid']} missing from the SVG")
-        from .html import safe_name
+        from .names import safe_name
 
         for k, v in p.items():
             if k == "state":
@@ -99,7 +99,7 @@ def _plt():
 
 
 def _short(text: str, limit: int = 40) -> str:
-    from .html import safe_name
+    from .names import safe_name
 
     s = safe_name(text, limit)
     return s.replace("$", "\\$")  # no mathtext from a state name

@@ -597,6 +597,9 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
             k = codes.index("⊘ dead end")
             codes[k] += f" · {v:,} visits"
             extra = None
+        if has_counts and flying[i]:  # recent unfinished cases: right-censored, not stuck
+            fl = f"{int(flying[i]):,} in flight"
+            extra = f"{extra} · {fl}" if extra else fl
         kw.update(foc)
         return f"  n{i} " + _attrs(label=_label(*lines, *codes, *([extra] if extra else [])),
                                    style=",".join(style) if style != ["rounded"] else None, **kw) + ";"

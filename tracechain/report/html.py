@@ -29,12 +29,12 @@ import base64
 import hashlib
 import html
 import math
-import unicodedata
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
+from .names import safe_name  # noqa: F401  (part of this module's interface)
 from .._version import __version__
 from ..analyze.summary import Analysis
 from ..privacy import DATA_PROTECTION_CAUTION, Pseudonymizer
@@ -130,22 +130,6 @@ class Report:
 
 
 # -- escaping -------------------------------------------------------------------------------
-def safe_name(text: Any, limit: int = 120) -> str:
-    """Untrusted text made visible: control, format (bidi) and separator characters become
-    ``\\xNN`` / ``\\uNNNN`` escapes, and text longer than ``limit`` is shortened with "…".
-    The result is still plain text; each renderer escapes it for its format."""
-    out = []
-    for ch in str(text):
-        cat = unicodedata.category(ch)
-        if cat in ("Cc", "Cf", "Zl", "Zp", "Cs", "Co", "Cn") and ch != " ":
-            code = ord(ch)
-            out.append(f"\\x{code:02x}" if code <= 0xFF else f"\\u{code:04x}" if code <= 0xFFFF else f"\\U{code:08x}")
-        else:
-            out.append(ch)
-    s = "".join(out)
-    return s if len(s) <= limit else s[: limit - 1] + "…"
-
-
 def _e(text: Any, limit: int = 4000) -> str:
     """Plain text to HTML text (and attribute values): made visible, then escaped."""
     return html.escape(safe_name(text, limit), quote=True)

@@ -30,7 +30,7 @@ def clean_svg(svg: bytes | str, *, label: str, tags: set[str], attrs: set[str], 
     doctype). A ``url(...)`` is kept only as a local reference
     (``url(#id)``, prefixed); ``check_values``: no other value holding ``(`` either (charts); ``drop_size``: the root's width and height are removed so the
     page sizes the image."""
-    from .html import safe_name
+    from .names import safe_name
 
     data = svg.encode("utf-8") if isinstance(svg, str) else svg
     root = ET.fromstring(data)

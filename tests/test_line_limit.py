@@ -83,9 +83,8 @@ _CHILD = r"""
 import sys
 from tracechain.pipeline import count_sources
 counts, report = count_sources([sys.argv[1]], extra={"max_line_bytes": 1 << 20})
-# VmHWM: this process's own peak. ru_maxrss is not used: Linux keeps it across fork and exec, so a
-# child of a large pytest process would report the parent's size
-peak_mb = next(int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM:")) / 1024  # kB
+# this process's own peak (VmHWM, proc(5)); ru_maxrss would count the parent's pages forked before exec
+peak_mb = next(int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM:")) / 1024
 print(report.events, report.skipped["line too long"], int(peak_mb))
 """
 
@@ -187,9 +186,8 @@ import tracechain.ingest.cloudevents as ce
 from tracechain.pipeline import count_sources
 ce.MAX_VALUE = 1 << 20  # the bound on one JSON value, made small so the test stays small
 counts, report = count_sources([sys.argv[1]], format=sys.argv[2])
-# VmHWM: this process's own peak. ru_maxrss is not used: Linux keeps it across fork and exec, so a
-# child of a large pytest process would report the parent's size
-peak_mb = next(int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM:")) / 1024  # kB
+# this process's own peak (VmHWM, proc(5)); ru_maxrss would count the parent's pages forked before exec
+peak_mb = next(int(l.split()[1]) for l in open("/proc/self/status") if l.startswith("VmHWM:")) / 1024
 print(report.events, report.skipped["invalid JSON"], int(peak_mb))
 """
 

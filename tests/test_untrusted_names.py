@@ -119,7 +119,7 @@ def test_csv_cells_are_neutralised(files):
     _, _, out, _ = files
     rows = list(csv.reader(io.StringIO(out["csv"].read_bytes().decode("utf-8"), newline="")))  # keep bare CRs
     header, body = rows[0], rows[1:]
-    assert header[6] == f"p_reach:{GOAL}"
+    assert header[7] == f"p_reach:{GOAL}"  # after still_open, in_flight
     got = {r[0] for r in body}
     for name in NASTY + [GOAL]:
         want = "'" + name if name.startswith(FORMULA) else name

@@ -37,7 +37,7 @@ def assert_one_line_error(status: int, err: str, *needles: str):
 
 
 def test_analyze_prints_summary(run_cli, shop_log):
-    status, out, err = run_cli("analyze", shop_log, "--goal", "Paid")
+    status, out, err = run_cli("analyze", shop_log, "--goal", "Paid", "--min-visits", "1")  # a tiny log
     assert status == 0, err
     assert out.startswith("tracechain: 8 sessions, ")
     assert "goals: Paid" in out

@@ -183,6 +183,9 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--extended", action="store_true",
                    help="also report times, removal effects, most likely paths and intervals (see --seed)")
     o.add_argument("--seed", type=_seed, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
+    o.add_argument("--min-visits", type=_positive_int, default=5, metavar="N",
+                   help="dead ends and exit states with fewer than N visits are counted in one 'rare states' line "
+                        "instead of listed (default 5; 1 lists every state)")
     o.add_argument("--cases", action="store_true",
                    help="also read the sessions themselves (native engine; they are held in memory): observed "
                         "times to each goal and in each state (mean, median, 90th percentile), re-entries per "
@@ -272,7 +275,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     if args.max_states < 1:
         raise UsageError("--max-states must be at least 1")
     chain, report, settings = build_chain(args)
-    result = analyze(chain, report, top=args.top, settings=settings)
+    result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     if getattr(args, "cases", False):
         import dataclasses
 

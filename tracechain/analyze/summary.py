@@ -81,6 +81,7 @@ class Analysis:
     loops: tuple = ()  # Loop rows (analyze/loops.py)
     case_times: object = None  # CaseTimes from the sessions (analyze --cases)
     rework: object = None  # CaseRework from the sessions (analyze --cases)
+    rare: dict | None = None  # dead ends and exit states below min_visits, counted not listed
 
     # -- headline figures -------------------------------------------------------------
     @property
@@ -172,8 +173,19 @@ class Analysis:
         return display.bundle(self, include, exclude)
 
 
-def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, settings: dict | None = None) -> Analysis:
-    """Run the standard analyses of ``chain``."""
+#: states with fewer visits are counted in one "rare states" line instead of listed as dead ends
+#: or exit states on the command line (``--min-visits``); the API lists every state by default
+MIN_VISITS_DEFAULT = 5
+#: a hint to write a mapping file when there are more than this many states and fewer than
+#: ``MAPPING_HINT_SESSIONS_PER_STATE`` sessions per state
+MAPPING_HINT_STATES = 50
+MAPPING_HINT_SESSIONS_PER_STATE = 5
+
+
+def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, settings: dict | None = None,
+            min_visits: int = 1) -> Analysis:
+    """Run the standard analyses of ``chain``; dead ends and exit states with fewer than
+    ``min_visits`` visits are counted in ``Analysis.rare`` instead of listed."""
     classes = communicating_classes(chain)
     ab = absorbing_analysis(chain, classes)
     notes: list[str] = []
@@ -244,8 +256,26 @@ def analyze(chain: Chain, report: ParseReport | None = None, top: int = 10, sett
                 f"its {lp.entries} entries) past the stale limit while {lp.left} left it"
                 + ("; the leavers are a minority" if lp.leavers_minority else "")
             )
+    all_dead = dead_ends(chain)
+    all_exits = exit_states(chain, None)
+    kept_dead = tuple(d for d in all_dead if d.visits >= min_visits)
+    kept_exits = tuple(e for e in all_exits if e.visits >= min_visits)
+    rare = None
+    if min_visits > 1:
+        rd = [d for d in all_dead if d.visits < min_visits]
+        rx = [e for e in all_exits if e.visits < min_visits]
+        rare = {"min_visits": int(min_visits), "dead_ends": len(rd), "dead_end_sessions_lost": sum(d.sessions_lost for d in rd),
+                "exit_states": len(rx), "exit_sessions_lost": sum(e.sessions_lost for e in rx)}
+    n_states = len(chain.observed)
+    sessions = int(chain.counts.sessions) if chain.counts is not None else 0
+    if n_states > MAPPING_HINT_STATES and sessions < MAPPING_HINT_SESSIONS_PER_STATE * n_states:
+        notes.append(
+            f"{n_states} states for {sessions} sessions (fewer than {MAPPING_HINT_SESSIONS_PER_STATE} per state): most "
+            "states are seen a few times; a mapping file (--mapping) that groups raw names (URL patterns, ids) into "
+            "states would give steadier figures"
+        )
     return Analysis(
-        chain=chain, loops=found_loops, classes=classes, absorbing=ab, dead_ends=dead_ends(chain),
-        exits=exit_states(chain, top), unreachable=goal_unreachable(chain), report=report,
+        chain=chain, loops=found_loops, rare=rare, classes=classes, absorbing=ab, dead_ends=kept_dead,
+        exits=kept_exits[:top] if top else kept_exits, unreachable=goal_unreachable(chain), report=report,
         notes=tuple(notes), settings=dict(settings or {}), open_cases=oc, outcomes=outcomes,
     )

@@ -81,6 +81,7 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
         ],
         "open_cases": _open_cases(a),
         "outcomes": _outcomes(a),
+        "rare_states": dict(a.rare) if a.rare else None,
         "loops": [
             {"states": list(lp.states), "entries": lp.entries, "rounds": lp.rounds, "left": lp.left, "open": lp.open,
              "in_flight": lp.in_flight, "partial_trap": lp.partial_trap, "leavers_minority": lp.leavers_minority}

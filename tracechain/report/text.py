@@ -124,6 +124,12 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines.append("  none")
     lines.append("")
 
+    rare = getattr(a, "rare", None)
+    if rare and (rare["dead_ends"] or rare["exit_states"]):
+        lines.append(f"  rare states (fewer than {rare['min_visits']} visits, --min-visits): {rare['dead_ends']:,} dead "
+                     f"end(s) losing {rare['dead_end_sessions_lost']:,} session(s), {rare['exit_states']:,} exit "
+                     f"state(s) losing {rare['exit_sessions_lost']:,}; not listed")
+        lines.append("")
     lines.append("Top exit states (sessions that ended there without converting)")
     if a.exits:
         lines += _table(

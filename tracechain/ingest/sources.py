@@ -79,7 +79,7 @@ class Source:
     max_line_bytes: int | None = field(default=None, compare=False, repr=False)
     #: called with ``(line_number, length, blanked)`` for each line longer than that, whose bytes are
     #: discarded as they are read; without it such a line is an :class:`IngestError`
-    on_long_line: Callable[[int, int], None] | None = field(default=None, compare=False, repr=False)
+    on_long_line: Callable[[int, int, bool], None] | None = field(default=None, compare=False, repr=False)
 
 
 def _not_regular(mode: int) -> str | None:

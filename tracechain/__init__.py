@@ -18,6 +18,7 @@ from .counts import TransitionCounts  # noqa: E402
 from .events import EventChunk, ParseReport  # noqa: E402
 from .ingest.fields import FieldSpec  # noqa: E402
 from .pipeline import ShapeOptions, count_chunks, count_sources, read_events  # noqa: E402
+from .engines.spark_engine import counts_from_spark  # noqa: E402
 from .shape.mapping import Mapping, load_mapping, parse_mapping  # noqa: E402
 # the analysis bundle is exported as ``analyze_chain``: binding the name ``analyze`` here
 # would hide the ``tracechain.analyze`` subpackage from ``import tracechain.analyze.x``
@@ -28,6 +29,7 @@ from .analyze.classes import communicating_classes  # noqa: E402
 from .analyze.dead_ends import dead_ends, exit_states, goal_unreachable  # noqa: E402
 
 __all__ = [
+    "counts_from_spark",
     "__version__",
     "Chain",
     "TransitionCounts",

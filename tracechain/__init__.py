@@ -17,6 +17,7 @@ from .counts import TransitionCounts  # noqa: E402
 from .events import EventChunk, ParseReport  # noqa: E402
 from .ingest.fields import FieldSpec  # noqa: E402
 from .pipeline import ShapeOptions, count_chunks, count_sources, read_events  # noqa: E402
+from .engines.spark_engine import counts_from_spark  # noqa: E402
 from .shape.mapping import Mapping, load_mapping, parse_mapping  # noqa: E402
 # the analysis bundle is exported as ``analyze_chain``: binding the name ``analyze`` here
 # would hide the ``tracechain.analyze`` subpackage from ``import tracechain.analyze.x``
@@ -46,6 +47,7 @@ from . import display as _display  # noqa: E402
 _display.register(_notebook_svg, _notebook_bundle)
 
 __all__ = [
+    "counts_from_spark",
     "__version__",
     "Chain",
     "TransitionCounts",

@@ -101,7 +101,11 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     e.add_argument("--engine", choices=ENGINE_CHOICES, default="auto",
                    help="native: tracechain's own reader; duckdb: read, sessionize, map and count inside DuckDB "
                         "(Parquet, CSV, JSON Lines); auto (default): native for files, the database itself for a "
-                        "sqlite:/// or postgresql:// URL or a DuckDB database file")
+                        "sqlite:/// or postgresql:// URL or a DuckDB database file; spark: the same counting as a "
+                        "Spark job (Parquet, CSV, JSON Lines; local paths or hdfs://, s3a:// URLs)")
+    e.add_argument("--spark-master", metavar="URL",
+                   help="with --engine spark: the cluster's master (spark://host:7077, yarn, local[4]); default "
+                        "local[*], or $TRACECHAIN_SPARK_MASTER")
     e.add_argument("--table", metavar="NAME", help="the events table of a database (URL or DuckDB file)")
     e.add_argument("--query", metavar="SQL", help="a query giving the events of a database (run as a subquery, "
                                                   "read-only)")
@@ -349,8 +353,11 @@ def cmd_formats(args: argparse.Namespace) -> int:
                   "(--table/--query)",
         "sqlite": "sqlite:///file.db with --table/--query (Python's sqlite3)",
         "postgresql": "postgresql://user@host/db with --table/--query (psycopg)",
+        "spark": "Parquet (hive partitions too), CSV and JSON Lines as a Spark job (--spark-master URL); "
+                 "counts_from_spark(df) in Python",
     }
-    extra = {"duckdb": "pip install 'tracechain[duckdb]'", "postgresql": "pip install 'tracechain[postgresql]'"}
+    extra = {"duckdb": "pip install 'tracechain[duckdb]'", "postgresql": "pip install 'tracechain[postgresql]'",
+             "spark": "pip install 'tracechain[spark]' and Java 17+"}
     for name, ok in installed_engines().items():
         state = "installed" if ok else f"not installed ({extra.get(name, '')})"
         print(f"{name:10s} {state:9s} {what[name]}")

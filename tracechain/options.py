@@ -123,13 +123,14 @@ def count_from_args(args: argparse.Namespace, shape: ShapeOptions, fields: Field
                       format=fmt, fields=fields, shape=shape, strict=args.strict, extra=extra,
                       table=getattr(args, "table", None), query=getattr(args, "query", None),
                       order_by=getattr(args, "order_by", None), finish_session=finish_session,
-                      finished_names=finished_names, progress=progress_from_args(args))
+                      finished_names=finished_names, progress=progress_from_args(args),
+                      spark_master=getattr(args, "spark_master", None))
 
 
 def native_only(args: argparse.Namespace, what: str) -> None:
     """Refuse the engine options for a command that reads event sequences itself."""
     if getattr(args, "engine", "auto") not in (None, "auto", "native") or getattr(args, "table", None) \
-            or getattr(args, "query", None) or getattr(args, "order_by", None):
+            or getattr(args, "query", None) or getattr(args, "order_by", None) or getattr(args, "spark_master", None):
         raise UsageError(f"{what} reads the sessions themselves, which only the native engine gives; drop "
                          "--engine, --table, --query and --order-by")
 

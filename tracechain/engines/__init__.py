@@ -6,6 +6,9 @@ DuckDB database file; ``sqlite`` and ``postgresql`` run it inside the database n
 URL. Every engine returns the same :class:`~tracechain.counts.TransitionCounts` for the
 same data and shaping options (checked by differential tests against the native engine).
 
+``spark`` runs the same counting statement as Spark SQL on any path Spark reads
+(:mod:`tracechain.engines.spark_engine`).
+
 ``auto`` (the default): the native engine for files and standard input, the database's
 own engine for a database URL, DuckDB for a DuckDB database file given with ``--table``
 or ``--query``.
@@ -22,15 +25,17 @@ from ..errors import UsageError
 __all__ = ["ENGINE_CHOICES", "installed_engines", "engines_line", "count_data"]
 
 #: values of ``--engine``
-ENGINE_CHOICES = ("auto", "native", "duckdb")
+ENGINE_CHOICES = ("auto", "native", "duckdb", "spark")
 
 
 def installed_engines() -> dict[str, bool]:
     """Engine name -> whether it can run in this installation."""
     from .databases import psycopg_available
     from .duckdb_engine import available as duckdb_available
+    from .spark_engine import available as spark_available, java_found
 
-    return {"native": True, "duckdb": duckdb_available(), "sqlite": True, "postgresql": psycopg_available()}
+    return {"native": True, "duckdb": duckdb_available(), "sqlite": True, "postgresql": psycopg_available(),
+            "spark": spark_available() and java_found() is not None}
 
 
 def engines_line() -> str:
@@ -56,6 +61,7 @@ def count_data(
     paths: Iterable[str], *, engine: str = "auto", format: str | None = None, fields=None, shape=None,
     strict: bool = False, extra: dict[str, Any] | None = None, table: str | None = None, query: str | None = None,
     order_by: str | None = None, finish_session=None, finished_names=None, progress: Any = None, stdin=None,
+    spark_master: str | None = None,
 ):
     """Read, shape and count with the chosen engine; ``(TransitionCounts, ParseReport)``.
 
@@ -93,6 +99,18 @@ def count_data(
         from .duckdb_engine import count_database
 
         return count_database(paths[0], table, query, fields, shape, order_by, finished_names)
+    if spark_master is not None and engine != "spark":
+        raise UsageError("--spark-master is for --engine spark")
+    if engine == "spark":
+        _refuse_extra(extra, False, "spark", None)
+        if finish_session is not None and finished_names is None:
+            raise UsageError("the spark engine cannot run a finish_session callback; pass finished_names")
+        if strict:
+            raise UsageError("--strict is about malformed lines, which Spark's readers do not report; use "
+                             "--engine native or duckdb")
+        from .spark_engine import count_files as spark_count_files
+
+        return spark_count_files(paths, fields, shape, format, order_by, finished_names, master=spark_master)
     if engine == "duckdb":
         extra = dict(extra or {})
         max_line_bytes = extra.pop("max_line_bytes", None)  # (the duckdb engine has it for CSV)

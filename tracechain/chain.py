@@ -261,6 +261,37 @@ class Chain:
             return self.P.copy()
         return _count_matrix(self)
 
+    def to_networkx(self):
+        """The chain as a ``networkx.DiGraph`` for people who continue in Python.
+
+        Nodes are the states (windows of a higher-order chain stay tuples), with the attributes
+        ``label`` (the text reports use), ``role`` (start, transient, goal, terminal, sink, end)
+        and ``index`` (the position in :attr:`states` and in ``P``). Edges are the observed
+        transitions, with ``probability`` (the entry of ``P``) and ``count`` (how many times it was
+        seen; absent for a chain built with :meth:`from_matrix`). The self-loop of probability 1
+        that the matrix gives every absorbing state is a convention of the matrix, not something
+        seen, so it is left out unless it was observed.
+        """
+        import networkx as nx
+
+        G = nx.DiGraph()
+        absorbing = self.absorbing_mask
+        for i, s in enumerate(self.states):
+            G.add_node(s, label=self.label(i), role=self.roles[i], index=i)
+        P = self.P.tocoo()
+        W = self.weights.tocsr() if self.counts is not None else None
+        for i, j, p in zip(P.row.tolist(), P.col.tolist(), P.data.tolist()):
+            if p == 0:
+                continue
+            count = int(W[i, j]) if W is not None else None
+            if i == j and absorbing[i] and not count:
+                continue
+            attrs = {"probability": float(p)}
+            if count is not None:
+                attrs["count"] = count
+            G.add_edge(self.states[i], self.states[j], **attrs)
+        return G
+
     def __repr__(self) -> str:
         ng = len(self.goals)
         return f"Chain({self.n} states, {self.P.nnz} edges, {ng} goal{'s' if ng != 1 else ''})"

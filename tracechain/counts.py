@@ -26,6 +26,14 @@ START = -1
 END = -2
 
 
+def _pandas(what: str):
+    try:
+        import pandas
+    except ImportError:
+        raise ImportError(f"{what} needs pandas: pip install pandas") from None
+    return pandas
+
+
 def state_label(state: State, sep: str = " › ") -> str:
     """A readable label for a state (windows joined oldest first)."""
     if isinstance(state, tuple):
@@ -188,6 +196,74 @@ class TransitionCounts:
         for i in np.flatnonzero(self.ends):
             out[(self.states[i], end)] = int(self.ends[i])
         return out
+
+    # tables for people who continue in Python -------------------------------------------
+    def to_pandas(self, start: Any = "[start]", end: Any = "[end]"):
+        """The counts as an edge table (a ``pandas.DataFrame``), one row per observed edge.
+
+        Columns: ``from``, ``to`` (state labels; windows of a higher-order chain stay tuples),
+        ``count``, ``gap_sum_s`` (sum of the time gaps in seconds over the ``gap_n`` transitions
+        that had one; 0 and 0 for the pseudo-state edges) and ``gap_n``. Sessions starting in a
+        state are rows from ``start``; sessions ending after one, rows to ``end``; sessions still
+        open are not edges and are left out (``open`` on the object keeps them).
+        :meth:`from_pandas` reads the table back. Needs pandas (``pip install pandas``).
+        """
+        pd = _pandas("TransitionCounts.to_pandas")
+        coo = self.counts.tocoo()
+        keep = coo.data != 0
+        ri, ci = coo.row[keep], coo.col[keep]
+        gap_sum = np.asarray(self.gap_sum[ri, ci]).ravel() if ri.size else np.zeros(0)
+        gap_n = np.asarray(self.gap_n[ri, ci]).ravel() if ri.size else np.zeros(0, dtype=np.int64)
+        si, ei = np.flatnonzero(self.starts), np.flatnonzero(self.ends)
+        states = list(self.states)
+        frm = [states[i] for i in ri] + [start] * len(si) + [states[i] for i in ei]
+        to = [states[j] for j in ci] + [states[i] for i in si] + [end] * len(ei)
+        return pd.DataFrame({
+            "from": pd.Series(frm, dtype=object),
+            "to": pd.Series(to, dtype=object),
+            "count": np.concatenate([coo.data[keep], self.starts[si], self.ends[ei]]).astype(np.int64),
+            "gap_sum_s": np.concatenate([gap_sum.astype(np.float64), np.zeros(len(si) + len(ei))]),
+            "gap_n": np.concatenate([gap_n.astype(np.int64), np.zeros(len(si) + len(ei), dtype=np.int64)]),
+        })
+
+    @classmethod
+    def from_pandas(cls, frame, *, start: Any = "[start]", end: Any = "[end]", sessions: int | None = None,
+                    from_col: str = "from", to_col: str = "to", count_col: str = "count") -> "TransitionCounts":
+        """Counts from an edge table such as :meth:`to_pandas` writes (or any DataFrame with a
+        from, a to and a count column; ``gap_sum_s`` and ``gap_n`` are used when present).
+
+        Rows with the same (from, to) are added up. ``sessions`` defaults to the sum of the counts
+        leaving ``start``. Raises ``ValueError`` for a missing column or a count that is negative,
+        not a whole number or missing.
+        """
+        missing = [c for c in (from_col, to_col, count_col) if c not in frame.columns]
+        if missing:
+            raise ValueError(f"the table has no column {missing[0]!r} (columns: {', '.join(map(str, frame.columns))})")
+        raw = frame[count_col].to_numpy()
+        try:
+            values = np.asarray(raw, dtype=np.float64)
+        except (TypeError, ValueError):
+            raise ValueError(f"column {count_col!r} must hold whole numbers") from None
+        if values.size and (not np.all(np.isfinite(values)) or values.min() < 0 or np.any(values != np.round(values))):
+            raise ValueError(f"column {count_col!r} must hold whole non-negative numbers (no gaps, no fractions)")
+        counts_ = np.asarray(raw).astype(np.int64) if values.size else np.zeros(0, dtype=np.int64)
+        has_gaps = "gap_sum_s" in frame.columns and "gap_n" in frame.columns
+        edges: dict = {}
+        gaps: dict = {}
+        gap_counts: dict = {}
+        cols = [frame[from_col].tolist(), frame[to_col].tolist(), counts_.tolist()]
+        if has_gaps:
+            cols += [frame["gap_sum_s"].tolist(), frame["gap_n"].tolist()]
+        for row in zip(*cols):
+            a, b, c = row[0], row[1], row[2]
+            a = tuple(a) if isinstance(a, list) else a
+            b = tuple(b) if isinstance(b, list) else b
+            edges[(a, b)] = edges.get((a, b), 0) + int(c)
+            if has_gaps and a != start and b != end:
+                gaps[(a, b)] = gaps.get((a, b), 0.0) + float(row[3])
+                gap_counts[(a, b)] = gap_counts.get((a, b), 0) + int(row[4])
+        return cls.from_edges(edges, start=start, end=end, gaps=gaps if has_gaps else None, sessions=sessions,
+                              gap_counts=gap_counts if has_gaps else None)
 
     # merging ----------------------------------------------------------------------
     def reindex(self, states: tuple) -> "TransitionCounts":

@@ -13,6 +13,8 @@ from datetime import datetime, timezone
 from importlib import resources
 from typing import Any
 
+import numpy as np
+
 from .._version import __version__
 from ..analyze.summary import Analysis
 
@@ -87,6 +89,7 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
              "in_flight": lp.in_flight, "partial_trap": lp.partial_trap, "leavers_minority": lp.leavers_minority}
             for lp in a.loops
         ],
+        "edges": _edges(ch),
         "notes": list(a.notes),
     }
     if a.case_times is not None or a.rework is not None:
@@ -96,6 +99,27 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
 
         doc["extended"] = extended_document(extended)
     return doc
+
+
+def _edges(ch) -> dict[str, list]:
+    """The edge list, column by column (``from``, ``to``: state labels; ``count``; ``probability``):
+    one list per column keeps a chain of millions of edges cheap to write and to read
+    (``pandas.DataFrame(doc["edges"])``). The self-loop of probability 1 of an absorbing state is a
+    convention of the matrix, not an observation, and is left out unless it was seen."""
+    P = ch.P.tocoo()
+    W = ch.weights.tocsr() if ch.counts is not None else None
+    rows, cols, probs = P.row, P.col, P.data
+    seen = np.asarray(W[rows, cols]).ravel() if (W is not None and rows.size) else None
+    keep = probs != 0
+    loops = (rows == cols) & ch.absorbing_mask[rows]
+    keep &= ~loops if seen is None else ~(loops & (seen == 0))
+    labels = [ch.label(i) for i in range(ch.n)]
+    return {
+        "from": [labels[i] for i in rows[keep].tolist()],
+        "to": [labels[j] for j in cols[keep].tolist()],
+        "count": seen[keep].astype(np.int64).tolist() if seen is not None else [None] * int(keep.sum()),
+        "probability": probs[keep].astype(float).tolist(),
+    }
 
 
 def _open_cases(a: Analysis) -> dict[str, Any] | None:

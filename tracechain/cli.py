@@ -196,9 +196,16 @@ def build_parser() -> argparse.ArgumentParser:
                         "state and rounds per loop")
     o.add_argument("--loop-rounds", type=_positive_int, default=3, metavar="N",
                    help="with --cases: count the cases that went round a loop more than N times (default 3)")
+    o.add_argument("--stuck-cases", metavar="FILE",
+                   help="write the stuck (open) cases themselves, oldest first: session key, state, time of the "
+                        "last event, age; CSV, or JSON when FILE ends in .json ('-': CSV on stdout). Needs terminal "
+                        "states (--terminal or the mapping file) and the native engine; keys are pseudonymised "
+                        "unless --raw-keys")
     from .analyze.commands import add_interval_options
+    from .privacy import add_privacy_options
 
     add_interval_options(o)
+    add_privacy_options(a)
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
     f.add_argument("--fields", action="store_true",
@@ -278,6 +285,8 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--top must be at least 0 (0 lists every exit state)")
     if args.max_states < 1:
         raise UsageError("--max-states must be at least 1")
+    if getattr(args, "stuck_cases", None):
+        _stuck_cases_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     if getattr(args, "cases", False):
@@ -304,6 +313,8 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         ext = extended_analysis(chain, seed=args.seed, top=args.top or None, level=args.level, intervals=method,
                                 interval_sessions=boot)
     written = []
+    if getattr(args, "stuck_cases", None):
+        written.append(_write_stuck_cases(args, chain))
     if args.json:
         written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))
     wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
@@ -327,6 +338,34 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         if w != "-":
             print(f"wrote {w}", file=sys.stderr)
     return EXIT_OK
+
+
+def _stuck_cases_possible(args: argparse.Namespace) -> None:
+    if not shape_from_args(args)[3]:
+        raise UsageError("--stuck-cases needs terminal states, to tell open cases from finished ones: "
+                         "--terminal STATE or 'terminal:' in the mapping file")
+    native_only(args, "--stuck-cases")
+
+
+def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
+    """``--stuck-cases FILE``: the open cases recorded by the counter (see tracechain.report.stuck_cases)."""
+    from .analyze.stuck import stuck_case_list
+    from .privacy import announce_salt, pseudonymizer_from_args
+    from .report.stuck_cases import render_stuck_cases
+
+    got = stuck_case_list(chain.counts) if chain.counts is not None else None
+    if got is None:
+        if not (chain.counts is not None and chain.counts.meta.get("open_cases")):
+            raise UsageError("--stuck-cases needs terminal states, to tell open cases from finished ones: "
+                             "--terminal STATE or 'terminal:' in the mapping file")
+        raise UsageError("--stuck-cases needs the native engine (--engine native): the other engines return "
+                         "counts per state, not the cases")
+    as_of, cases = got
+    pseudo = pseudonymizer_from_args(args)
+    announce_salt(pseudo)
+    info = chain.counts.meta["open_cases"]
+    return write_output(args.stuck_cases, render_stuck_cases(args.stuck_cases, cases, pseudo, as_of,
+                                                             info.get("stale_after_s")))
 
 
 def cmd_formats(args: argparse.Namespace) -> int:

@@ -22,7 +22,7 @@ import numpy as np
 
 from ..counts import TransitionCounts, state_label
 
-__all__ = ["StuckState", "OpenCases", "open_cases"]
+__all__ = ["StuckState", "OpenCases", "open_cases", "StuckCase", "stuck_case_list"]
 
 
 @dataclass(frozen=True)
@@ -80,3 +80,32 @@ def open_cases(counts: TransitionCounts) -> OpenCases | None:
         open_total=int(counts.open.sum()), in_flight=int(info.get("in_flight", 0)),
         finished=int(info.get("finished", 0)), states=tuple(rows),
     )
+
+
+@dataclass(frozen=True)
+class StuckCase:
+    """One open (stuck) case: its session key (raw: pseudonymise before showing it), the state it
+    is stuck in, the time of its last event (seconds since the epoch, None when unknown) and its age
+    at ``as_of`` in seconds (None when either time is unknown)."""
+
+    key: str
+    state: str
+    last_event: float | None
+    age_s: float | None
+
+
+def stuck_case_list(counts: TransitionCounts) -> tuple[float | None, list[StuckCase]] | None:
+    """``(as_of, cases)``: the open cases the counter recorded, oldest first (unknown ages last,
+    then by state and key), or None when the counts carry no such record (no case policy, or an
+    engine that returns only counts)."""
+    info = counts.meta.get("open_cases")
+    if not info or "stuck_cases" not in info:
+        return None
+    as_of = info.get("as_of")
+    out = []
+    for key, state, last in info["stuck_cases"]:
+        last = _finite(last) if last is not None else None
+        age = _finite(as_of - last) if (as_of is not None and last is not None) else None
+        out.append(StuckCase(str(key), str(state), last, age))
+    out.sort(key=lambda c: (c.age_s is None, -(c.age_s or 0.0), c.state, c.key))
+    return as_of, out

@@ -556,9 +556,13 @@ class SessionCounter:
             for c in states[flight_mask]:
                 lab = state_label(labels[c - 2])
                 flying[lab] = flying.get(lab, 0) + 1
+            # the open cases themselves (key, state, time of the last event), for the list of stuck
+            # cases: one entry per open case, as the ages above already are
+            stuck = [(self._keys.key(int(k)), state_label(labels[c - 2]), float(tm))
+                     for k, c, tm in zip(live[open_mask], states[open_mask], rt[open_mask])]
             info = {"as_of": as_of, "stale_after_s": cases.stale_after, "terminal": sorted(cases.terminal),
                     "in_flight": int(flight_mask.sum()), "finished": int(finished.sum()), "ages": ages,
-                    "in_flight_states": flying}
+                    "in_flight_states": flying, "stuck_cases": stuck}
         ended = live[~open_mask & ~flight_mask]
         self._emit(self._c_state[ended], np.full(len(ended), _E), np.full(len(ended), np.nan),
                    self._c_line[ended], self._c_src[ended], ended)

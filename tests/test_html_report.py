@@ -127,7 +127,7 @@ def shop_html(tmp_path_factory):
     with open(log, "a", encoding="utf-8") as f:
         f.write('{"session_id": "v99", "timestamp": 1\n')  # cut short: invalid JSON
     out = d / "r.html"
-    assert commands_main(["report", str(log), "--goal", "Paid", "--html", str(out), "--salt", "s"]) == 0
+    assert commands_main(["report", str(log), "--goal", "Paid", "--min-visits", "1", "--html", str(out), "--salt", "s"]) == 0
     return out.read_text(encoding="utf-8")
 
 

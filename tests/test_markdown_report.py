@@ -80,7 +80,7 @@ def shop_md(tmp_path_factory):
     d = tmp_path_factory.mktemp("md")
     log = write_jsonl(d / "shop.jsonl", shop_rows())
     md, html = d / "r.md", d / "r.html"
-    assert commands_main(["report", str(log), "--goal", "Paid", "--markdown", str(md), "--html", str(html)]) == 0
+    assert commands_main(["report", str(log), "--goal", "Paid", "--min-visits", "1", "--markdown", str(md), "--html", str(html)]) == 0
     return md.read_text(encoding="utf-8"), str(html)
 
 

@@ -43,7 +43,7 @@ __all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
 from .options import (  # noqa: E402, F401
     _OUTPUT_OPTIONS, EXIT_ERROR, EXIT_FINDINGS, EXIT_INTERRUPTED, EXIT_OK, MAX_DRAWS, MAX_SESSIONS, _positive_int, _seed,
     _share, count_from_args, whole_number,
-    native_only, progress_from_args, shape_from_args,
+    native_only, progress_from_args, shape_from_args, add_case_figure_options, with_case_figures,
 )
 EXIT_PIPE = 141  # 128 + SIGPIPE: standard output's reader went away (``| head``); no message
 
@@ -187,15 +187,7 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--extended", action="store_true",
                    help="also report times, removal effects, most likely paths and intervals (see --seed)")
     o.add_argument("--seed", type=_seed, default=0, metavar="S", help="seed of the intervals' random draws (default 0)")
-    o.add_argument("--min-visits", type=_positive_int, default=5, metavar="N",
-                   help="dead ends and exit states with fewer than N visits are counted in one 'rare states' line "
-                        "instead of listed (default 5; 1 lists every state)")
-    o.add_argument("--cases", action="store_true",
-                   help="also read the sessions themselves (native engine; they are held in memory): observed "
-                        "times to each goal and in each state (mean, median, 90th percentile), re-entries per "
-                        "state and rounds per loop")
-    o.add_argument("--loop-rounds", type=_positive_int, default=3, metavar="N",
-                   help="with --cases: count the cases that went round a loop more than N times (default 3)")
+    add_case_figure_options(o)
     o.add_argument("--stuck-cases", metavar="FILE",
                    help="write the stuck (open) cases themselves, oldest first: session key, state, time of the "
                         "last event, age; CSV, or JSON when FILE ends in .json ('-': CSV on stdout). Needs terminal "
@@ -289,17 +281,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         _stuck_cases_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
-    if getattr(args, "cases", False):
-        import dataclasses
-
-        from .analyze.case_times import case_times
-        from .analyze.commands import sessions_from_args
-        from .analyze.loops import case_rework
-
-        sess = sessions_from_args(args, "analyze --cases")
-        result = dataclasses.replace(
-            result, case_times=case_times(sess, result.goal_labels),
-            rework=case_rework(sess, [lp.states for lp in result.loops], rounds=args.loop_rounds))
+    result = with_case_figures(result, args)
     ext = None
     if not args.extended and (args.intervals != "posterior" or args.level != 0.95):
         print("tracechain: warning: --intervals and --level apply to the intervals of --extended; add it to see them",

@@ -176,3 +176,32 @@ def sessions_from_args(args, what: str):
     return session_sequences(read_events(args.paths, format=args.format,
                                          options=ReadOptions(fields=fields, strict=args.strict),
                                          progress=progress_from_args(args)), shape)
+
+
+def add_case_figure_options(group) -> None:
+    """``--min-visits``, ``--cases`` and ``--loop-rounds`` (analyze, report: one definition for both, so that
+    the two commands list the same states and the same observed times for the same input)."""
+    group.add_argument("--min-visits", type=_positive_int, default=5, metavar="N",
+                       help="dead ends and exit states with fewer than N visits are counted in one 'rare states' "
+                            "line instead of listed (default 5; 1 lists every state)")
+    group.add_argument("--cases", action="store_true",
+                       help="also read the sessions themselves (native engine; they are held in memory): observed "
+                            "times to each goal and in each state (mean, median, 90th percentile), re-entries per "
+                            "state and rounds per loop")
+    group.add_argument("--loop-rounds", type=_positive_int, default=3, metavar="N",
+                       help="with --cases: count the cases that went round a loop more than N times (default 3)")
+
+
+def with_case_figures(result, args):
+    """``result`` (an Analysis) with the observed times and rework per case when ``--cases`` is given."""
+    if not getattr(args, "cases", False):
+        return result
+    import dataclasses
+
+    from .analyze.case_times import case_times
+    from .analyze.loops import case_rework
+
+    sess = sessions_from_args(args, f"{args.command} --cases")
+    return dataclasses.replace(
+        result, case_times=case_times(sess, result.goal_labels),
+        rework=case_rework(sess, [lp.states for lp in result.loops], rounds=args.loop_rounds))

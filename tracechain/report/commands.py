@@ -59,7 +59,8 @@ def _diagram_options(p: argparse.ArgumentParser) -> None:
 
 def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
-    from ..options import MAX_DRAWS, _seed, _share, add_interval_options, add_level_option, whole_number
+    from ..options import (MAX_DRAWS, _seed, _share, add_case_figure_options, add_interval_options, add_level_option,
+                           whole_number)
     from ..cli import _add_input_options
 
     r = subparsers.add_parser(
@@ -80,6 +81,7 @@ def register(subparsers) -> None:
     o.add_argument("--top", type=int, default=15, metavar="N", help="rows in the loss tables (default 15)")
     o.add_argument("--seed", type=_seed, default=0, help="seed of the interval draws (default 0)")
     add_interval_options(o)
+    add_case_figure_options(o)
     o.add_argument("--order-test", action="store_true",
                    help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
                         "memory) and state the result among the assumptions")
@@ -261,7 +263,7 @@ def _render_diagram(diagram, fmt: str) -> bytes:
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
     from ..cli import build_chain
-    from ..options import EXIT_OK
+    from ..options import EXIT_OK, with_case_figures
     from ..errors import UsageError
     from ..shape.mapping import load_mapping
     from .csv_report import render_csv
@@ -280,7 +282,8 @@ def cmd_report(args: argparse.Namespace) -> int:
     if outs.count("-") > 1:
         raise UsageError("only one output can go to standard output ('-')")
     chain, report, settings = build_chain(args)
-    result = analyze(chain, report, top=max(args.top, 10), settings=settings)
+    result = with_case_figures(analyze(chain, report, top=max(args.top, 10), settings=settings,
+                                       min_visits=args.min_visits), args)
     groups = (load_mapping(args.mapping).groups or None) if args.mapping else None
     pseudo = _pseudonymizer(args)
     diagram = svg = missing = None

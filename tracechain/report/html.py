@@ -372,6 +372,65 @@ def _loss_sections(a: Analysis, pseudo: Pseudonymizer, top: int) -> list[Section
     return out
 
 
+def _loop_and_time_sections(a: Analysis, top: int) -> list[Section]:
+    """Loops (always), observed times and rework per case (with ``--cases``)."""
+    out = []
+    if a.loops:
+        rows = []
+        for lp in a.loops[:top]:
+            names = ", ".join(safe_name(x, 40) for x in lp.states[:4]) + (" …" if len(lp.states) > 4 else "")
+            rows.append([names, _int(lp.entries), _int(lp.rounds), _int(lp.left), _int(lp.open), _int(lp.in_flight),
+                         "partial trap" if lp.partial_trap else "–"])
+        out.append(Section("loops", "Loops: rework that cases go round", [
+            Para("A loop is a set of states that can each reach the others (a communicating class of more than "
+                 "one state, or a state with an edge to itself). Entries: arrivals into the loop from outside; "
+                 "rounds: transitions inside it; left: departures out of it; open and in flight: cases whose last "
+                 "event is inside it. A partial trap is a loop whose leavers are a minority of the cases that "
+                 "entered it, or that holds cases open past the stale limit."),
+            Table(["loop", "entries", "rounds", "left", "open", "in flight", "finding"], rows,
+                  frozenset({1, 2, 3, 4, 5}),
+                  more=f"… and {len(a.loops) - top} more loops (analyze --json lists all)" if len(a.loops) > top
+                  else None),
+        ]))
+    ct = a.case_times
+    if ct is not None:
+        def row(name, r):
+            return [name, _int(r.n), duration(r.mean_s) if r.mean_s is not None else "–",
+                    duration(r.median_s) if r.median_s is not None else "–",
+                    duration(r.p90_s) if r.p90_s is not None else "–"]
+
+        rows = [row(f"to goal {safe_name(r.name, 40)}", r) for r in ct.to_goal]
+        rows += [row(f"in {safe_name(r.name, 40)}", r) for r in ct.dwell[:top]]
+        out.append(Section("times", "Observed times", [
+            Para("From the sessions themselves, beside the model's expected steps: time from a session's first event "
+                 "to its first arrival in each goal (sessions that reached it), and time in each state (from the "
+                 "event that enters it to the session's next event; a session's last visit has no such time). "
+                 f"Percentiles: numpy's '{ct.method}' method."),
+            Table(["time", "sessions", "mean", "median", "90th percentile"], rows, frozenset({1, 2, 3, 4}),
+                  more=f"… and {len(ct.dwell) - top} more states (analyze --cases --json lists all)"
+                  if len(ct.dwell) > top else None),
+        ]))
+    rw = a.rework
+    if rw is not None:
+        rows = [[safe_name(r.state, 60), _int(r.cases), _int(r.reentered), _num(r.mean, 2, "–"),
+                 _num(r.median, 2, "–"), _num(r.p90, 2, "–"), _int(r.max)] for r in rw.states if r.reentered]
+        blocks: list = [Para("Cases that came back to a state after leaving it, and how often (re-entries per case "
+                             "that came back).")]
+        if rows:
+            blocks.append(Table(["state", "cases", "came back", "mean", "median", "90th percentile", "max"],
+                                rows[:top], frozenset({1, 2, 3, 4, 5, 6}),
+                                more=f"… and {len(rows) - top} more" if len(rows) > top else None))
+        else:
+            blocks.append(Para("No case came back to a state it had left."))
+        if rw.loops:
+            blocks.append(Bullets([
+                f"Loop {', '.join(safe_name(x, 40) for x in lr.states[:4])}: {_int(lr.cases)} cases entered it, "
+                f"{_int(lr.over)} went round it more than {rw.rounds} times (most: {_int(lr.max_rounds)})."
+                for lr in rw.loops[:top]]))
+        out.append(Section("rework", "Rework per case", blocks))
+    return out
+
+
 def _classes_section(a: Analysis) -> Section:
     ch = a.chain
     rows = []
@@ -617,6 +676,7 @@ def build_report(
     if comparison_sections:
         sections.extend(comparison_sections)
     sections.extend(_loss_sections(a, pseudo, top))
+    sections.extend(_loop_and_time_sections(a, top))
     sections.append(_state_section(a, max_states))
     sections.extend(_extended_sections(ext, top))
     sections.append(_classes_section(a))

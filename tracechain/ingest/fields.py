@@ -131,6 +131,9 @@ def _parse_iso(text: str) -> float:
     return dt.timestamp()
 
 
+_NUMBER_PROBE = 16  # values cast to numbers first, before a whole text column is
+
+
 def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[np.ndarray, np.ndarray]:
     """Convert a time column to float seconds; return (seconds, bad) where ``bad``
     marks non-null values that could not be read. Nulls become NaN and are not bad."""
@@ -171,6 +174,11 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
             pass
     else:
         try:
+            # A cast of the first values decides cheaply: if one of them is no number, the
+            # cast of the whole column fails too, but only after parsing every value (ISO
+            # text times). Same results either way; epoch numbers as text still go through.
+            if len(arr) > _NUMBER_PROBE:
+                pc.cast(arr.slice(0, _NUMBER_PROBE), pa.float64())
             num = pc.cast(arr, pa.float64())
             vals = num.to_numpy(zero_copy_only=False).astype(np.float64, copy=True)
             return _numeric_times(vals, num, spec)

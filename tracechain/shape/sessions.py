@@ -634,7 +634,10 @@ class SessionCounter:
             with np.errstate(invalid="ignore"):
                 back = t < prev_rt
             if back.any():
-                i = int(np.argmax(back))
+                # rows are grouped by session here, not in file order: name the earliest
+                # in the file (source, then line), not the first of the grouped rows
+                b = np.flatnonzero(back)
+                i = int(b[np.lexsort((line[b], srcs[b]))[0]])
                 raise OutOfOrder(self._sources[srcs[i]], int(line[i]))
         # last raw time per session (before any dropping)
         li = np.empty(len(fi), dtype=np.int64)

@@ -2,12 +2,14 @@
 
 Field detection looks for common names (case-insensitive) when the user names none.
 Times become float seconds since the Unix epoch: Arrow timestamps, ISO 8601 strings
-(a string without an offset is taken as UTC) and epoch numbers, whose unit (s, ms,
+(a string without an offset is taken as UTC; a trailing zone name `` UTC``, `` GMT`` or
+`` Z``, as data warehouses write text times, means an offset of zero) and epoch numbers, whose unit (s, ms,
 µs, ns) is read off their magnitude unless the user states it.
 """
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
@@ -17,6 +19,7 @@ import pyarrow.compute as pc
 
 from ..errors import FieldError
 from .._arrowutil import to_numpy
+from .timeformats import ZONE_NAME_RE, strip_zone_name, strptime_seconds
 
 __all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
 
@@ -121,8 +124,11 @@ def _epoch_scale(values: np.ndarray, unit: str | None) -> float:
     return 1.0
 
 
+_ZONE_NAME = re.compile(ZONE_NAME_RE)
+
+
 def _parse_iso(text: str) -> float:
-    s = text.strip()
+    s = _ZONE_NAME.sub("", text.strip())
     if s.endswith(("Z", "z")):
         s = s[:-1] + "+00:00"
     dt = datetime.fromisoformat(s)
@@ -162,6 +168,9 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
         return _times_one_by_one(arr, spec, n)
     nulls = arr.is_null().to_numpy(zero_copy_only=False)
     if spec.time_format:
+        read = strptime_seconds(arr, spec.time_format)  # (%f and zones; as datetime.strptime)
+        if read is not None:
+            return read
         try:
             ts = pc.strptime(arr, format=spec.time_format, unit="us", error_is_null=True)
             out, _ = times_to_seconds(ts, spec)
@@ -186,6 +195,12 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
             return times_to_seconds(ts, spec)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             pass
+        plain = strip_zone_name(arr)  # warehouse text: "2026-04-01 00:00:17.000 UTC"
+        if plain is not None:
+            try:
+                return times_to_seconds(pc.cast(plain, pa.timestamp("us")), spec)
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                pass
     return _times_one_by_one(arr, spec, n)
 
 

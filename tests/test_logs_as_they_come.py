@@ -180,3 +180,27 @@ def test_time_format_in_json_lines_and_csv(tmp_path, block):
             assert [e[2] for e in events] == expected, (parser.name, spec)
             assert [e[3] for e in events] == [first, first + 1, first + 2]
             assert dict(report.skipped) == {"unreadable time in field 'ts'": 1}
+
+
+def test_new_field_names_detected_case_aside(tmp_path):
+    # userId is user_id's camel-case spelling (case aside); the anonymous id wins over it
+    rows = [{"userId": None if i < 2 else "u1", "anonymous_id": "a1", "event": f"e{i}",
+             "@timestamp": f"2026-04-01T00:00:0{i}Z"} for i in range(4)]
+    path = tmp_path / "log.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    events, report = _events(JsonLinesParser(), path)
+    assert report.fields == {"session": "anonymous_id", "time": "@timestamp", "event": "event"}
+    assert [e[2] for e in events] == [datetime(2026, 4, 1, 0, 0, i, tzinfo=timezone.utc).timestamp() for i in range(4)]
+    # no anonymous id: userId is found; received_at is a time field
+    path.write_text("".join(json.dumps({"userId": "u", "event": "x", "received_at": i}) + "\n" for i in range(3)))
+    _, report = _events(JsonLinesParser(), path)
+    assert report.fields == {"session": "userId", "time": "received_at", "event": "event"}
+
+
+def test_formats_fields_lists_the_new_names(capsys):
+    from tracechain.cli import main
+
+    assert main(["formats", "--fields"]) == 0
+    out = capsys.readouterr().out
+    for name in ("@timestamp", "anonymous_id", "userid", "event_time", "received_at"):
+        assert name in out

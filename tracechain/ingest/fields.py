@@ -23,12 +23,19 @@ from .timeformats import ZONE_NAME_RE, strip_zone_name, strptime_seconds
 
 __all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
 
+# (anonymous ids come before user ids: a clickstream export sets the anonymous id on every
+# event and the user id only once someone signs in, so the user id would skip the rest;
+# common practice, no source)
 SESSION_NAMES = (
     "session_id", "sessionid", "session", "sid", "case_id", "caseid", "case", "visit_id",
-    "visitor_id", "user_id", "userid", "user", "trace_id", "traceid", "job_id", "ticket_id", "order_id",
+    "visitor_id", "anonymous_id", "anonymousid", "user_id", "userid", "user", "trace_id", "traceid",
+    "job_id", "ticket_id", "order_id",
 )
+# (when the event happened before when it was received or sent: common practice, no source)
 TIME_NAMES = (
-    "timestamp", "time", "ts", "event_time", "datetime", "date", "created_at", "changed_at", "updated_at", "at",
+    "timestamp", "@timestamp", "time", "ts", "event_time", "eventtime", "event_timestamp", "occurred_at",
+    "datetime", "date", "created_at", "changed_at", "updated_at", "received_at", "receivedat", "sent_at",
+    "at",
 )
 EVENT_NAMES = (
     "event", "event_name", "eventname", "event_type", "action", "activity", "state", "status",

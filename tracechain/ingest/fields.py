@@ -2,12 +2,14 @@
 
 Field detection looks for common names (case-insensitive) when the user names none.
 Times become float seconds since the Unix epoch: Arrow timestamps, ISO 8601 strings
-(a string without an offset is taken as UTC) and epoch numbers, whose unit (s, ms,
+(a string without an offset is taken as UTC; a trailing zone name `` UTC``, `` GMT`` or
+`` Z``, as data warehouses write text times, means an offset of zero) and epoch numbers, whose unit (s, ms,
 µs, ns) is read off their magnitude unless the user states it.
 """
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
@@ -17,15 +19,23 @@ import pyarrow.compute as pc
 
 from ..errors import FieldError
 from .._arrowutil import to_numpy
+from .timeformats import ZONE_NAME_RE, strip_zone_name, strptime_seconds
 
 __all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
 
+# (anonymous ids come before user ids: a clickstream export sets the anonymous id on every
+# event and the user id only once someone signs in, so the user id would skip the rest;
+# common practice, no source)
 SESSION_NAMES = (
     "session_id", "sessionid", "session", "sid", "case_id", "caseid", "case", "visit_id",
-    "visitor_id", "user_id", "userid", "user", "trace_id", "traceid", "job_id", "ticket_id", "order_id",
+    "visitor_id", "anonymous_id", "anonymousid", "user_id", "userid", "user", "trace_id", "traceid",
+    "job_id", "ticket_id", "order_id",
 )
+# (when the event happened before when it was received or sent: common practice, no source)
 TIME_NAMES = (
-    "timestamp", "time", "ts", "event_time", "datetime", "date", "created_at", "changed_at", "updated_at", "at",
+    "timestamp", "@timestamp", "time", "ts", "event_time", "eventtime", "event_timestamp", "occurred_at",
+    "datetime", "date", "created_at", "changed_at", "updated_at", "received_at", "receivedat", "sent_at",
+    "at",
 )
 EVENT_NAMES = (
     "event", "event_name", "eventname", "event_type", "action", "activity", "state", "status",
@@ -121,8 +131,11 @@ def _epoch_scale(values: np.ndarray, unit: str | None) -> float:
     return 1.0
 
 
+_ZONE_NAME = re.compile(ZONE_NAME_RE)
+
+
 def _parse_iso(text: str) -> float:
-    s = text.strip()
+    s = _ZONE_NAME.sub("", text.strip())
     if s.endswith(("Z", "z")):
         s = s[:-1] + "+00:00"
     dt = datetime.fromisoformat(s)
@@ -165,6 +178,9 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
         return _times_one_by_one(arr, spec, n)
     nulls = arr.is_null().to_numpy(zero_copy_only=False)
     if spec.time_format:
+        read = strptime_seconds(arr, spec.time_format)  # (%f and zones; as datetime.strptime)
+        if read is not None:
+            return read
         try:
             ts = pc.strptime(arr, format=spec.time_format, unit="us", error_is_null=True)
             out, _ = times_to_seconds(ts, spec)
@@ -194,6 +210,12 @@ def times_to_seconds(arr: pa.Array | pa.ChunkedArray, spec: FieldSpec) -> tuple[
             return times_to_seconds(ts, spec)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             pass
+        plain = strip_zone_name(arr)  # warehouse text: "2026-04-01 00:00:17.000 UTC"
+        if plain is not None:
+            try:
+                return times_to_seconds(pc.cast(plain, pa.timestamp("us")), spec)
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                pass
     return _times_one_by_one(arr, spec, n)
 
 

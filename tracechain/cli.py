@@ -153,6 +153,19 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                         "either way")
     s.add_argument("--smoothing", type=float, default=0.0, metavar="ALPHA",
                    help="additive smoothing of transition probabilities (default 0)")
+    add_filter_options(p)
+
+
+def add_filter_options(p: argparse.ArgumentParser) -> None:
+    """--where, --since, --until (every command that reads events)."""
+    g = p.add_argument_group("filters: which events are read (before sessions are made; counted in the parse report)")
+    g.add_argument("--where", action="append", default=[], metavar="COND",
+                   help="keep events meeting COND: FIELD=VALUE, FIELD!=VALUE, FIELD~REGEX (a search, RE2 syntax) or "
+                        "'FIELD in A,B'; compared as text; repeat for several (all must hold); an event without "
+                        "the field meets only !=")
+    g.add_argument("--since", metavar="TIME", help="keep events at or after this ISO 8601 time or date (UTC unless "
+                                                   "an offset is given)")
+    g.add_argument("--until", metavar="TIME", help="keep events before this time; a date alone keeps that whole day")
 
 
 def build_parser() -> argparse.ArgumentParser:

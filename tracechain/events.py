@@ -51,6 +51,12 @@ class ParseReport:
     sources: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     fields: dict[str, str] = field(default_factory=dict)
+    #: events left out by the filters (``--where``, ``--since``, ``--until``), by filter
+    filtered: Counter = field(default_factory=Counter)
+
+    @property
+    def events_filtered(self) -> int:
+        return int(sum(self.filtered.values()))
 
     #: (source, line) of over-long lines the line iterators handed on blanked (newline kept,
     #: so line numbers hold): counted once, as "line too long", not again as "blank line"
@@ -77,6 +83,7 @@ class ParseReport:
             sources=self.sources + [s for s in other.sources if s not in self.sources],
             notes=self.notes + [n for n in other.notes if n not in self.notes],
             fields={**other.fields, **self.fields},
+            filtered=self.filtered + other.filtered,
         )
         return out
 
@@ -92,6 +99,8 @@ class ParseReport:
                 for p in self.problems
             ],
             "fields": dict(self.fields),
+            **({"events_filtered": self.events_filtered,
+                "filtered_by": {k: int(v) for k, v in self.filtered.items()}} if self.filtered else {}),
             "notes": list(self.notes),
         }
 
@@ -110,6 +119,8 @@ class EventChunk:
     event: pa.Array
     time: np.ndarray
     line: np.ndarray
+    #: further fields read for the filters or segments (field name -> string array, nulls where absent)
+    attrs: dict = field(default_factory=dict, compare=False)
 
     def __post_init__(self) -> None:
         n = len(self.session)
@@ -118,6 +129,14 @@ class EventChunk:
 
     def __len__(self) -> int:
         return len(self.session)
+
+    def take(self, mask: np.ndarray) -> "EventChunk":
+        """The rows where ``mask`` is true (every column, ``attrs`` too)."""
+        from ._arrowutil import bool_array
+
+        m = bool_array(mask)
+        return EventChunk(self.source, self.session.filter(m), self.event.filter(m), self.time[mask],
+                          self.line[mask], {k: v.filter(m) for k, v in self.attrs.items()})
 
     @classmethod
     def from_lists(

@@ -92,10 +92,19 @@ def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, 
     shape = ShapeOptions(
         mapping=mapping, goals=tuple(goals), truncate_at_goal=not args.keep_after_goal,
         collapse_repeats=args.collapse, gap=args.gap, order=args.order, cases=cases,
+        filters=filters_from_args(args),
     )
     fields = FieldSpec(session=args.session_field, time=args.time_field, event=args.event_field,
                        time_unit=args.time_unit, time_format=args.time_format)
     return shape, fields, goals, terminal
+
+
+def filters_from_args(args: argparse.Namespace):
+    """The :class:`~tracechain.shape.filters.Filters` the options ask for (None: none)."""
+    from .shape.filters import Filters
+
+    return Filters.from_options(getattr(args, "where", None) or (), getattr(args, "since", None),
+                                getattr(args, "until", None))
 
 
 #: options naming output files: no progress bar when one of them is standard error
@@ -175,7 +184,7 @@ def sessions_from_args(args, what: str):
     shape, fields, _, _ = shape_from_args(args)
     return session_sequences(read_events(args.paths, format=args.format,
                                          options=ReadOptions(fields=fields, strict=args.strict),
-                                         progress=progress_from_args(args)), shape)
+                                         progress=progress_from_args(args), filters=shape.filters), shape)
 
 
 def add_case_figure_options(group) -> None:

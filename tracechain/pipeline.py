@@ -27,10 +27,12 @@ from .ingest.registry import detect_parser, get_parser
 from .ingest.sources import Source, expand_sources, quick_thread_switches, read_ahead, with_line_limit
 from .progress import ReadMeter, make_meter
 from .shape.cases import CasePolicy
+from .shape.filters import Filters
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
 
-__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed", "MAX_ORDER"]
+__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed", "MAX_ORDER",
+           "apply_filters"]
 
 #: the highest chain order accepted (--order, --max-order, a rules file's 'order:'): counting keeps the
 #: last K-1 codes of every open session, so an order of millions would exhaust memory before reading
@@ -50,6 +52,8 @@ class ShapeOptions:
     extra: dict[str, Any] = field(default_factory=dict)
     #: how unfinished workflow cases are counted at the end (None: every session ends)
     cases: CasePolicy | None = None
+    #: events kept (``--where``, ``--since``, ``--until``; None: every event), see :mod:`tracechain.shape.filters`
+    filters: Filters | None = None
 
     def counter(self, sort: bool = False) -> SessionCounter:
         collapse = self.collapse_repeats
@@ -59,6 +63,33 @@ class ShapeOptions:
             mapping=self.mapping, goals=self.goals, truncate_at_goal=self.truncate_at_goal,
             collapse_repeats=collapse, gap=self.gap, order=self.order, sort=sort,
         )
+
+
+def apply_filters(chunks: Iterable[EventChunk], filters: Filters | None, report: ParseReport) -> Iterator[EventChunk]:
+    """The chunks with only the events ``filters`` keep; those left out are counted in
+    ``report.filtered`` (and taken off ``report.events``)."""
+    if filters is None:
+        yield from chunks
+        return
+    for chunk in chunks:
+        def column(name, chunk=chunk):
+            arr = chunk.attrs.get(name)
+            if arr is None and name in ("session", report.fields.get("session")):
+                arr = chunk.session
+            elif arr is None and name in ("event", report.fields.get("event")):
+                arr = chunk.event
+            if arr is None:
+                raise UsageError(f"{chunk.source}: --where {name}: this reader gives no field {name!r} (filters read "
+                                 "fields of JSON Lines, CSV and Parquet, and the session and event of any format)")
+            return arr
+
+        keep = filters.keep_mask(chunk.time, column, report.filtered)
+        if keep.all():
+            yield chunk
+            continue
+        report.events -= int(len(keep) - keep.sum())
+        if keep.any():
+            yield chunk.take(keep)
 
 
 def _resolve(paths: Iterable[str] | Iterable[Source], stdin: BinaryIO | None,
@@ -72,13 +103,17 @@ def _resolve(paths: Iterable[str] | Iterable[Source], stdin: BinaryIO | None,
 def read_events(
     paths: Iterable[str], format: str | None = None, options: ReadOptions | None = None,
     report: ParseReport | None = None, stdin: BinaryIO | None = None, progress: Any = None,
+    filters: Filters | None = None,
 ) -> Iterator[EventChunk]:
-    """Yield event chunks from every source (pre-aggregated sources are refused).
+    """Yield event chunks from every source (pre-aggregated sources are refused), with
+    only the events ``filters`` keep.
 
     ``progress``: as for :func:`count_sources`; the bar is cleared when the last chunk has
     been taken (or the iterator is closed).
     """
     options = options or ReadOptions()
+    if filters is not None and filters.where:
+        options = replace(options, keep_fields=tuple(dict.fromkeys(options.keep_fields + filters.fields)))
     report = report if report is not None else ParseReport()
     meter = make_meter(progress)
     try:
@@ -92,7 +127,7 @@ def read_events(
             report.sources.append(src.name)
             read_src = meter.bind(i) if meter is not None else src
             read_src = with_line_limit(read_src, report, options.extra.get("max_line_bytes"), options.strict)
-            yield from parser.read(read_src, options, report)
+            yield from apply_filters(parser.read(read_src, options, report), filters, report)
             if meter is not None:
                 meter.finished(i)
     finally:
@@ -106,7 +141,7 @@ def count_chunks(chunks: Iterable[EventChunk], shape: ShapeOptions | None = None
     Chunks are kept if a session turns out not to be in time order, so they can be counted again sorted.
     """
     shape = shape or ShapeOptions()
-    chunks = list(chunks)
+    chunks = list(apply_filters(chunks, shape.filters, ParseReport()))
     counter = shape.counter()
     try:
         for c in chunks:
@@ -157,7 +192,8 @@ def count_sources(
 def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session,
                    meter: ReadMeter | None) -> tuple[TransitionCounts, ParseReport]:
     shape = shape or ShapeOptions()
-    options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}))
+    keep = shape.filters.fields if shape.filters is not None else ()
+    options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}), keep_fields=keep)
     sources = _resolve(paths, stdin, meter)
     plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
     gap_note = None
@@ -184,7 +220,7 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
             else:
                 # closed at once on an error, not whenever the garbage collector finds it
                 with contextlib.closing(read_ahead(parser.read(read_src, options, report))) as chunks:
-                    for chunk in chunks:
+                    for chunk in apply_filters(chunks, shape.filters, report):
                         any_events = True
                         counter.add(chunk)
             if meter is not None:
@@ -207,6 +243,8 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
     if counts.n_states == 0:
         where = ", ".join(s.name for s in sources)
         detail = f"; {report.lines_skipped} lines skipped" if report.lines_skipped else ""
+        if report.filtered:
+            detail += "; events left out by " + ", ".join(f"{k}: {v}" for k, v in report.filtered.items())
         raise EmptyInputError(f"no usable events in {where}{detail}", )
     return counts, report
 

@@ -136,7 +136,7 @@ def cmd_order(args: argparse.Namespace) -> int:
     shape, fields, goals, _ = shape_from_args(args)
     options = ReadOptions(fields=fields, strict=args.strict)
     sessions = session_sequences(read_events(args.paths, format=args.format, options=options,
-                                             progress=progress_from_args(args)), shape)
+                                             progress=progress_from_args(args), filters=shape.filters), shape)
     if not len(sessions):
         raise UsageError("no sessions in the input")
     K = args.max_order

@@ -16,7 +16,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import EmptyInputError, UsageError
+from ..errors import EmptyInputError, FieldError, UsageError
 from ..events import ParseReport
 from ..ingest.fields import FieldSpec, _epoch_scale, resolve_fields
 from . import sql as S
@@ -46,6 +46,10 @@ class SqlRunner:
     time_expr: Callable[[str, str, float, str | None], tuple[str, str]]  # (column SQL, family, scale, fmt) -> (t, raw)
     text_expr: Callable[[str], str]
     first_values: Callable[[Relation, str, int], list]  # up to n non-null values of a column, in order
+    #: (text SQL, placeholder) -> SQL of a regular-expression search, for ``--where FIELD~REGEX``
+    regex: Callable[[str, str], str] | None = None
+    #: placeholder style: "?" (positional, in text order) or "$" (numbered: $1, $2, ...)
+    marks: str = "?"
 
 
 def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, order_by: str | None = None,
@@ -86,9 +90,45 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
         o_sql = rel.file_order
     else:
         o_sql = "0"
+    filters = getattr(shape, "filters", None)
+    f_params: list = []
+    if filters is not None:
+        # rows left out by a filter are as if absent; those without key, name or time stay, to be counted as
+        # skipped (the native reader skips them before it filters)
+        for f in filters.fields:
+            if f not in rel.columns:
+                raise FieldError(f"the field {f!r} (from --where) is not in the data; fields found: "
+                                 + ", ".join(repr(c) for c in cols), rel.name)
+
+        def filter_sql(first: int):
+            n = [first - 1]
+
+            def mark():
+                if runner.marks == "?":
+                    return "?"
+                n[0] += 1
+                return f"${n[0]}"
+
+            def regex(col, m):
+                if runner.regex is None:
+                    raise UsageError(f"--where FIELD~REGEX is not supported by the {d.name} engine")
+                return runner.regex(col, m)
+
+            return filters.sql(lambda f: runner.text_expr(f"q.{q(f)}"), t_sql, regex, mark)
+
+        valid = f"({s_sql}) IS NOT NULL AND ({e_sql}) IS NOT NULL AND ({bad_sql}) = 0"
+        f_sql, f_params = filter_sql(1)
+        gone = runner.run(f"SELECT fk, COUNT(*) FROM (SELECT {f_sql} AS fk FROM {rel.sql} q WHERE {valid}) z "
+                          "GROUP BY fk", f_params)
+        labels = filters.labels()
+        for fk, n_rows in sorted(gone, key=lambda r: int(r[0])):
+            if int(fk) > 0 and n_rows:
+                report.filtered[labels[int(fk) - 1]] += int(n_rows)
+        rel = Relation(rel.name, f"(SELECT q.* FROM {rel.sql} q WHERE ({f_sql}) = 0 OR NOT ({valid}))", rel.columns,
+                       rel.file_order)
     # the distinct raw names, mapped on the client
     # (in order of first appearance, so that states are numbered as the native engine numbers them)
-    raw_rows = runner.run(f"SELECT {e_sql} AS e, MIN({o_sql}) AS o FROM {rel.sql} q GROUP BY {e_sql}", [])
+    raw_rows = runner.run(f"SELECT {e_sql} AS e, MIN({o_sql}) AS o FROM {rel.sql} q GROUP BY {e_sql}", f_params)
     raw_rows.sort(key=lambda r: (r[1] is None, r[1] if r[1] is not None else 0, "" if r[0] is None else r[0]))
     raw_names = [r[0] for r in raw_rows]
     if finished_names is not None:  # as a finish_session callback: it takes precedence over a case policy
@@ -97,6 +137,13 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
         fin_names = set(shape.cases.terminal) if shape.cases is not None else set()
     nt = S.name_table(raw_names, shape.mapping, shape.goals, fin_names)
     names_sql, params = runner.names_relation(nt)
+    if filters is not None:
+        if runner.marks == "?":  # the filter's placeholders come first in the statement's text
+            params = f_params + list(params)
+        else:  # numbered: the filter's after the names'
+            f_sql2, f_params2 = filter_sql(len(params) + 1)
+            rel = Relation(rel.name, rel.sql.replace(f_sql, f_sql2), rel.columns, rel.file_order)
+            params = list(params) + f_params2
     collapse = shape.collapse_repeats
     if collapse is None:
         collapse = bool(shape.mapping.collapse_repeats) if shape.mapping is not None else False
@@ -123,7 +170,7 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
     counts, stats = S.counts_from_rows(rows, nt, shape.order, meta, ages, policy_info)
     missing = stats.get(S.EK_MISSING, 0)
     report.events = counts.events + stats.get(S.EK_DROPPED, 0)
-    report.lines_read = report.events + missing
+    report.lines_read = report.events + missing + report.events_filtered
     if missing:
         report.skipped["missing session, event or time"] += int(missing)
     dropped = stats.get(S.EK_DROPPED, 0)
@@ -141,5 +188,7 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
                 "given: their order is whatever the database returns; name a column with --order-by")
     if counts.n_states == 0:
         detail = f"; {missing} rows without session, event or time" if missing else ""
+        if report.filtered:
+            detail += "; rows left out by " + ", ".join(f"{k}: {v}" for k, v in report.filtered.items())
         raise EmptyInputError(f"no usable events in {rel.name}{detail}")
     return counts, report

@@ -13,6 +13,7 @@ library reads it from ``PGPASSWORD``, ``~/.pgpass`` (``PGPASSFILE``) or a servic
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import re
@@ -132,10 +133,24 @@ def _count_sqlite(url, table, query, fields, shape, order_by, finished_names):
             return [r[0] for r in run(f"SELECT q.{d.ident(col)} FROM {rel.sql} q WHERE q.{d.ident(col)} IS NOT NULL "
                                       f"LIMIT {int(n)}", [])]
 
-        runner = SqlRunner(d, run, names_relation, time_expr, lambda c: f"CAST({c} AS TEXT)", first_values)
+        con.create_function("tc_regexp", 2, _sqlite_regexp, deterministic=True)
+        runner = SqlRunner(d, run, names_relation, time_expr, lambda c: f"CAST({c} AS TEXT)", first_values,
+                           regex=lambda c, m: f"tc_regexp({c}, {m})")
         return count_relation(runner, rel, fields, shape, order_by, finished_names)
     finally:
         con.close()
+
+
+@functools.lru_cache(maxsize=64)
+def _compiled(pattern: str):
+    return re.compile(pattern)
+
+
+def _sqlite_regexp(value, pattern):
+    """``--where FIELD~REGEX`` in SQLite: a search with Python's ``re`` (NULL: no value)."""
+    if value is None or pattern is None:
+        return None
+    return 1 if _compiled(pattern).search(str(value)) else 0
 
 
 def _sqlite_cursor(con, stmt, url):
@@ -226,7 +241,8 @@ def _count_postgres(url, table, query, fields, shape, order_by, finished_names):
             return [r[0] for r in run(f"SELECT q.{d.ident(col)} FROM {rel.sql} q WHERE q.{d.ident(col)} IS NOT NULL "
                                       f"LIMIT {int(n)}", [])]
 
-        runner = SqlRunner(d, run, names_relation, time_expr, lambda c: f"CAST({c} AS text)", first_values)
+        runner = SqlRunner(d, run, names_relation, time_expr, lambda c: f"CAST({c} AS text)", first_values,
+                           regex=lambda c, m: f"({c} ~ {m})", marks="$")
         return count_relation(runner, rel, fields, shape, order_by, finished_names)
     finally:
         try:

@@ -167,7 +167,8 @@ def _runner(conn: _Conn, rel_holder: dict, ts_unit: str = "us") -> SqlRunner:
         return [r[0] for r in conn.run(f"SELECT q.{d.ident(col)} FROM {rel.sql} q WHERE q.{d.ident(col)} IS NOT NULL "
                                        f"LIMIT {int(n)}", [])]
 
-    return SqlRunner(d, conn.run, names_relation, time_expr, lambda c: f"CAST({c} AS VARCHAR)", first_values)
+    return SqlRunner(d, conn.run, names_relation, time_expr, lambda c: f"CAST({c} AS VARCHAR)", first_values,
+                     regex=lambda c, m: f"regexp_matches({c}, {m})")
 
 
 def _connect(database: str | None = None):
@@ -237,6 +238,8 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
             picked = [c for c in resolve_fields(fields, cols, name) if c is not None]
             if order_by is not None and order_by in cols and order_by not in picked:
                 picked.append(order_by)
+            if shape.filters is not None:  # (a field no line has is null on every row: nothing matches it)
+                picked.extend(f for f in shape.filters.fields if f not in picked)
             spec = "{" + ", ".join(f"{_lit(c)}: 'JSON'" for c in picked) + "}"
             # a value that is an array or object is no name or time (as the native reader says)
             conv = ", ".join(f"CASE WHEN json_type(j.{S.DUCKDB.ident(c)}) IN ('ARRAY', 'OBJECT') THEN NULL ELSE "

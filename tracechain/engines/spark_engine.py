@@ -157,6 +157,9 @@ def _check_shape(shape) -> None:
     if shape.mapping is not None and getattr(shape.mapping, "parser", None):
         raise UsageError("the mapping file declares a line pattern ('parser:') for text logs, which only the native "
                          "engine reads; use --engine native")
+    if getattr(shape, "filters", None) is not None:
+        raise UsageError("--where, --since and --until are not yet supported by the spark engine; use --engine "
+                         "native, duckdb, sqlite or postgres")
 
 
 def count_dataframe(df, fields: FieldSpec | None = None, shape=None, order_by: str | None = None,

@@ -39,6 +39,9 @@ class ReadOptions:
     strict: bool = False
     extra: dict[str, Any] = field(default_factory=dict)
     start_label: str = "[start]"
+    #: further fields to hand on in ``EventChunk.attrs`` (for filters and segments); tabular
+    #: readers (JSON Lines, CSV, Parquet) give them, others give what they have
+    keep_fields: tuple[str, ...] = ()
     end_label: str = "[end]"
 
 

@@ -39,6 +39,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
+from .tabular import keep_fields
 from .sources import BLOCK_BYTES, Source, iter_line_blocks_counted, read_ahead, peek
 from .tabular import table_to_chunk
 
@@ -213,7 +214,8 @@ class CsvParser:
         header, delim = read_header(source)
         names = resolve_fields(options.fields, header, source.name)
         report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
-        wanted = [n for n in names if n is not None]
+        names = names + keep_fields(options, header, names, source.name)
+        wanted = list(dict.fromkeys(n for n in names if n is not None))
         block_bytes = int(options.extra.get("block_bytes", BLOCK_BYTES))
         report.lines_read += 1  # the header
         time_type: pa.DataType | None = None  # the time column's type, once Arrow has inferred it
@@ -297,7 +299,7 @@ def _fast_parse(
     block: bytes, header: list[str], delim: str, wanted: list[str], names,
     time_type: pa.DataType | None = None, pieces: bool = False,
 ) -> pa.Table | None:
-    types = {names[0]: pa.string(), names[2]: pa.string()}
+    types = {names[0]: pa.string(), names[2]: pa.string(), **{n: pa.string() for n in names[3:]}}
     if time_type is not None:
         types[names[1]] = time_type
     size = len(block) + 1

@@ -23,6 +23,7 @@ from ..errors import FieldError, IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
+from .tabular import keep_fields
 from .flatjson import read_flat_block
 from .sources import Source, count_newlines, iter_line_blocks_counted, read_ahead, text_lines
 from .tabular import table_to_chunk
@@ -140,6 +141,9 @@ class JsonLinesParser:
                 raise
 
         names, later = _detect_fields(next_block, options, source.name)
+        roles = names
+        if names is not None and options.keep_fields:
+            names = names + keep_fields(options, None, names, source.name)
         later.reverse()  # (popped from the end: the blocks read while detecting, in order)
         while True:
             if later:
@@ -212,8 +216,8 @@ class JsonLinesParser:
             if chunk is not None:
                 yield chunk
             del chunk
-        if names is not None:
-            report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
+        if roles is not None:
+            report.fields.update({"session": roles[0], "time": roles[1] or "", "event": roles[2]})
 
 
 #: Fields are detected from the keys of the first DETECT_LINES lines (every line that is
@@ -283,7 +287,7 @@ def _narrow_schema(schema: pa.Schema, names: tuple[str, str | None, str]) -> pa.
     # blocks read with that schema would lose the field (every event "missing")
     if any(n is not None and n not in schema.names for n in names):
         return None
-    fields = [schema.field(n) for n in names if n is not None]
+    fields = [schema.field(n) for n in dict.fromkeys(names) if n is not None]
     if any(pa.types.is_null(f.type) or pa.types.is_struct(f.type) or pa.types.is_list(f.type) for f in fields):
         return None
     return pa.schema(fields)
@@ -293,7 +297,7 @@ def _text_keys(block: bytes, table: pa.Table, names: tuple[str, str | None, str]
     """Arrow reads ISO-looking strings as timestamps; session keys and event names must
     stay the text the log holds, so such a column is read again as strings."""
     temporal = [
-        n for n in (names[0], names[2])
+        n for n in dict.fromkeys((names[0], names[2], *(x for x in names[3:] if x != names[1])))
         if n in table.column_names and pa.types.is_temporal(table.schema.field(n).type)
     ]
     if temporal:
@@ -395,13 +399,14 @@ def _slow_parse(
     first: list[IngestError] = []
     line_nos: list[int] = []
     needed = [n for n in dict.fromkeys(names) if n is not None]
+    roles = [n for n in names[:3] if n is not None]
     for i, raw in enumerate(text_lines(block)):
         ln = first_line + i
         obj, reason, detail = _parse_line(raw)
         if reason is None and not isinstance(obj, dict):
             reason, detail = "not a JSON object", type(obj).__name__
         if reason is None:
-            for k in needed:
+            for k in roles:
                 v = obj.get(k)
                 if isinstance(v, float) and not math.isfinite(v):
                     reason, detail = f"not a finite number in field {k!r}", ""

@@ -33,6 +33,7 @@ from ..errors import IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
 from .fields import resolve_fields
+from .tabular import keep_fields
 from .sources import DECOMPRESS_ERRORS, Source, open_binary
 from .tabular import table_to_chunk
 
@@ -59,6 +60,7 @@ class ParquetParser:
                 raise IngestError(f"not a readable Parquet file: {_why(err)}", source.name) from None
             names = resolve_fields(options.fields, columns, source.name)
             report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
+            names = names + keep_fields(options, columns, names, source.name)
             wanted = list(dict.fromkeys(n for n in names if n is not None))
             row = 1
             batches = pf.iter_batches(batch_size=rows, columns=wanted, use_threads=True)

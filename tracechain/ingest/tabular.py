@@ -10,12 +10,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..errors import IngestError
+from ..errors import FieldError, IngestError
 from ..events import MAX_PROBLEMS, EventChunk, ParseReport
 from .fields import FieldSpec, times_to_seconds
 from .._arrowutil import bool_array, to_numpy
 
-__all__ = ["table_to_chunk", "as_string_column"]
+__all__ = ["table_to_chunk", "as_string_column", "keep_fields"]
 
 
 def as_string_column(arr: pa.Array | pa.ChunkedArray) -> pa.Array:
@@ -62,6 +62,19 @@ def _empty(arr: pa.Array) -> np.ndarray:
     return out
 
 
+def keep_fields(options, columns, names, source: str) -> tuple[str, ...]:
+    """The further fields ``options.keep_fields`` asks for, beyond ``names``; a field the
+    data does not have (``columns`` lists them; None: not known in advance) is an error."""
+    extra = tuple(dict.fromkeys(options.keep_fields))
+    if columns is not None:
+        missing = [f for f in extra if f not in columns]
+        if missing:
+            shown = ", ".join(repr(c) for c in columns)
+            raise FieldError(f"the field {missing[0]!r} (from --where or --segment-by) is not in the data; fields "
+                             f"found: {shown}", source)
+    return extra
+
+
 def table_to_chunk(
     source: str,
     columns: dict[str, pa.Array],
@@ -71,8 +84,11 @@ def table_to_chunk(
     report: ParseReport,
     strict: bool,
 ) -> EventChunk | None:
-    """Build a chunk from columns already parsed; skip and report unusable rows."""
-    s_name, t_name, e_name = names
+    """Build a chunk from columns already parsed; skip and report unusable rows.
+
+    ``names`` beyond the first three (session, time, event) are further fields handed on
+    as text in ``EventChunk.attrs`` (null where a row has none or a nested value)."""
+    s_name, t_name, e_name = names[:3]
     n = len(lines)
     keep = np.ones(n, dtype=bool)
     # (row, reason) of every unusable row, reported in line order once all are known,
@@ -105,6 +121,14 @@ def table_to_chunk(
         secs = np.full(n, np.nan)
     if found:
         _problems(report, source, lines, found, strict)
+    for name in names[3:]:
+        if name in (s_name, e_name):
+            continue
+        raw = columns.get(name)
+        try:
+            cols["attr:" + name] = pa.nulls(n, pa.string()) if raw is None else as_string_column(raw)
+        except TypeError:  # nested values: no plain value to compare
+            cols["attr:" + name] = pa.nulls(n, pa.string())
     if not keep.all():
         mask = bool_array(keep)
         cols = {k: pc.filter(v, mask) for k, v in cols.items()}
@@ -113,7 +137,10 @@ def table_to_chunk(
     if len(lines) == 0:
         return None
     report.events += len(lines)
-    return EventChunk(source, cols["session"], cols["event"], secs, lines)
+    attrs = {}
+    for name in names[3:]:
+        attrs[name] = cols["session"] if name == s_name else cols["event"] if name == e_name else cols["attr:" + name]
+    return EventChunk(source, cols["session"], cols["event"], secs, lines, attrs)
 
 
 def _problems(

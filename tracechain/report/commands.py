@@ -164,7 +164,7 @@ def _order_test(args):
     try:
         sessions = session_sequences(read_events(args.paths, format=args.format,
                                                  options=ReadOptions(fields=fields, strict=args.strict),
-                                                 progress=progress_from_args(args)), shape)
+                                                 progress=progress_from_args(args), filters=shape.filters), shape)
         return order_table(sessions, 2, goals=tuple(goals)) if len(sessions) else None
     except TracechainError as err:
         print(f"tracechain: warning: no order test: {err}", file=sys.stderr)

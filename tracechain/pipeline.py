@@ -207,7 +207,8 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
     if counts.n_states == 0:
         where = ", ".join(s.name for s in sources)
         detail = f"; {report.lines_skipped} lines skipped" if report.lines_skipped else ""
-        raise EmptyInputError(f"no usable events in {where}{detail}", )
+        why = report.why_nothing()
+        raise EmptyInputError(f"no usable events in {where}{detail}" + (f": {why}" if why else ""))
     return counts, report
 
 

@@ -204,3 +204,29 @@ def test_formats_fields_lists_the_new_names(capsys):
     out = capsys.readouterr().out
     for name in ("@timestamp", "anonymous_id", "userid", "event_time", "received_at"):
         assert name in out
+
+
+def _fails(args, capsys) -> str:
+    from tracechain.cli import main
+
+    assert main(args) == 2
+    err = capsys.readouterr().err.strip()
+    assert "Traceback" not in err and len(err.splitlines()) == 1
+    return err
+
+
+def test_every_line_failing_says_why_with_examples_and_a_hint(tmp_path, capsys):
+    # a wrong time format: every line skipped; no --strict needed
+    path = tmp_path / "log.csv"
+    path.write_text("session_id,event,ts\n" + "".join(f"s,e{i},2026-04-01 00:00:1{i}.000 UTC\n" for i in range(3)))
+    err = _fails(["analyze", str(path), "--time-format", "%d/%m/%Y"], capsys)
+    assert "3 lines skipped: 3 unreadable time in field 'ts' (e.g. '2026-04-01 00:00:10.000 UTC')" in err
+    assert "--time-format" in err and "fields found: 'session_id', 'event', 'ts'" in err
+    # a wrong field: every session empty, two reasons ranked by count, each with an example
+    lines = [{"sid": "", "event": "x", "ts": 1}] * 3 + [{"sid": "a", "event": "x", "ts": "never"}] * 2
+    path = tmp_path / "log.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in lines))
+    err = _fails(["analyze", str(path), "--session-field", "sid"], capsys)
+    assert ("5 lines skipped: 3 missing session field 'sid' (e.g. line 1); "
+            "2 unreadable time in field 'ts' (e.g. 'never')") in err
+    assert "fields found: 'sid', 'event', 'ts'" in err

@@ -61,14 +61,37 @@ class ParseReport:
     #: (source, line) of over-long lines the line iterators handed on blanked (newline kept,
     #: so line numbers hold): counted once, as "line too long", not again as "blank line"
     blanked: set = field(default_factory=set, repr=False, compare=False)
+    #: one example value (or place) per skip reason, and the fields the data holds: for the
+    #: message when every line fails (never written to JSON: values are the log's data)
+    examples: dict = field(default_factory=dict, repr=False, compare=False)
+    columns: list = field(default_factory=list, repr=False, compare=False)
 
     def skip(self, source: str, line: int, reason: str, detail: str = "") -> None:
         if reason == "blank line" and self.blanked and (source, int(line)) in self.blanked:
             self.blanked.discard((source, int(line)))
             return
         self.skipped[reason] += 1
+        self.examples.setdefault(reason, f"line {int(line)}")
         if len(self.problems) < MAX_PROBLEMS:
             self.problems.append(Problem(source, int(line), reason, detail[:200]))
+
+    def why_nothing(self, top: int = 3) -> str:
+        """For an input of which no line could be used: the top reasons, with one example
+        each, and a hint of what to change (empty when nothing was skipped)."""
+        if not self.skipped:
+            return ""
+        parts = []
+        for reason, n in self.skipped.most_common(top):
+            ex = self.examples.get(reason)
+            parts.append(f"{n:,} {reason}" + (f" (e.g. {ex})" if ex else ""))
+        hints = []
+        if any("time" in r for r in self.skipped):
+            hints.append("give the layout of the times with --time-format, e.g. '%Y-%m-%d %H:%M:%S.%f UTC' "
+                         "(or --time-field '' to read no times)")
+        if self.columns:
+            shown = ", ".join(repr(c) for c in self.columns[:20]) + (", ..." if len(self.columns) > 20 else "")
+            hints.append(f"name the fields with --session-field/--event-field/--time-field; fields found: {shown}")
+        return "; ".join(parts) + ("; hint: " + "; ".join(hints) if hints else "")
 
     @property
     def lines_skipped(self) -> int:
@@ -85,6 +108,8 @@ class ParseReport:
             fields={**other.fields, **self.fields},
             filtered=self.filtered + other.filtered,
         )
+        out.examples = {**other.examples, **self.examples}
+        out.columns = self.columns + [c for c in other.columns if c not in self.columns]
         return out
 
     def to_dict(self) -> dict[str, Any]:

@@ -245,7 +245,8 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
         detail = f"; {report.lines_skipped} lines skipped" if report.lines_skipped else ""
         if report.filtered:
             detail += "; events left out by " + ", ".join(f"{k}: {v}" for k, v in report.filtered.items())
-        raise EmptyInputError(f"no usable events in {where}{detail}", )
+        why = report.why_nothing()
+        raise EmptyInputError(f"no usable events in {where}{detail}" + (f": {why}" if why else ""))
     return counts, report
 
 

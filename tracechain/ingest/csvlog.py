@@ -212,6 +212,7 @@ class CsvParser:
 
     def read(self, source: Source, options: ReadOptions, report: ParseReport) -> Iterator[EventChunk]:
         header, delim = read_header(source)
+        report.columns.extend(c for c in header if c not in report.columns)
         names = resolve_fields(options.fields, header, source.name)
         report.fields.update({"session": names[0], "time": names[1] or "", "event": names[2]})
         names = names + keep_fields(options, header, names, source.name)

@@ -140,7 +140,8 @@ class JsonLinesParser:
                     raise IngestError(str(err).removeprefix(f"{source.name}: "), source.name, at) from err
                 raise
 
-        names, later = _detect_fields(next_block, options, source.name)
+        seen_keys: list[str] = []
+        names, later = _detect_fields(next_block, options, source.name, seen_keys)
         roles = names
         if names is not None and options.keep_fields:
             names = names + keep_fields(options, None, names, source.name)
@@ -216,6 +217,7 @@ class JsonLinesParser:
             if chunk is not None:
                 yield chunk
             del chunk
+        report.columns.extend(c for c in seen_keys if c not in report.columns)
         if roles is not None:
             report.fields.update({"session": roles[0], "time": roles[1] or "", "event": roles[2]})
 
@@ -228,10 +230,14 @@ DETECT_LINES = 1000
 DETECT_MAX_LINES = 100_000
 
 
-def _detect_fields(next_block, options: ReadOptions, source: str) -> tuple[tuple[str, str | None, str] | None, list]:
-    """The (session, time, event) keys, and the blocks read to find them (still to be read)."""
+def _detect_fields(next_block, options: ReadOptions, source: str,
+                   keys: list | None = None) -> tuple[tuple[str, str | None, str] | None, list]:
+    """The (session, time, event) keys, and the blocks read to find them (still to be read);
+    the keys seen are added to ``keys``."""
     pending: list = []
     seen: dict[str, None] = {}
+    if keys is not None:
+        seen = _Recorded(keys)
     lines = 0
     while True:
         item = next_block(lines + 1)
@@ -261,6 +267,19 @@ def _detect_fields(next_block, options: ReadOptions, source: str) -> tuple[tuple
                 except FieldError:
                     if lines >= DETECT_MAX_LINES:
                         raise
+
+
+class _Recorded(dict):
+    """A dict of keys that also appends each new key to a list."""
+
+    def __init__(self, out: list):
+        super().__init__()
+        self._out = out
+
+    def __setitem__(self, key, value):
+        if key not in self:
+            self._out.append(key)
+        super().__setitem__(key, value)
 
 
 _NON_FINITE = re.compile(rb"[:,\[][ \t\r]*-?(?:NaN|Inf)")

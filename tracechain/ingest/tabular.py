@@ -108,14 +108,20 @@ def table_to_chunk(
                 keep[:] = False
         bad = _empty(arr) & keep
         if bad.any():
-            found.append((np.flatnonzero(bad), f"missing {role} field {name!r}"))
+            reason = f"missing {role} field {name!r}"
+            report.examples.setdefault(reason, f"line {int(lines[np.flatnonzero(bad)[0]])}")
+            found.append((np.flatnonzero(bad), reason))
             keep &= ~bad
         cols[role] = arr
     if t_name is not None and t_name in columns:
         secs, badt = times_to_seconds(columns[t_name], spec)
         badt &= keep
         if badt.any():
-            found.append((np.flatnonzero(badt), f"unreadable time in field {t_name!r}"))
+            reason = f"unreadable time in field {t_name!r}"
+            if reason not in report.examples:
+                value = columns[t_name][int(np.flatnonzero(badt)[0])].as_py()
+                report.examples[reason] = repr(str(value)[:40])
+            found.append((np.flatnonzero(badt), reason))
             keep &= ~badt
     else:
         secs = np.full(n, np.nan)

@@ -17,6 +17,16 @@ its temporary file and the rename, a run leaves ``.NAME.<pid>.tracechain-tmp`` b
 (tracechain/report/writer.py); a following normal run must remove every such file.
 Prints per kind: kills, kills that left a temporary file (killed mid-write), partial files,
 temporary files left after the following normal run.
+
+Random times almost never land inside a write (a write of a few megabytes takes milliseconds of
+a run of seconds), so ``--mode slow`` (the default runs both modes) runs the same command line
+through a small wrapper that makes the write itself slow: the wrapper replaces, in the child
+only, the file object of :func:`tracechain.files.write_output` with one that writes its data in
+64 flushed chunks spread over ``--write-seconds`` and says on standard output when the first
+chunk starts. The kill is then drawn uniformly from that write window plus a margin for the fsync
+and the rename, so every kill lands during the write: with part of the data in the temporary
+file, all of it before the rename, or just after the rename. Nothing in tracechain itself changes
+for this: the wrapper patches the child's module, as ``tests/test_kill_write.py`` does.
 """
 
 from __future__ import annotations
@@ -92,6 +102,88 @@ KINDS = {
 }
 
 
+SLOW_CHILD = r"""
+import os, sys, time
+import tracechain.files as files
+SECONDS = float(os.environ["KILL_CAMPAIGN_WRITE_SECONDS"])
+CHUNKS = 64
+real_fdopen = os.fdopen
+class SlowFile:
+    def __init__(self, f):
+        self._f = f
+    def write(self, blob):
+        sys.stdout.write("write-start\n"); sys.stdout.flush()
+        step = max(1, -(-len(blob) // CHUNKS))
+        for i in range(0, len(blob), step):
+            self._f.write(blob[i:i + step]); self._f.flush()
+            time.sleep(SECONDS / CHUNKS)
+        return len(blob)
+    def __getattr__(self, name):
+        return getattr(self._f, name)
+    def __enter__(self):
+        return self
+    def __exit__(self, *exc):
+        return self._f.__exit__(*exc)
+class SlowOs:
+    def __getattr__(self, name):
+        return getattr(os, name)
+    @staticmethod
+    def fdopen(fd, *a, **k):
+        return SlowFile(real_fdopen(fd, *a, **k))
+files.os = SlowOs()
+from tracechain.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+def slow_campaign(kind: str, kills: int, seed: str, work: Path, events: int, pages: int,
+                  write_seconds: float) -> dict:
+    """Kills drawn inside the (slowed) write of the output: see the module docstring."""
+    template, out = KINDS[kind]
+    folder = work / f"{kind}-slow"
+    folder.mkdir()
+    (folder / "rules.yaml").write_text(RULES, encoding="utf-8")
+    generate(folder / "small.jsonl", max(events // 10, 200), pages, 300, 2)
+    generate(folder / "in.jsonl", events, pages, max(events // 10, 50), 1)
+    argv = lambda src: template.format(IN=src, OUT=out).split()  # noqa: E731
+    _run(argv("small.jsonl"), folder)
+    previous = (folder / out).read_bytes()
+    _run(argv("in.jsonl"), folder)
+    new = (folder / out).read_bytes()
+    (folder / out).write_bytes(previous)
+    env = dict(os.environ, TRACECHAIN_PROGRESS="0", KILL_CAMPAIGN_WRITE_SECONDS=str(write_seconds))
+    rng = random.Random(f"{seed}:{kind}:slow")
+    phases = {"part of the data written": 0, "all data written, before the rename": 0, "after the rename": 0}
+    partial = no_write = 0
+    for _ in range(kills):
+        (folder / out).write_bytes(previous)
+        child = subprocess.Popen([sys.executable, "-c", SLOW_CHILD, *argv("in.jsonl")], cwd=folder,
+                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, env=env, text=True)
+        line = child.stdout.readline()
+        if line != "write-start\n":  # the command ended without writing: a harness problem to see
+            child.wait()
+            no_write += 1
+            continue
+        time.sleep(rng.uniform(0, write_seconds * 1.2))
+        child.send_signal(signal.SIGKILL)
+        child.wait()
+        child.stdout.close()
+        temps = [n for n in os.listdir(folder) if n.endswith(TEMP_SUFFIX) and f".{child.pid}" in n]
+        data = (folder / out).read_bytes() if (folder / out).exists() else b""
+        if temps:
+            size = (folder / temps[0]).stat().st_size
+            phases["part of the data written" if size < len(new) else "all data written, before the rename"] += 1
+        else:
+            phases["after the rename"] += 1
+        if not ((data == previous or data == new) and _parse_ok(kind, data)):
+            partial += 1
+    _run(argv("in.jsonl"), folder)  # the following normal run removes the temporary files
+    left = [n for n in os.listdir(folder) if n.endswith(TEMP_SUFFIX)]
+    final_ok = (folder / out).read_bytes() == new
+    return {"kind": kind, "mode": "slow", "kills": kills - no_write, "phases": phases, "partial": partial,
+            "temp_left": len(left), "no_write": no_write, "final_complete": final_ok, "bytes": len(new)}
+
+
 def _run(argv, cwd) -> float:
     t = time.monotonic()
     subprocess.run(tracechain() + argv, cwd=cwd, capture_output=True, timeout=600,
@@ -146,8 +238,11 @@ def campaign(kind: str, kills: int, seed: str, work: Path, events: int, pages: i
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--kills", type=int, default=30, help="kills per output kind (default 30)")
+    ap.add_argument("--kills", type=int, default=30, help="kills per output kind and mode (default 30)")
     ap.add_argument("--kinds", default=",".join(KINDS), help="comma-separated output kinds")
+    ap.add_argument("--mode", choices=("random", "slow", "both"), default="both",
+                    help="random: kills at random times of a normal run; slow: kills inside a slowed write")
+    ap.add_argument("--write-seconds", type=float, default=1.0, help="length of a slowed write (default 1.0)")
     ap.add_argument("--seed", default="1")
     ap.add_argument("--events", type=int, default=20000, help="events in the generated input (default 20000)")
     ap.add_argument("--pages", type=int, default=40, help="distinct pages (states) in it (default 40)")
@@ -156,22 +251,39 @@ def main(argv=None) -> int:
     if "png" in kinds and shutil.which("dot") is None:
         kinds.remove("png")
     work = Path(tempfile.mkdtemp(prefix="kill-campaign-"))
-    rows = []
+    rows, slow_rows = [], []
     try:
         for kind in kinds:
-            r = campaign(kind, args.kills, args.seed, work, args.events, args.pages)
-            rows.append(r)
-            print(json.dumps(r), flush=True)
+            if args.mode in ("random", "both"):
+                r = campaign(kind, args.kills, args.seed, work, args.events, args.pages)
+                rows.append(r)
+                print(json.dumps(r), flush=True)
+            if args.mode in ("slow", "both"):
+                r = slow_campaign(kind, args.kills, args.seed, work, args.events, args.pages, args.write_seconds)
+                slow_rows.append(r)
+                print(json.dumps(r), flush=True)
     finally:
         shutil.rmtree(work, ignore_errors=True)
-    print()
-    print("| output | kills | killed mid-write (temp file left) | partial files | temp files after next run |"
-          " finished before the kill | normal run s |")
-    print("|---|---|---|---|---|---|---|")
-    for r in rows:
-        print(f"| {r['kind']} | {r['kills']} | {r['mid_write']} | {r['partial']} | {r['temp_left']} | "
-              f"{r['finished_before_kill']} | {r['run_s']} |")
-    bad = sum(r["partial"] + r["temp_left"] + (not r["final_complete"]) for r in rows)
+    if rows:
+        print()
+        print("| output | kills | killed mid-write (temp file left) | partial files | temp files after next run |"
+              " finished before the kill | normal run s |")
+        print("|---|---|---|---|---|---|---|")
+        for r in rows:
+            print(f"| {r['kind']} | {r['kills']} | {r['mid_write']} | {r['partial']} | {r['temp_left']} | "
+                  f"{r['finished_before_kill']} | {r['run_s']} |")
+    if slow_rows:
+        print()
+        print("| output (slowed write) | bytes | kills | part of the data written | all data, before the rename |"
+              " after the rename | partial files | temp files after next run |")
+        print("|---|---|---|---|---|---|---|---|")
+        for r in slow_rows:
+            p = r["phases"]
+            print(f"| {r['kind']} | {r['bytes']} | {r['kills']} | {p['part of the data written']} | "
+                  f"{p['all data written, before the rename']} | {p['after the rename']} | {r['partial']} | "
+                  f"{r['temp_left']} |")
+    bad = sum(r["partial"] + r["temp_left"] + (not r["final_complete"]) for r in rows + slow_rows)
+    bad += sum(r["no_write"] for r in slow_rows)
     return 0 if bad == 0 else 1
 
 

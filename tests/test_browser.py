@@ -138,7 +138,7 @@ def pages(tmp_path_factory):
             t += 7
     log = write_jsonl(tmp / "shop.jsonl", rows)
     report = tmp / "report.html"
-    assert commands_main(["report", str(log), "--goal", "Paid", "--html", str(report), "--title", TITLE]) == 0
+    assert commands_main(["report", str(log), "--goal", "Paid", "--min-visits", "1", "--html", str(report), "--title", TITLE]) == 0
     plain = tmp / "control.html"
     plain.write_text("<!DOCTYPE html><title>control</title><script>document.title='pwned'</script>", encoding="utf-8")
     guarded = tmp / "guarded.html"

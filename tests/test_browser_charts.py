@@ -31,7 +31,7 @@ HEIGHT = 5000
 def shots(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("browser-charts")
     log = write_jsonl(tmp / "shop.jsonl", _shop_rows())
-    assert commands_main(["report", str(log), "--goal", "Paid", "--html", str(tmp / "r.html")]) == 0
+    assert commands_main(["report", str(log), "--goal", "Paid", "--min-visits", "1", "--html", str(tmp / "r.html")]) == 0
     pa, pb = _compare_logs(tmp)
     assert commands_main(["compare", str(pa), str(pb), "--goal", "Paid", "--html", str(tmp / "c.html"),
                           "--draws", "100", "-q"]) == 0

@@ -6,6 +6,9 @@ there and cases in flight there (both part of the visits), the probability of re
 when infinite or undefined), and the mean time to the next event in seconds. Given the extended
 analysis, the start's row also carries the intervals of its conversion and expected steps, with
 the level and the method named in the column ``interval`` (e.g. ``95% session bootstrap``).
+With ``--cases`` (the sessions themselves) the observed time in each state (count, mean, median,
+90th percentile, from :mod:`tracechain.analyze.case_times`) and the re-entries per case
+(:mod:`tracechain.analyze.loops`) follow as further columns.
 
 State names are untrusted. Written with :mod:`csv` (RFC 4180 quoting: a cell with a comma,
 quote or line break is quoted, quotes doubled), and every text cell that begins with
@@ -62,6 +65,13 @@ def render_csv(a: Analysis, extended=None) -> str:
         header += ["p_any_goal_low", "p_any_goal_high", "expected_steps_low", "expected_steps_high", "interval"]
         how = (f"{100 * extended.level:.0f}% "
                f"{METHOD_NAMES.get(getattr(extended, 'interval_method', 'dirichlet'), 'Dirichlet posterior')}")
+    ct, rw = getattr(a, "case_times", None), getattr(a, "rework", None)
+    dwell_obs = {d.name: d for d in ct.dwell} if ct is not None else None
+    rework = {x.state: x for x in rw.states} if rw is not None else None
+    if dwell_obs is not None:  # with --cases: observed time in the state (the sessions themselves)
+        header += ["observed_dwell_n", "observed_dwell_mean_s", "observed_dwell_median_s", "observed_dwell_p90_s"]
+    if rework is not None:
+        header += ["cases_came_back", "reentries_mean", "reentries_median", "reentries_p90", "reentries_max"]
     w.writerow([csv_cell(h) for h in header])
     for r in a.state_rows():
         if r.role == "end":
@@ -77,5 +87,12 @@ def render_csv(a: Analysis, extended=None) -> str:
                         _f(getattr(siv, "low", None)), _f(getattr(siv, "high", None)), how]
             else:
                 row += ["", "", "", "", ""]
+        if dwell_obs is not None:
+            t = dwell_obs.get(r.state)
+            row += [str(t.n), _f(t.mean_s), _f(t.median_s), _f(t.p90_s)] if t is not None else ["0", "", "", ""]
+        if rework is not None:
+            x = rework.get(r.state)
+            row += ([str(x.reentered), _f(x.mean), _f(x.median), _f(x.p90), str(x.max)] if x is not None
+                    else ["", "", "", "", ""])
         w.writerow(row)
     return buf.getvalue()

@@ -224,3 +224,22 @@ def test_formats_and_help_list_spark(capsys):
         main(["analyze", "--help"])
     helptext = capsys.readouterr().out
     assert "--spark-master" in helptext and "spark" in helptext.split("installed engines:")[1].split(";")[0]
+
+
+def test_spark_submit_keeps_its_master(tmp_path):
+    """Started by spark-submit (how a cluster job is launched), tracechain's session must use the master
+    spark-submit was given, not local[*]: checked with the spark-submit script PySpark ships."""
+    import pyspark
+
+    home = os.path.dirname(pyspark.__file__)
+    submit = os.path.join(home, "bin", "spark-submit")
+    if not os.path.exists(submit):
+        pytest.skip("this PySpark has no bin/spark-submit")
+    script = tmp_path / "job.py"
+    script.write_text("from tracechain.engines.spark_engine import spark_session\n"
+                      "s = spark_session()\nprint('MASTER=' + s.sparkContext.master)\ns.stop()\n", encoding="utf-8")
+    env = dict(os.environ, SPARK_HOME=home, PYSPARK_PYTHON=sys.executable, PYSPARK_DRIVER_PYTHON=sys.executable)
+    env.pop("TRACECHAIN_SPARK_MASTER", None)
+    done = subprocess.run(["bash", submit, "--master", "local[1]", str(script)], env=env, capture_output=True,
+                          text=True, timeout=300)
+    assert "MASTER=local[1]" in done.stdout, done.stderr[-2000:]

@@ -67,7 +67,9 @@ def java_found() -> str | None:
 
 
 def spark_session(master: str | None = None):
-    """The active SparkSession, else a new one (``master``: ``--spark-master``; default ``local[*]``)."""
+    """The active SparkSession, else a new one (``master``: ``--spark-master``, else the environment variable
+    ``TRACECHAIN_SPARK_MASTER``, else the master ``spark-submit`` set when it started this process, else
+    ``local[*]``)."""
     _pyspark()
     from pyspark.sql import SparkSession
 
@@ -79,7 +81,11 @@ def spark_session(master: str | None = None):
                          "JAVA_HOME (Debian: apt-get install openjdk-17-jre-headless)")
     b = SparkSession.builder.appName("tracechain").config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false") \
         .config("spark.sql.session.timeZone", "UTC")
-    b = b.master(master or os.environ.get("TRACECHAIN_SPARK_MASTER") or "local[*]")
+    chosen = master or os.environ.get("TRACECHAIN_SPARK_MASTER")
+    if chosen is None and "PYSPARK_GATEWAY_PORT" not in os.environ:
+        chosen = "local[*]"  # not started by spark-submit, which would have set the master
+    if chosen:
+        b = b.master(chosen)
     try:
         return b.getOrCreate()
     except Exception as err:  # the gateway could not start: no usable Java, a bad master URL

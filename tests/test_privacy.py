@@ -66,7 +66,10 @@ def personal_log(tmp_path):
 
 
 def _run(*argv) -> int:
-    return commands_main([str(a) for a in argv])
+    argv = [str(a) for a in argv]
+    if argv[:1] == ["report"]:  # the tiny log's dead end has fewer than 5 visits: list it (--min-visits 1)
+        argv[1:1] = ["--min-visits", "1"]
+    return commands_main(argv)
 
 
 def test_reports_pseudonymise_keys_by_default(personal_log, tmp_path, capsys):

@@ -57,7 +57,7 @@ def files(tmp_path_factory):
                        encoding="utf-8")
     out = {k: d / f"r.{k}" for k in ("html", "md", "csv", "svg")}
     title = "</title><script>document.title='pwned'</script>"
-    assert commands_main(["report", str(log), "--goal", GOAL, "--mapping", str(mapping), "--title", title,
+    assert commands_main(["report", str(log), "--min-visits", "1", "--goal", GOAL, "--mapping", str(mapping), "--title", title,
                           "--html", str(out["html"]), "--markdown", str(out["md"]), "--csv", str(out["csv"]),
                           "--svg", str(out["svg"]), "--raw-keys", "--max-states", "100"]) == 0
     return log, mapping, out, title

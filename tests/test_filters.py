@@ -168,3 +168,10 @@ def test_sql_values_are_bound(log):
     with pytest.raises(Exception) as info:
         count_data([f"sqlite:///{db}"], table="ev", fields=FIELDS, shape=shape, order_by="seq")
     assert "no usable events" in str(info.value)
+
+
+def test_spark_refuses_filters_before_work(log, capsys):
+    _, path, _ = log
+    rc = main(["analyze", path, "--engine", "spark", "--where", "device=mobile"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "spark" in err and "Traceback" not in err

@@ -168,3 +168,22 @@ def test_sql_values_are_bound(log):
     with pytest.raises(Exception) as info:
         count_data([f"sqlite:///{db}"], table="ev", fields=FIELDS, shape=shape, order_by="seq")
     assert "no usable events" in str(info.value)
+
+
+def test_spark_refuses_filters_before_work(log, capsys):
+    _, path, _ = log
+    rc = main(["analyze", path, "--engine", "spark", "--where", "device=mobile"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "spark" in err and "Traceback" not in err
+
+
+def test_unknown_field_jsonl(tmp_path, capsys):
+    # JSON Lines has no header: a key no line holds is found out at the end of the read
+    p = tmp_path / "ev.jsonl"
+    p.write_text('{"session": "a", "time": 1, "event": "x", "device": "m"}\n'
+                 '{"session": "a", "time": 2, "event": "y", "device": "d"}\n')
+    assert main(["analyze", str(p), "--where", "colour=red"]) == 2
+    err = capsys.readouterr().err
+    assert "colour" in err and "Traceback" not in err
+    _, rep = count_sources([str(p)], shape=ShapeOptions(filters=Filters.from_options(["device=m"])))
+    assert rep.events == 1 and dict(rep.filtered) == {"--where device=m": 1}

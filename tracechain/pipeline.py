@@ -19,7 +19,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any, BinaryIO
 
 from .counts import TransitionCounts
-from .errors import EmptyInputError, UsageError
+from .errors import EmptyInputError, FieldError, UsageError
 from .events import EventChunk, ParseReport
 from .ingest.base import ReadOptions
 from .ingest.fields import FieldSpec
@@ -71,7 +71,13 @@ def apply_filters(chunks: Iterable[EventChunk], filters: Filters | None, report:
     if filters is None:
         yield from chunks
         return
+    # a --where field without a value in any event (JSON Lines: a key no line has, which the
+    # reader cannot know in advance) is an error at the end of the source, not a silent empty result
+    seen = dict.fromkeys(filters.fields, False)
+    source = None
     for chunk in chunks:
+        source = chunk.source
+
         def column(name, chunk=chunk):
             arr = chunk.attrs.get(name)
             if arr is None and name in ("session", report.fields.get("session")):
@@ -81,6 +87,8 @@ def apply_filters(chunks: Iterable[EventChunk], filters: Filters | None, report:
             if arr is None:
                 raise UsageError(f"{chunk.source}: --where {name}: this reader gives no field {name!r} (filters read "
                                  "fields of JSON Lines, CSV and Parquet, and the session and event of any format)")
+            if not seen[name] and arr.null_count < len(arr):
+                seen[name] = True
             return arr
 
         keep = filters.keep_mask(chunk.time, column, report.filtered)
@@ -90,6 +98,11 @@ def apply_filters(chunks: Iterable[EventChunk], filters: Filters | None, report:
         report.events -= int(len(keep) - keep.sum())
         if keep.any():
             yield chunk.take(keep)
+    absent = [f for f, ok in seen.items() if not ok]
+    if source is not None and absent:
+        used = ", ".join(f"{k} {v!r}" for k, v in report.fields.items() if v)
+        raise FieldError(f"the field {absent[0]!r} (from --where) has no value in any event read; check its name "
+                         f"(fields in use: {used}; a nested field is not read by --where)", source)
 
 
 def _resolve(paths: Iterable[str] | Iterable[Source], stdin: BinaryIO | None,

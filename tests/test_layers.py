@@ -51,7 +51,8 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     ("check", ("tracechain.check",)),
     # what every command shares: exit statuses, option types, options -> shaping, counts
     ("options", ("tracechain.options", "tracechain.outputs")),
-    ("commands", ("tracechain.analyze.commands", "tracechain.report.commands", "tracechain.check.command")),
+    ("commands", ("tracechain.analyze.commands", "tracechain.report.commands", "tracechain.check.command",
+                  "tracechain.analyze.steps_command")),
     # the entry points: the command line, the pytest plugin, and the package root, which
     # re-exports the public API and wires the layers together (as any import of a
     # submodule runs it first, nothing below may import it: the version is in _version)

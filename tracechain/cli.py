@@ -225,6 +225,9 @@ def build_parser() -> argparse.ArgumentParser:
     _register_report(sub)
 
     _register_check(sub)
+    from .analyze.steps_command import register as _register_steps
+
+    _register_steps(sub, _add_input_options)
     return parser
 
 

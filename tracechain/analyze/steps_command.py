@@ -1,0 +1,98 @@
+"""``tracechain steps``: ordered steps (a funnel) through the shaped sessions (see :mod:`.steps`)."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from ..errors import UsageError
+
+__all__ = ["register", "cmd_steps", "steps_lines"]
+
+HELP_MODEL = ("model: in the first-order chain fitted to the same sessions, the probability that a walk started in "
+              "the step before enters this step before it ends (or enters another goal or terminal state); with "
+              "--strict-order, before it enters any other state; first row: from the start")
+
+
+def register(subparsers, _add_input_options) -> None:
+    """Add ``steps``; ``_add_input_options`` is the command line's shared input options."""
+    from ..durations import parse_duration
+    from ..options import add_level_option
+
+    p = subparsers.add_parser(
+        "steps", help="ordered steps (a funnel): sessions reaching each step in order, drop-off, times, model",
+        description="Count the sessions that reach each named step in order (a funnel), the drop-off between "
+                    "consecutive steps with an interval, the median and 90th-percentile time between them, and "
+                    "beside each observed share the fitted chain's prediction. " + HELP_MODEL + ".")
+    _add_input_options(p)
+    p.add_argument("--steps", required=True, metavar="LIST",
+                   help="the funnel's steps, comma-separated states (after the mapping file), e.g. "
+                        "'Landing,Product,Cart'")
+    p.add_argument("--within", type=parse_duration, metavar="DURATION",
+                   help="every step must come no later than this after the first step (e.g. 1h)")
+    p.add_argument("--strict-order", action="store_true",
+                   help="no other state between consecutive steps (repeats of a step are allowed)")
+    add_level_option(p)
+    p.set_defaults(handler=cmd_steps)
+
+
+def _p(x) -> str:
+    return "n/a" if x is None else f"{100 * x:.1f}%"
+
+
+def _t(x) -> str:
+    from ..report.text import safe_text  # noqa: F401
+
+    if x is None:
+        return "-"
+    if x < 120:
+        return f"{x:.0f}s"
+    if x < 7200:
+        return f"{x / 60:.1f}m"
+    return f"{x / 3600:.1f}h"
+
+
+def steps_lines(res) -> list[str]:
+    from ..report.text import safe_text
+    from .commands import _table
+
+    pct = f"{100 * res.level:g}%"
+    head = (f"tracechain steps: {res.sessions:,} sessions; "
+            + ("strict order (no other state between steps)" if res.strict else "other states allowed between steps")
+            + (f"; within {res.within_s:g}s of the first step" if res.within_s is not None else ""))
+    rows = []
+    for i, r in enumerate(res.rows):
+        drop = None if r.share is None else 1 - r.share
+        di = "" if r.share_low is None else f"[{_p(1 - r.share_high)}, {_p(1 - r.share_low)}]"
+        rows.append([safe_text(r.step, 60), f"{r.reached:,}", _p(r.share), _p(r.model),
+                     "" if i == 0 else _p(drop), "" if i == 0 else di,
+                     "" if r.time is None else _t(r.time.median_s), "" if r.time is None else _t(r.time.p90_s)])
+    lines = [head, ""]
+    lines += _table(["step", "sessions", "observed", "model", "drop-off", f"{pct} interval", "median", "p90"], rows)
+    lines.append("")
+    lines.append("observed: share of the sessions at the step before (first row: of all sessions)")
+    lines.append(HELP_MODEL)
+    lines.append(f"interval: Jeffreys (Beta posterior); times: from the step before, percentiles by numpy's "
+                 f"{res.quantile_method!r} method")
+    for n in res.notes:
+        lines.append(f"note: {safe_text(n, 400)}")
+    return lines
+
+
+def cmd_steps(args: argparse.Namespace) -> int:
+    from ..options import sessions_from_args, shape_from_args
+    from .steps import parse_steps, steps_analysis
+
+    steps = parse_steps(args.steps)
+    if args.order != 1:
+        raise UsageError("steps works on first-order chains (--order 1): steps are states")
+    if args.within is not None and args.within <= 0:
+        raise UsageError("--within must be a positive duration")
+    _, _, goals, terminal = shape_from_args(args)
+    sessions = sessions_from_args(args, "tracechain steps")
+    if not len(sessions):
+        raise UsageError("no sessions in the input")
+    res = steps_analysis(sessions, steps, strict=args.strict_order, within=args.within, level=args.level,
+                         goals=goals, terminal=terminal, smoothing=args.smoothing)
+    sys.stdout.write("\n".join(steps_lines(res)) + "\n")
+    return 0

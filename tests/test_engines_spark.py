@@ -39,6 +39,7 @@ FIELDS = FieldSpec(session="session_id", time="timestamp", event="event")
 def spark():
     from pyspark.sql import SparkSession
 
+    os.environ.setdefault("PYSPARK_PYTHON", sys.executable)  # workers: this interpreter, not PATH's python3
     s = (SparkSession.builder.master("local[2]").appName("tracechain-tests")
          .config("spark.ui.enabled", "false").config("spark.ui.showConsoleProgress", "false")
          .config("spark.sql.shuffle.partitions", "2").config("spark.sql.session.timeZone", "UTC")

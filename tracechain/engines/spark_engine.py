@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import os
 import shutil
+import sys
 import uuid
 from dataclasses import dataclass
 from urllib.parse import unquote, urlparse
@@ -86,6 +87,11 @@ def spark_session(master: str | None = None):
         chosen = "local[*]"  # not started by spark-submit, which would have set the master
     if chosen:
         b = b.master(chosen)
+    if (chosen or "").startswith("local") and not os.environ.get("PYSPARK_PYTHON"):
+        # local workers run this interpreter, not whatever 'python3' is on PATH (PySpark refuses a
+        # worker of another minor version; it reads the worker's interpreter from this variable);
+        # on a cluster, PYSPARK_PYTHON or the cluster's configuration decide
+        os.environ["PYSPARK_PYTHON"] = sys.executable
     try:
         return b.getOrCreate()
     except Exception as err:  # the gateway could not start: no usable Java, a bad master URL

@@ -8,11 +8,12 @@ practice, no source) for the durations.
 from __future__ import annotations
 
 import argparse
+from datetime import timedelta, timezone
 
 import numpy as np
 import pytest
 
-from tracechain.durations import parse_duration, parse_time
+from tracechain.durations import iso_datetime, parse_duration, parse_time
 from tracechain.errors import UsageError
 
 
@@ -36,6 +37,35 @@ def test_times_as_numpy_reads_them(text):
 
 def test_offsets():
     assert parse_time("2026-03-05T01:00:00+01:00") == np.datetime64("2026-03-05T00:00:00", "s").astype(np.int64)
+
+
+@pytest.mark.parametrize("text", ["2026-03-05T12:00:07.5", "2026-03-05 12:00:07.25", "2026-03-05T12:00:07.1234",
+                                  "2026-03-05T12:00:07.123456", "2026-03-05T12:00"])
+def test_fractions_of_any_length_on_every_python(text):
+    # fromisoformat before Python 3.11 refuses fractions that are not 3 or 6 digits long;
+    # numpy reads them all (microseconds here)
+    got = iso_datetime(text).replace(tzinfo=timezone.utc).timestamp()
+    assert got == np.datetime64(text.replace(" ", "T"), "us").astype(np.int64) / 1e6
+
+
+def test_nanosecond_fractions_are_cut_to_microseconds():
+    assert iso_datetime("2026-03-05T12:00:07.123456789").microsecond == 123456
+
+
+@pytest.mark.parametrize("text,offset", [("2026-03-05T12:00:00+0130", 5400), ("2026-03-05T12:00:00+01", 3600),
+                                         ("2026-03-05T12:00:00-05:00", -18000), ("2026-03-05T12:00:00.5Z", 0),
+                                         ("2026-03-05T12:00:00,5+00:00", 0)])
+def test_offset_forms(text, offset):
+    dt = iso_datetime(text)
+    assert dt.utcoffset() == timedelta(seconds=offset)
+    local = np.datetime64(text[:19], "s").astype(np.int64)
+    assert int(dt.timestamp()) == local - offset
+
+
+@pytest.mark.parametrize("text", ["2026-03-05T12:00:00+1", "2026-03-05T12:00:00.", "2026-13-05", "yesterday"])
+def test_not_iso(text):
+    with pytest.raises(ValueError):
+        iso_datetime(text)
 
 
 def test_bad_time():

@@ -135,11 +135,13 @@ WAREHOUSE = [
 
 
 def _iso_oracle(text: str) -> float:
-    # the zone name is an offset of zero; the rest is ISO 8601 as fromisoformat reads it
+    # the zone name is an offset of zero; the rest is ISO 8601, read by strptime (whose %f takes
+    # 1 to 6 digits on every Python, unlike fromisoformat before 3.11)
     for suffix in (" UTC", " utc", " GMT", " Z"):
         if text.endswith(suffix):
             text = text[: -len(suffix)]
-    return datetime.fromisoformat(text).replace(tzinfo=timezone.utc).timestamp()
+    fmt = "%Y-%m-%d" + text[10] + "%H:%M:%S" + (".%f" if "." in text else "")
+    return datetime.strptime(text, fmt).replace(tzinfo=timezone.utc).timestamp()
 
 
 def test_warehouse_text_times_detected_without_a_format():

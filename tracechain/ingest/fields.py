@@ -17,6 +17,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from ..durations import iso_datetime
 from ..errors import FieldError
 from .._arrowutil import to_numpy
 from .timeformats import ZONE_NAME_RE, strip_zone_name, strptime_seconds
@@ -135,10 +136,7 @@ _ZONE_NAME = re.compile(ZONE_NAME_RE)
 
 
 def _parse_iso(text: str) -> float:
-    s = _ZONE_NAME.sub("", text.strip())
-    if s.endswith(("Z", "z")):
-        s = s[:-1] + "+00:00"
-    dt = datetime.fromisoformat(s)
+    dt = iso_datetime(_ZONE_NAME.sub("", text.strip()))
     if dt.tzinfo is None:
         dt = dt.replace(tzinfo=timezone.utc)
     return dt.timestamp()

@@ -31,6 +31,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from ..durations import iso_datetime
 from ..errors import UsageError
 from .._arrowutil import to_numpy
 
@@ -84,7 +85,7 @@ def parse_when(text: str, option: str) -> float:
     ``--until`` a date alone is the end of that day (the start of the next)."""
     t = text.strip()
     try:
-        dt = datetime.fromisoformat(t[:-1] + "+00:00" if t.endswith(("Z", "z")) else t)
+        dt = iso_datetime(t)
     except ValueError:
         raise UsageError(f"{option} {text!r}: not an ISO 8601 date or time (e.g. 2026-04-01 or "
                          "2026-04-01T12:00:00Z)") from None

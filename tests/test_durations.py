@@ -54,11 +54,12 @@ def test_nanosecond_fractions_are_cut_to_microseconds():
 
 @pytest.mark.parametrize("text,offset", [("2026-03-05T12:00:00+0130", 5400), ("2026-03-05T12:00:00+01", 3600),
                                          ("2026-03-05T12:00:00-05:00", -18000), ("2026-03-05T12:00:00.5Z", 0),
-                                         ("2026-03-05T12:00:00,5+00:00", 0)])
+                                         ("2026-03-05T12:00:00,5+00:00", 0),
+                                         ("2026-03-05t12:00:00z", 0), ("2026-03-05 12:00:00Z", 0)])
 def test_offset_forms(text, offset):
     dt = iso_datetime(text)
     assert dt.utcoffset() == timedelta(seconds=offset)
-    local = np.datetime64(text[:19], "s").astype(np.int64)
+    local = np.datetime64(text[:19].upper().replace(" ", "T"), "s").astype(np.int64)
     assert int(dt.timestamp()) == local - offset
 
 

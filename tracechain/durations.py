@@ -34,7 +34,7 @@ def parse_duration(text: str) -> float:
 
 
 _ISO_TAIL = re.compile(
-    r"^(?P<head>\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(?::\d{2})?)"
+    r"^(?P<day>\d{4}-\d{2}-\d{2})[Tt ](?P<clock>\d{2}:\d{2}(?::\d{2})?)"
     r"(?:[.,](?P<frac>\d+))?"
     r"(?P<zone>[Zz]|[+-]\d{2}(?::?\d{2}(?::?\d{2}(?:\.\d+)?)?)?)?$")
 
@@ -42,12 +42,13 @@ _ISO_TAIL = re.compile(
 def iso_datetime(text: str) -> datetime:
     """An ISO 8601 date or date-time as ``datetime.fromisoformat`` of Python 3.11 reads it
     (naive when no offset is given), on every supported Python: fractions of 1 to 9 digits
-    (beyond microseconds cut, not rounded), ``,`` as the decimal sign, ``Z``, and offsets
+    (beyond microseconds cut, not rounded), ``,`` as the decimal sign, ``t`` and ``z`` in lower case
+    (RFC 3339 section 5.6), ``Z``, and offsets
     ``+HH``, ``+HHMM``, ``+HH:MM``. Raises ``ValueError`` for anything else."""
     s = text.strip()
     m = _ISO_TAIL.match(s)
     if m is not None:
-        s = m.group("head")
+        s = m.group("day") + "T" + m.group("clock")
         frac = m.group("frac")
         if frac is not None:
             s += "." + (frac + "000000")[:6]

@@ -146,7 +146,7 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                         "every unfinished case); more recent ones are in flight")
     c.add_argument("--as-of", type=_timestamp, metavar="TIME",
                    help="the time ages are measured from, ISO 8601 (default: the latest time in the data)")
-    c.add_argument("--open-cases", choices=("stuck", "continue"), default="stuck",
+    c.add_argument("--open-cases", choices=("stuck", "continue"), default=None,
                    help="stuck (default): an open case is an outcome, 'stuck in' its last state, in every "
                         "probability and what-if; continue: the assumption that open cases carry on like the "
                         "finished ones (they are left out of the estimates). In-flight cases are right-censored "

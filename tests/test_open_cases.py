@@ -76,6 +76,20 @@ def test_as_of_moves_the_reference_time():
     assert {r.state: r.p90_age_s for r in oc.states}["running"] == pytest.approx(11 * H + 0.9 * 8 * H)
 
 
+def test_mean_age_beside_median_and_90th_percentile():
+    # d6 also stops in running (last event at 2 h). As of 20 h the running ages are 19 h (d2), 11 h (d4)
+    # and 18 h (d6): median 18 h, mean (19 + 11 + 18) / 3 = 16 h (checked with statistics.mean too)
+    import statistics
+
+    rows = ROWS + [("d6", 0 * H, "queued"), ("d6", 2 * H, "running")]
+    counts = count_chunks([_chunk(rows)], ShapeOptions(cases=CasePolicy(frozenset({"done", "failed"}),
+                                                                        stale_after=2 * H, as_of=20 * H)))
+    by = {r.state: r for r in open_cases(counts).states}
+    assert by["running"].median_age_s == 18 * H
+    assert by["running"].mean_age_s == pytest.approx(16 * H) == statistics.mean([19 * H, 11 * H, 18 * H])
+    assert by["blocked"].mean_age_s == 16 * H  # d3 alone
+
+
 def test_without_policy_all_sessions_end():
     counts = count_chunks([_chunk(ROWS)], ShapeOptions())
     assert counts.open.sum() == 0 and counts.ends.sum() == 5

@@ -90,6 +90,29 @@ def test_mean_age_beside_median_and_90th_percentile():
     assert by["blocked"].mean_age_s == 16 * H  # d3 alone
 
 
+def test_report_csv_has_the_ages_of_the_open_cases(tmp_path, capsys):
+    # the log above as a file, times from an invented start; as of 20 h with a 2 h limit (see above):
+    # running: ages 19 h and 11 h (median = mean = 15 h, 90th percentile 11 + 0.9 * 8 h); blocked: 16 h
+    import csv
+    import io
+    from datetime import datetime, timezone
+
+    t0 = 1_780_000_000
+    log = tmp_path / "deploys.jsonl"
+    log.write_text("".join(json.dumps({"session": s, "time": t0 + t, "event": e}) + "\n" for s, t, e in ROWS))
+    as_of = datetime.fromtimestamp(t0 + 20 * H, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+    out = tmp_path / "r.csv"
+    assert main(["report", str(log), "--terminal", "done", "--terminal", "failed", "--stale-after", "2h",
+                 "--as-of", as_of, "--csv", str(out)]) == 0
+    capsys.readouterr()
+    rows = {r["state"]: r for r in csv.DictReader(io.StringIO(out.read_text(encoding="utf-8")))}
+    got = {k: tuple(float(rows[k][c]) for c in ("open_age_median_s", "open_age_p90_s", "open_age_mean_s"))
+           for k in ("running", "blocked")}
+    assert got["running"] == pytest.approx((15 * H, 11 * H + 0.9 * 8 * H, 15 * H), rel=1e-6)
+    assert got["blocked"] == pytest.approx((16 * H, 16 * H, 16 * H), rel=1e-6)
+    assert rows["queued"]["open_age_mean_s"] == ""  # no case open there
+
+
 def test_without_policy_all_sessions_end():
     counts = count_chunks([_chunk(ROWS)], ShapeOptions())
     assert counts.open.sum() == 0 and counts.ends.sum() == 5

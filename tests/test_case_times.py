@@ -70,3 +70,47 @@ def test_cli_cases_section_in_json_and_text(tmp_path, capsys):
     assert dw["work"]["n"] == 3 and dw["work"]["mean_s"] == pytest.approx(8 / 3 * H)
     # nobody comes back to a state in this log
     assert all(r["reentered"] == 0 for r in doc["cases"]["reentries"])
+
+
+def test_seeded_job_scheduler_dwell_and_open_ages_within_four_standard_errors():
+    # the seeded job scheduler with a known stuck probability (test_stuck_outcome): QUEUED lasts an
+    # exponential time of mean 60 s and RUNNING one of mean 600 s, so the true median is mean * ln 2 and
+    # the 90th percentile mean * ln 10. Jobs start uniformly over ten days and are read as of day 30,
+    # so the age of a hung job is 30 d minus a uniform start in [0, 10 d) minus its few hours of work:
+    # about uniform on (20 d, 30 d), mean 25 d, 90th percentile 29 d.
+    # Tolerance: 4 standard errors (our choice); a sample quantile's standard error is
+    # sqrt(p (1 - p) / n) / f(q), f the density at the quantile (asymptotic normality of sample
+    # quantiles, a standard result; from memory), a mean's sd / sqrt(n).
+    from test_stuck_outcome import POLICY, _chunk, _simulate_jobs
+
+    from tracechain.analyze.order import Sessions
+    from tracechain.analyze.stuck import open_cases
+    from tracechain.pipeline import ShapeOptions, count_chunks
+
+    rows = _simulate_jobs(4000, seed=5)
+    by: dict[str, list] = {}
+    for s, t, e in sorted(rows):
+        by.setdefault(s, []).append((t, e))
+    keys = sorted(by)
+    sess = Sessions(tuple(tuple(e for _t, e in by[k]) for k in keys),
+                    tuple(np.array([t for t, _e in by[k]]) for k in keys), tuple(keys), ("DONE",))
+    dwell = {d.name: d for d in case_times(sess, ("DONE",)).dwell}
+
+    def check_exponential(name, mean):
+        d = dwell[name]
+        for p, got in ((0.5, d.median_s), (0.9, d.p90_s)):
+            q = -mean * np.log(1 - p)
+            density = (1 - p) / mean
+            assert got == pytest.approx(q, abs=4 * np.sqrt(p * (1 - p) / d.n) / density), (name, p)
+        assert d.mean_s == pytest.approx(mean, abs=4 * mean / np.sqrt(d.n)), name
+
+    check_exponential("QUEUED", 60.0)
+    check_exponential("RUNNING", 600.0)
+    oc = open_cases(count_chunks([_chunk(rows)], ShapeOptions(cases=POLICY)))
+    (lock,) = [r for r in oc.states if r.state == "LOCKWAIT"]
+    day = 86400.0
+    n = lock.open_cases  # about 4000 x 0.079 hung jobs
+    sd = 10 * day / np.sqrt(12)
+    assert lock.mean_age_s == pytest.approx(25 * day, abs=4 * sd / np.sqrt(n) + 0.1 * day)  # (+ their work)
+    assert lock.p90_age_s == pytest.approx(29 * day, abs=4 * np.sqrt(0.09 / n) * 10 * day + 0.1 * day)
+    assert lock.median_age_s == pytest.approx(25 * day, abs=4 * np.sqrt(0.25 / n) * 10 * day + 0.1 * day)

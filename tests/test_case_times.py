@@ -114,3 +114,23 @@ def test_seeded_job_scheduler_dwell_and_open_ages_within_four_standard_errors():
     assert lock.mean_age_s == pytest.approx(25 * day, abs=4 * sd / np.sqrt(n) + 0.1 * day)  # (+ their work)
     assert lock.p90_age_s == pytest.approx(29 * day, abs=4 * np.sqrt(0.09 / n) * 10 * day + 0.1 * day)
     assert lock.median_age_s == pytest.approx(25 * day, abs=4 * np.sqrt(0.25 / n) * 10 * day + 0.1 * day)
+
+
+def test_report_html_and_markdown_show_the_same_observed_times(tmp_path, capsys):
+    # the hand count of ROWS: time to done a 3 h, b 7 h, c 10 h: mean 20/3 h, median 7 h,
+    # 90th percentile 7 + 0.8 * 3 = 9.4 h (linear interpolation); in work: a 2 h, b 5 h, c 1 h
+    from tracechain.cli import main
+    from tracechain.report.html import duration
+
+    log = tmp_path / "t.jsonl"
+    log.write_text("".join(json.dumps({"case": s, "time": t, "event": e}) + "\n" for s, t, e in ROWS))
+    html_out, md_out = tmp_path / "r.html", tmp_path / "r.md"
+    assert main(["report", str(log), "--goal", "done", "--cases", "--html", str(html_out), "--markdown", str(md_out),
+                 "--no-charts", "--no-diagram"]) == 0
+    capsys.readouterr()
+    h, m = html_out.read_text(encoding="utf-8"), md_out.read_text(encoding="utf-8")
+    for name, n, values in (("to goal done", 3, (20 / 3 * H, 7 * H, 9.4 * H)),
+                            ("in work", 3, (8 / 3 * H, 2 * H, 2 * H + 0.8 * 3 * H))):
+        cells = [duration(v) for v in values]
+        assert f"<tr><td>{name}</td><td class=num>{n}</td>" + "".join(f"<td class=num>{c}</td>" for c in cells) in h
+        assert f"| {name} | {n} | " + " | ".join(cells) + " |" in m

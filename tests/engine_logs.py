@@ -143,6 +143,28 @@ def assert_same_counts(native, other, rel: float = 1e-9) -> None:
         assert set(ca["ages"]) == set(cb["ages"])
         for st, ages in ca["ages"].items():
             assert np.allclose(sorted(ages), sorted(cb["ages"][st]), rtol=1e-12, atol=1e-9), st
+        assert_same_stuck_cases(native, other)
+    # the states of events cut after a goal, which let a terminal state that only follows the goal be no error
+    assert native.meta.get("cut_after_goal") == other.meta.get("cut_after_goal")
+
+
+def assert_same_stuck_cases(native, other) -> None:
+    """The same open cases (the list ``analyze --stuck-cases`` writes): key and state exactly, the time
+    of the last event and the age within 1e-9 s."""
+    from tracechain.analyze.stuck import stuck_case_list
+
+    a, b = stuck_case_list(native), stuck_case_list(other)
+    assert a is not None and b is not None, "no record of the open cases"
+    ka = sorted((c.key, c.state, c.last_event, c.age_s) for c in a[1])
+    kb = sorted((c.key, c.state, c.last_event, c.age_s) for c in b[1])
+    assert [(k, s) for k, s, _l, _a in ka] == [(k, s) for k, s, _l, _a in kb]
+    assert len(ka) == int(native.open.sum())  # one entry per open case
+    for (_k, _s, la, aa), (_k2, _s2, lb, ab) in zip(ka, kb):
+        assert (la is None) == (lb is None) and (aa is None) == (ab is None)
+        if la is not None:
+            assert abs(la - lb) <= 1e-9 * abs(la)
+        if aa is not None:
+            assert abs(aa - ab) <= 1e-9
 
 
 def shapes(mapping):

@@ -70,3 +70,67 @@ def test_cli_cases_section_in_json_and_text(tmp_path, capsys):
     assert dw["work"]["n"] == 3 and dw["work"]["mean_s"] == pytest.approx(8 / 3 * H)
     # nobody comes back to a state in this log
     assert all(r["reentered"] == 0 for r in doc["cases"]["reentries"])
+
+
+def test_seeded_job_scheduler_dwell_and_open_ages_within_four_standard_errors():
+    # the seeded job scheduler with a known stuck probability (test_stuck_outcome): QUEUED lasts an
+    # exponential time of mean 60 s and RUNNING one of mean 600 s, so the true median is mean * ln 2 and
+    # the 90th percentile mean * ln 10. Jobs start uniformly over ten days and are read as of day 30,
+    # so the age of a hung job is 30 d minus a uniform start in [0, 10 d) minus its few hours of work:
+    # about uniform on (20 d, 30 d), mean 25 d, 90th percentile 29 d.
+    # Tolerance: 4 standard errors (our choice); a sample quantile's standard error is
+    # sqrt(p (1 - p) / n) / f(q), f the density at the quantile (asymptotic normality of sample
+    # quantiles, a standard result; from memory), a mean's sd / sqrt(n).
+    from test_stuck_outcome import POLICY, _chunk, _simulate_jobs
+
+    from tracechain.analyze.order import Sessions
+    from tracechain.analyze.stuck import open_cases
+    from tracechain.pipeline import ShapeOptions, count_chunks
+
+    rows = _simulate_jobs(4000, seed=5)
+    by: dict[str, list] = {}
+    for s, t, e in sorted(rows):
+        by.setdefault(s, []).append((t, e))
+    keys = sorted(by)
+    sess = Sessions(tuple(tuple(e for _t, e in by[k]) for k in keys),
+                    tuple(np.array([t for t, _e in by[k]]) for k in keys), tuple(keys), ("DONE",))
+    dwell = {d.name: d for d in case_times(sess, ("DONE",)).dwell}
+
+    def check_exponential(name, mean):
+        d = dwell[name]
+        for p, got in ((0.5, d.median_s), (0.9, d.p90_s)):
+            q = -mean * np.log(1 - p)
+            density = (1 - p) / mean
+            assert got == pytest.approx(q, abs=4 * np.sqrt(p * (1 - p) / d.n) / density), (name, p)
+        assert d.mean_s == pytest.approx(mean, abs=4 * mean / np.sqrt(d.n)), name
+
+    check_exponential("QUEUED", 60.0)
+    check_exponential("RUNNING", 600.0)
+    oc = open_cases(count_chunks([_chunk(rows)], ShapeOptions(cases=POLICY)))
+    (lock,) = [r for r in oc.states if r.state == "LOCKWAIT"]
+    day = 86400.0
+    n = lock.open_cases  # about 4000 x 0.079 hung jobs
+    sd = 10 * day / np.sqrt(12)
+    assert lock.mean_age_s == pytest.approx(25 * day, abs=4 * sd / np.sqrt(n) + 0.1 * day)  # (+ their work)
+    assert lock.p90_age_s == pytest.approx(29 * day, abs=4 * np.sqrt(0.09 / n) * 10 * day + 0.1 * day)
+    assert lock.median_age_s == pytest.approx(25 * day, abs=4 * np.sqrt(0.25 / n) * 10 * day + 0.1 * day)
+
+
+def test_report_html_and_markdown_show_the_same_observed_times(tmp_path, capsys):
+    # the hand count of ROWS: time to done a 3 h, b 7 h, c 10 h: mean 20/3 h, median 7 h,
+    # 90th percentile 7 + 0.8 * 3 = 9.4 h (linear interpolation); in work: a 2 h, b 5 h, c 1 h
+    from tracechain.cli import main
+    from tracechain.report.html import duration
+
+    log = tmp_path / "t.jsonl"
+    log.write_text("".join(json.dumps({"case": s, "time": t, "event": e}) + "\n" for s, t, e in ROWS))
+    html_out, md_out = tmp_path / "r.html", tmp_path / "r.md"
+    assert main(["report", str(log), "--goal", "done", "--cases", "--html", str(html_out), "--markdown", str(md_out),
+                 "--no-charts", "--no-diagram"]) == 0
+    capsys.readouterr()
+    h, m = html_out.read_text(encoding="utf-8"), md_out.read_text(encoding="utf-8")
+    for name, n, values in (("to goal done", 3, (20 / 3 * H, 7 * H, 9.4 * H)),
+                            ("in work", 3, (8 / 3 * H, 2 * H, 2 * H + 0.8 * 3 * H))):
+        cells = [duration(v) for v in values]
+        assert f"<tr><td>{name}</td><td class=num>{n}</td>" + "".join(f"<td class=num>{c}</td>" for c in cells) in h
+        assert f"| {name} | {n} | " + " | ".join(cells) + " |" in m

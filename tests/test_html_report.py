@@ -222,7 +222,7 @@ def test_stuck_states_from_open_counts():
     assert stuck is not None
     rows = list(tables(stuck).values())[0]
     assert rows[1][:4] == ["Queue", "4", "10", "40.0%"]  # 4 open of 10 visits (6 exits + 4 open)
-    assert rows[1][4:] == ["–", "–", "–"]  # no ages recorded (no open-case policy) and no times
+    assert rows[1][4:] == ["–", "–", "–", "–"]  # no ages recorded (no open-case policy) and no times
     # without open sessions there is no such section
     a2 = analyze(Chain.from_counts(base, goals=["Done"]))
     assert dom(render_html(build_report(a2, extended=None))).find_id("stuck") is None

@@ -76,6 +76,43 @@ def test_as_of_moves_the_reference_time():
     assert {r.state: r.p90_age_s for r in oc.states}["running"] == pytest.approx(11 * H + 0.9 * 8 * H)
 
 
+def test_mean_age_beside_median_and_90th_percentile():
+    # d6 also stops in running (last event at 2 h). As of 20 h the running ages are 19 h (d2), 11 h (d4)
+    # and 18 h (d6): median 18 h, mean (19 + 11 + 18) / 3 = 16 h (checked with statistics.mean too)
+    import statistics
+
+    rows = ROWS + [("d6", 0 * H, "queued"), ("d6", 2 * H, "running")]
+    counts = count_chunks([_chunk(rows)], ShapeOptions(cases=CasePolicy(frozenset({"done", "failed"}),
+                                                                        stale_after=2 * H, as_of=20 * H)))
+    by = {r.state: r for r in open_cases(counts).states}
+    assert by["running"].median_age_s == 18 * H
+    assert by["running"].mean_age_s == pytest.approx(16 * H) == statistics.mean([19 * H, 11 * H, 18 * H])
+    assert by["blocked"].mean_age_s == 16 * H  # d3 alone
+
+
+def test_report_csv_has_the_ages_of_the_open_cases(tmp_path, capsys):
+    # the log above as a file, times from an invented start; as of 20 h with a 2 h limit (see above):
+    # running: ages 19 h and 11 h (median = mean = 15 h, 90th percentile 11 + 0.9 * 8 h); blocked: 16 h
+    import csv
+    import io
+    from datetime import datetime, timezone
+
+    t0 = 1_780_000_000
+    log = tmp_path / "deploys.jsonl"
+    log.write_text("".join(json.dumps({"session": s, "time": t0 + t, "event": e}) + "\n" for s, t, e in ROWS))
+    as_of = datetime.fromtimestamp(t0 + 20 * H, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+    out = tmp_path / "r.csv"
+    assert main(["report", str(log), "--terminal", "done", "--terminal", "failed", "--stale-after", "2h",
+                 "--as-of", as_of, "--csv", str(out)]) == 0
+    capsys.readouterr()
+    rows = {r["state"]: r for r in csv.DictReader(io.StringIO(out.read_text(encoding="utf-8")))}
+    got = {k: tuple(float(rows[k][c]) for c in ("open_age_median_s", "open_age_p90_s", "open_age_mean_s"))
+           for k in ("running", "blocked")}
+    assert got["running"] == pytest.approx((15 * H, 11 * H + 0.9 * 8 * H, 15 * H), rel=1e-6)
+    assert got["blocked"] == pytest.approx((16 * H, 16 * H, 16 * H), rel=1e-6)
+    assert rows["queued"]["open_age_mean_s"] == ""  # no case open there
+
+
 def test_without_policy_all_sessions_end():
     counts = count_chunks([_chunk(ROWS)], ShapeOptions())
     assert counts.open.sum() == 0 and counts.ends.sum() == 5

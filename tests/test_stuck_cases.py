@@ -113,7 +113,44 @@ def test_without_terminal_states_it_is_refused_before_reading(tmp_path, capsys):
     assert "--stuck-cases needs terminal states" in capsys.readouterr().err
 
 
-def test_other_engines_are_refused(tmp_path, capsys):
+def test_duckdb_engine_lists_the_same_cases(tmp_path):
+    # the list is computed in SQL by the duckdb engine: the same file as the native engine's, and the
+    # hand count above
+    pytest.importorskip("duckdb", reason="the duckdb extra is not installed")
+    native, duck = tmp_path / "native.json", tmp_path / "duck.json"
+    assert _run(tmp_path, "--raw-keys", "--stuck-cases", str(native)) == 0
+    assert _run(tmp_path, "--raw-keys", "--engine", "duckdb", "--stuck-cases", str(duck)) == 0
+    a, b = strict_json_loads(native.read_text(encoding="utf-8")), strict_json_loads(duck.read_text(encoding="utf-8"))
+    assert a == b
+    as_of, want = _expected()
+    assert [(c["case"], c["state"], c["last_event"], c["age_s"]) for c in b["cases"]] == \
+        [(k, s, _iso(t), float(a)) for k, s, t, a in want]
+
+
+def test_sqlite_database_lists_the_same_cases(tmp_path):
+    import sqlite3
+
+    db = tmp_path / "tickets.db"
+    con = sqlite3.connect(db)
+    con.execute("CREATE TABLE ev (session TEXT, event TEXT, time REAL)")
+    con.executemany("INSERT INTO ev VALUES (?, ?, ?)",
+                    [(k, st, T0 + h * HOUR) for k, steps in TICKETS.items() for st, h in steps])
+    con.commit()
+    con.close()
     out = tmp_path / "stuck.csv"
-    assert _run(tmp_path, "--engine", "duckdb", "--stuck-cases", str(out)) == 2
-    assert not out.exists() and "native engine" in capsys.readouterr().err
+    assert main(["analyze", f"sqlite:///{db}", "--table", "ev", "--goal", "Solved", "--terminal", "Closed", "--stale-after", f"{STALE_H}h", "-q", "--raw-keys",
+                "--stuck-cases", str(out)]) == 0
+    rows = list(csv.reader(io.StringIO(out.read_text(encoding="utf-8"))))[1:]
+    _, want = _expected()
+    assert [(r[0].lstrip("'"), r[1].lstrip("'"), r[2], float(r[3])) for r in rows] == \
+        [(k, s, _iso(t), float(a)) for k, s, t, a in want]
+
+
+def test_an_edge_list_has_no_cases(tmp_path, capsys):
+    edges = tmp_path / "edges.csv"
+    edges.write_text("from,to,count\n[start],New,3\nNew,Waiting,2\nNew,Closed,1\n", encoding="utf-8")
+    out = tmp_path / "stuck.csv"
+    code = main(["analyze", str(edges), "--terminal", "Closed", "-q", "--stuck-cases", str(out)])
+    err = capsys.readouterr().err
+    assert code == 2 and not out.exists(), err
+    assert "--stuck-cases needs events" in err and "edge list" in err

@@ -51,3 +51,34 @@ def test_a_terminal_state_truly_absent_says_the_cut_was_looked_at(tmp_path, caps
     assert main(["analyze", str(log), "--goal", "done", "--terminal", "archived", "-q"]) == 2
     err = capsys.readouterr().err
     assert "'archived' does not occur in the data, not even after a goal" in err
+
+
+def test_the_sql_engines_look_at_the_cut_events_too(tmp_path):
+    # the same log through the duckdb engine (the cut events found in SQL) and a SQLite table: the
+    # same figures as the hand count above, and the same message for a terminal state truly absent
+    import sqlite3
+
+    import pytest
+
+    log = _log(tmp_path)
+    db = tmp_path / "t.db"
+    con = sqlite3.connect(db)
+    con.execute("CREATE TABLE ev (case_id TEXT, time REAL, event TEXT)")
+    con.executemany("INSERT INTO ev VALUES (?, ?, ?)", [(s, t * H, e) for s, t, e in ROWS])
+    con.commit()
+    con.close()
+    runs = [["sqlite:///" + str(db), "--table", "ev", "--session-field", "case_id"]]
+    try:
+        import duckdb  # noqa: F401
+
+        runs.append([str(log), "--engine", "duckdb"])
+    except ImportError:
+        pass
+    for src in runs:
+        out = tmp_path / "e.json"
+        assert main(["analyze", *src, "--goal", "done", "--terminal", "closed", "-q", "--json", str(out)]) == 0, src
+        doc = json.loads(out.read_text(encoding="utf-8"))
+        assert doc["conversion"]["from_start"] == pytest.approx(2 / 3, abs=1e-15)
+        assert doc["outcomes"]["goals"] == {"done": 2} and doc["outcomes"]["stuck"] == 1
+        assert any("occur only after a goal" in n and "closed" in n for n in doc["notes"])
+        assert main(["analyze", *src, "--goal", "done", "--terminal", "archived", "-q"]) == 2

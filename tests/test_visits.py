@@ -108,3 +108,21 @@ def test_every_output_of_one_run_shows_the_same_visits(tmp_path, capsys):
     # the stuck table's open cases add up to the per-state open column
     assert doc["open_cases"]["open"] == sum(o for _v, o, _f in HAND.values())
     assert doc["open_cases"]["in_flight"] == sum(f for _v, _o, f in HAND.values())
+
+
+def test_the_html_and_markdown_reports_show_the_same_visits(tmp_path, capsys):
+    # the same hand count (HAND above) in the report's per-state table and its stuck table, HTML and Markdown
+    log = _log(tmp_path)
+    html, md = tmp_path / "r.html", tmp_path / "r.md"
+    assert main(["report", str(log), "--terminal", "closed", "--stale-after", "24h", "--html", str(html),
+                 "--markdown", str(md), "--no-charts", "--no-diagram"]) == 0
+    capsys.readouterr()
+    h = html.read_text(encoding="utf-8")
+    m = md.read_text(encoding="utf-8")
+    for state, (v, o, _f) in HAND.items():
+        role = "terminal" if state == "closed" else "transient"
+        assert re.search(rf"<tr><td>{state}</td><td>{role}</td><td class=num>{v}</td>", h), state
+        assert re.search(rf"^\| {state} \| {role} \| {v} \|", m, re.M), state
+        if o:  # the stuck table: still open, then visits
+            assert re.search(rf"<tr><td>{state}</td><td class=num>{o}</td><td class=num>{v}</td>", h), state
+            assert re.search(rf"^\| {state} \| {o} \| {v} \|", m, re.M), state

@@ -146,7 +146,7 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                         "every unfinished case); more recent ones are in flight")
     c.add_argument("--as-of", type=_timestamp, metavar="TIME",
                    help="the time ages are measured from, ISO 8601 (default: the latest time in the data)")
-    c.add_argument("--open-cases", choices=("stuck", "continue"), default="stuck",
+    c.add_argument("--open-cases", choices=("stuck", "continue"), default=None,
                    help="stuck (default): an open case is an outcome, 'stuck in' its last state, in every "
                         "probability and what-if; continue: the assumption that open cases carry on like the "
                         "finished ones (they are left out of the estimates). In-flight cases are right-censored "
@@ -204,8 +204,8 @@ def build_parser() -> argparse.ArgumentParser:
     o.add_argument("--stuck-cases", metavar="FILE",
                    help="write the stuck (open) cases themselves, oldest first: session key, state, time of the "
                         "last event, age; CSV, or JSON when FILE ends in .json ('-': CSV on stdout). Needs terminal "
-                        "states (--terminal or the mapping file) and the native engine; keys are pseudonymised "
-                        "unless --raw-keys")
+                        "states (--terminal or the mapping file); every engine lists them (the database engines "
+                        "compute the list in SQL); keys are pseudonymised unless --raw-keys")
     from .analyze.commands import add_interval_options
     from .privacy import add_privacy_options
 
@@ -342,7 +342,6 @@ def _stuck_cases_possible(args: argparse.Namespace) -> None:
     if not shape_from_args(args)[3]:
         raise UsageError("--stuck-cases needs terminal states, to tell open cases from finished ones: "
                          "--terminal STATE or 'terminal:' in the mapping file")
-    native_only(args, "--stuck-cases")
 
 
 def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
@@ -352,12 +351,9 @@ def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
     from .report.stuck_cases import render_stuck_cases
 
     got = stuck_case_list(chain.counts) if chain.counts is not None else None
-    if got is None:
-        if not (chain.counts is not None and chain.counts.meta.get("open_cases")):
-            raise UsageError("--stuck-cases needs terminal states, to tell open cases from finished ones: "
-                             "--terminal STATE or 'terminal:' in the mapping file")
-        raise UsageError("--stuck-cases needs the native engine (--engine native): the other engines return "
-                         "counts per state, not the cases")
+    if got is None:  # (terminal states were checked before reading)
+        raise UsageError("--stuck-cases needs events: this input gives counts per state (an edge list), not the "
+                         "cases")
     as_of, cases = got
     pseudo = pseudonymizer_from_args(args)
     announce_salt(pseudo)

@@ -9,7 +9,7 @@ records them per state (``TransitionCounts.open``) instead of a transition to th
 
 For each state holding open cases this module reports their number, their ages (time
 since the case's last event: median and 90th percentile, linear interpolation between
-order statistics, numpy's default) and the mean dwell time of the cases that did leave
+order statistics, numpy's default; and the mean) and the mean dwell time of the cases that did leave
 the state (sum of observed gaps out of the state / their number). Definitions are
 common practice, no source.
 """
@@ -32,6 +32,7 @@ class StuckState:
     median_age_s: float | None
     p90_age_s: float | None
     mean_dwell_s: float | None  # of cases that left the state
+    mean_age_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -73,6 +74,7 @@ def open_cases(counts: TransitionCounts) -> OpenCases | None:
             median_age_s=_finite(np.median(a)) if a.size else None,
             p90_age_s=_finite(np.percentile(a, 90)) if a.size else None,
             mean_dwell_s=_finite(out_gap[i] / out_n[i]) if out_n[i] else None,
+            mean_age_s=_finite(np.mean(a)) if a.size else None,
         ))
     rows.sort(key=lambda r: (-r.open_cases, r.state))
     return OpenCases(

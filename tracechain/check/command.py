@@ -95,6 +95,14 @@ def _merge(args: argparse.Namespace, rules: RulesFile | None) -> argparse.Namesp
         ns.collapse = inp.collapse_repeats
     if not ns.keep_after_goal and inp.keep_after_goal:
         ns.keep_after_goal = True
+    # open cases: the rules file's terminal states join the command line's; its stale limit and
+    # policy apply unless the command line gives its own
+    given = list(getattr(ns, "terminal", None) or [])
+    ns.terminal = given + [t for t in inp.terminal_states if t not in given]
+    if getattr(ns, "stale_after", None) is None and inp.stale_after is not None:
+        ns.stale_after = inp.stale_after
+    if getattr(ns, "open_cases", None) is None and inp.open_cases is not None:
+        ns.open_cases = inp.open_cases
     for key in ("session_field", "event_field", "time_field"):
         if getattr(ns, key) is None and getattr(inp, key) is not None:
             setattr(ns, key, getattr(inp, key))
@@ -106,32 +114,32 @@ def _last_name(state: Any) -> Any:
 
 
 def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None, before_reading=None):
-    """Read the traces as the command line and rules file say.
+    """Read the traces as the command line and rules file say, into the chain ``analyze`` builds.
+
+    With terminal states (``--terminal``, the mapping file's ``terminal:``, the rules file's
+    ``input: terminal`` or ``finished_states``), unfinished cases are open or in flight as in
+    ``analyze``, and open cases are the outcome ``[stuck] X`` unless ``--open-cases continue``
+    (or ``input: open_cases: continue``): every rule sees the same transitions, conversion and
+    steps as ``analyze`` shows.
 
     Unlike ``analyze``, a goal or terminal state that never occurs is not an error: the chain
     is built with the goals that occur, and the rules report the missing ones.
-    ``before_reading(goals)`` is called once the goals are known, before the traces are read.
-    Returns ``(chain, report, settings, goals)``.
+    ``before_reading(goals, terminal)`` is called once the goals and terminal states are known,
+    before the traces are read. Returns ``(chain, report, settings, goals)``.
     """
     from .. import cli  # lazily: tracechain.cli imports this module
     ns = _merge(args, rules)
     shape, fields, goals, terminal = cli.shape_from_args(ns)
     # the format-specific reading options, as 'analyze' reads them
-    extra_from_args = getattr(cli, "extra_from_args", None)
-    fmt, extra = extra_from_args(ns, shape.mapping) if extra_from_args is not None else (ns.format, {})
+    fmt, extra = cli.extra_from_args(ns, shape.mapping)
     if before_reading is not None:
-        before_reading(tuple(goals))
-    finished = rules.input.finished_states if rules is not None else None
-    finish = None
-    if finished is not None:
-        done = set(finished) | set(goals) | set(terminal)
+        before_reading(tuple(goals), tuple(terminal))
+    counts, report = cli.count_from_args(ns, shape, fields, fmt, extra)
+    mode = getattr(ns, "open_cases", None) or "stuck"
+    if shape.cases is not None and mode == "stuck":
+        from ..analyze.stuck_outcome import with_stuck_outcomes
 
-        def finished_in(state, _time, done=done):  # the counter's callback: True when the case is finished
-            return _last_name(state) in done or state_label(state) in done
-
-        finish = finished_in
-    counts, report = cli.count_from_args(ns, shape, fields, fmt, extra, finish_session=finish,
-                                         finished_names=None if finished is None else frozenset(done))
+        counts = with_stuck_outcomes(counts)
     known = set(counts.states)
     last_names = {_last_name(s) for s in counts.states}
     present = [g for g in goals if g in known]
@@ -141,7 +149,8 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
         "goals": list(goals), "terminal": list(terminal), "truncate_at_goal": shape.truncate_at_goal,
         "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": shape.gap, "order": shape.order,
         "smoothing": ns.smoothing, "mapping": ns.mapping,
-        "finished_states": list(finished) if finished is not None else None,
+        "stale_after_seconds": shape.cases.stale_after if shape.cases else None,
+        "open_cases": mode if shape.cases else None,
     }
     return chain, report, settings, tuple(goals)
 
@@ -161,7 +170,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     rules = load_rules(args.rules)
     baseline_path = args.baseline or rules.baseline
     chain, report, settings, goals = build_checked_chain(
-        args, rules, before_reading=lambda g: rules.require(g, baseline_path is not None))
+        args, rules, before_reading=lambda g, t: rules.require(g, baseline_path is not None, bool(t)))
     needs_baseline = any(getattr(rc.rule, "needs_baseline", False) and rc.enabled for rc in rules.rules)
     notes = []
     baseline = None

@@ -11,8 +11,13 @@
       collapse_repeats: false
       keep_after_goal: false
       session_field: session_id   # also event_field, time_field
-      finished_states: [Closed]   # a session whose last state is none of these (nor a goal)
-                                  # is an open case (for the open-share rule)
+      terminal: [Closed]          # states in which a case is finished (as --terminal); a case whose
+                                  # last state is none of these (nor a goal) is unfinished
+      finished_states: [Closed]   # the same as 'terminal' (the older name; both may be given)
+      stale_after: 2d             # an unfinished case is open (stuck) when older than this (--stale-after;
+                                  # default: every unfinished case), more recent ones are in flight
+      open_cases: stuck           # stuck (default): open cases are an outcome, '[stuck] X', as in
+                                  # 'analyze'; continue: they are left out (--open-cases)
     baseline: baseline.json       # a snapshot (tracechain snapshot); --baseline wins
     rules:
       - kind: dead-end            # a rule kind (or its id, e.g. TC101-dead-end or TC101)
@@ -46,7 +51,7 @@ __all__ = ["InputOptions", "RuleConfig", "RulesFile", "load_rules", "parse_rules
 _ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
 _TOP = ("version", "goals", "input", "baseline", "rules")
 _INPUT = ("mapping", "gap", "order", "collapse_repeats", "keep_after_goal", "session_field", "event_field",
-          "time_field", "finished_states")
+          "time_field", "finished_states", "terminal", "stale_after", "open_cases")
 _COMMON = ("kind", "id", "severity", "enabled", "description")
 
 
@@ -61,6 +66,16 @@ class InputOptions:
     event_field: str | None = None
     time_field: str | None = None
     finished_states: tuple[str, ...] | None = None
+    terminal: tuple[str, ...] | None = None
+    stale_after: float | None = None
+    open_cases: str | None = None  # "stuck" or "continue"
+
+    @property
+    def terminal_states(self) -> tuple[str, ...]:
+        """'terminal' and 'finished_states' together (one meaning: a case in one of them is finished)."""
+        out = list(self.terminal or ())
+        out += [s for s in self.finished_states or () if s not in out]
+        return tuple(out)
 
 
 @dataclass(frozen=True)
@@ -114,8 +129,9 @@ class RulesFile:
                     f"{' or '.join(repr(h) for h in hint)}? (a state that really vanished is told from a typo "
                     f"when the baseline snapshot has it)", self.source, line)
 
-    def require(self, goals: tuple[str, ...], has_baseline: bool) -> None:
-        """Check what the enabled rules need, once goals and baseline are known."""
+    def require(self, goals: tuple[str, ...], has_baseline: bool, has_terminal: bool = False) -> None:
+        """Check what the enabled rules need, once goals, baseline and terminal states are known
+        (``has_terminal``: terminal states from the command line or the mapping file)."""
         for rc in self.rules:
             if not rc.enabled:
                 continue
@@ -127,10 +143,11 @@ class RulesFile:
                 raise ConfigError(
                     f"rule {rc.id!r} compares with a baseline: give --baseline FILE or 'baseline:' in the rules "
                     "file (make one with 'tracechain snapshot')", self.source, rc.line)
-            if getattr(rc.rule, "needs_open_cases", False) and self.input.finished_states is None:
+            if getattr(rc.rule, "needs_open_cases", False) and not (has_terminal or self.input.terminal_states):
                 raise ConfigError(
-                    f"rule {rc.id!r} needs 'input: finished_states: [...]' to tell open cases from finished "
-                    "ones", self.source, rc.line)
+                    f"rule {rc.id!r} needs terminal states to tell open cases from finished ones: 'input: "
+                    "terminal: [...]' (or 'finished_states'), --terminal, or 'terminal:' in the mapping file",
+                    self.source, rc.line)
 
 
 def load_rules(path: str) -> RulesFile:
@@ -251,8 +268,27 @@ def _input(value: Any, source: str | None, base_dir: str, line: int) -> InputOpt
         finished = p.states("finished_states")
         if not finished:
             raise p.error("'finished_states' must list at least one state", "finished_states")
+    terminal = None
+    if value.get("terminal") is not None:
+        terminal = p.states("terminal")
+        if not terminal:
+            raise p.error("'terminal' must list at least one state", "terminal")
+    stale = None
+    if value.get("stale_after") is not None:
+        stale = _duration(value["stale_after"], raw.get("stale_after"))
+        if stale is None:
+            raise p.error(f"'stale_after' must be a positive duration such as 12h, 2d or a number of seconds, not "
+                          f"{raw.get('stale_after', value['stale_after'])!r}", "stale_after")
+    mode = None
+    if value.get("open_cases") is not None:
+        from ..analyze.stuck_outcome import OPEN_CASE_MODES
+
+        mode = raw.get("open_cases", value["open_cases"])
+        if mode not in OPEN_CASE_MODES:
+            raise p.error(f"'open_cases' must be {' or '.join(OPEN_CASE_MODES)}, not {mode!r}", "open_cases")
     return InputOptions(mapping=mapping, gap=gap, order=int(order) if order is not None else None,
-                        collapse_repeats=collapse, keep_after_goal=keep, finished_states=finished, **names)
+                        collapse_repeats=collapse, keep_after_goal=keep, finished_states=finished,
+                        terminal=tuple(terminal) if terminal else None, stale_after=stale, open_cases=mode, **names)
 
 
 def _rule_config(item: Any, source: str | None, line: int | None, known: dict, used: dict) -> RuleConfig:

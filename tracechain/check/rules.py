@@ -13,7 +13,8 @@ A rule kind is an object with
 
 Optional attributes: ``needs_goals`` (the rule needs at least one goal), ``needs_baseline``
 (it compares with a snapshot given by ``--baseline`` or ``baseline:``), ``needs_open_cases``
-(it needs ``input: finished_states`` so that open cases are told from finished ones).
+(it needs terminal states, ``input: terminal`` or ``finished_states``, ``--terminal`` or the mapping
+file's ``terminal:``, so that open cases are told from finished ones).
 
 A distribution adds rules by declaring, in its ``pyproject.toml``::
 
@@ -317,7 +318,8 @@ class TrapRule(Rule):
     short_description = "A closed loop with no way out and no goal."
     full_description = (
         "A closed communicating class that holds no goal or other absorbing state: once a session enters "
-        "it, it never leaves and never ends."
+        "it, it never leaves and never ends. With open cases as an outcome ('[stuck] X'), a loop whose "
+        "only ways out lead into that outcome is the same trap: no case that entered it ever left."
     )
     help = "No parameters. Give the loop an exit, or make one of its states terminal."
     default_severity = "error"
@@ -326,16 +328,21 @@ class TrapRule(Rule):
         return None
 
     def evaluate(self, ctx, options):
-        for cl in ctx.classes.traps:
-            members = set(cl.states)
-            names = tuple(ctx.label(i) for i in cl.states)
+        from ..analyze.loops import loops
+
+        found = [(cl.states, None) for cl in ctx.classes.traps]
+        found += [(lp.index, lp.open) for lp in loops(ctx.chain) if lp.left == 0 and lp.open > 0]
+        for states, n_open in found:
+            members = set(states)
+            names = tuple(ctx.label(i) for i in states)
             entries = [ctx.edge_location(a, b) for a, b, _n in ctx.transitions() if b in members and a not in members]
-            loc = ctx.first_location(entries) or ctx.first_location(ctx.state_location(i) for i in cl.states)
+            loc = ctx.first_location(entries) or ctx.first_location(ctx.state_location(i) for i in states)
+            how = ("sessions that enter it never end" if n_open is None else
+                   f"no session that entered it left; {_n(n_open, 'open case')} stuck in it")
+            props = {"size": len(names)} if n_open is None else {"size": len(names), "open": n_open}
             yield Issue(
-                f"closed loop with no way out and no goal: {', '.join(repr(n) for n in names)}; "
-                "sessions that enter it never end",
-                states=names, location=loc, key="trap\x1f" + "\x1f".join(sorted(names)),
-                properties={"size": len(names)},
+                f"closed loop with no way out and no goal: {', '.join(repr(n) for n in names)}; {how}",
+                states=names, location=loc, key="trap\x1f" + "\x1f".join(sorted(names)), properties=props,
             )
 
 
@@ -400,10 +407,11 @@ class OpenShareRule(Rule):
     kind = "open-share"
     short_description = "Too many cases still open (stuck) at the end of the traces."
     full_description = (
-        "The share of sessions that are still open, i.e. whose last state is not one of the "
-        "'finished_states' of the rules file's input section, must be at most 'max'."
+        "The share of sessions that are still open, i.e. whose last state is not a terminal state "
+        "(the rules file's 'input: terminal' or 'finished_states', --terminal, the mapping file's "
+        "'terminal:') nor a goal and whose last event is older than the stale limit, must be at most 'max'."
     )
-    help = "Parameters: max (required, e.g. 0.05 or 5%). Needs 'input: finished_states: [...]'."
+    help = "Parameters: max (required, e.g. 0.05 or 5%). Needs terminal states ('input: terminal: [...]')."
     default_severity = "warning"
     needs_open_cases = True
 
@@ -440,7 +448,7 @@ class PartialTrapRule(Rule):
         "the cases that entered it are open there, or those that left are a minority. Loops whose "
         "states are all listed in 'allow' are accepted."
     )
-    help = ("Parameters: min_share (default 1%), allow (states). Needs 'input: finished_states: [...]'. "
+    help = ("Parameters: min_share (default 1%), allow (states). Needs terminal states ('input: terminal: [...]'). "
             "Give the loop a way out for the cases it keeps (a timeout, an escalation).")
     default_severity = "warning"
     needs_open_cases = True

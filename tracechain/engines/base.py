@@ -168,6 +168,10 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
     meta = {"order": shape.order, "goals": sorted(shape.goals), "truncate_at_goal": shape.truncate_at_goal,
             "collapse_repeats": collapse, "inactivity_gap_s": shape.gap, "engine": d.name}
     counts, stats = S.counts_from_rows(rows, nt, shape.order, meta, ages, policy_info)
+    cut: list[str] = []
+    if shape.truncate_at_goal and shape.goals:
+        cut = sorted({nt.states[int(r[0])] for r in runner.run(S.cut_codes_sql(stmt), params) if r[0] is not None})
+    counts.meta["cut_after_goal"] = cut  # (as the native counter records them)
     missing = stats.get(S.EK_MISSING, 0)
     report.events = counts.events + stats.get(S.EK_DROPPED, 0)
     report.lines_read = report.events + missing + report.events_filtered

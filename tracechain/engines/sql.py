@@ -193,9 +193,13 @@ def shaping_sql(d: Dialect, source: str, s: str, t: str, e: str, o: str, names: 
     age_expr = (f"CASE WHEN {live} AND kk.kind = 1 THEN {as_of_sql} - rt END AS age" if as_of_sql is not None
                 else "CAST(NULL AS " + d.double + ") AS age")
     first_key = f"CASE WHEN {live} AND kk.kind = 0 AND r = 1 AND seg = 1 THEN 1 ELSE 0 END AS fk"
+    # the session key and the time of its last event, on the row that says how a session ends (for the
+    # list of open cases; not grouped, so the counts stay one row per transition kind)
+    case_cols = f"CASE WHEN {live} AND kk.kind = 1 THEN s END AS sk, CASE WHEN {live} AND kk.kind = 1 THEN rt END AS lt"
     kinds = "(SELECT 0 AS kind UNION ALL SELECT 1 AS kind)"
     parts.append(
         f"e AS (SELECT {ek} AS ek, {', '.join(sel_from)}, {', '.join(sel_to)}, {gap_expr}, {age_expr}, {first_key}, "
+        f"{case_cols}, "
         f"CASE WHEN kk.kind = 0 AND w.st2 IN (0, 7) THEN t END AS tm "
         f"FROM w CROSS JOIN {kinds} kk WHERE kk.kind = 0 OR (w.st2 = 0 AND lst = 1))")
     group = ", ".join(["ek"] + fcols + tcols)
@@ -204,13 +208,24 @@ def shaping_sql(d: Dialect, source: str, s: str, t: str, e: str, o: str, names: 
             f"MAX(tm) AS tmax FROM e GROUP BY {group}")
 
 
-def open_ages_sql(counting_sql: str, k: int) -> str:
-    """The ages of the open cases, one row each (state columns and age), from the same steps."""
+def _head(counting_sql: str) -> str:
     head, _sep, _tail = counting_sql.rpartition("\nSELECT ")
     if not head:
         raise ValueError("not a counting statement")
+    return head
+
+
+def open_ages_sql(counting_sql: str, k: int) -> str:
+    """The open cases, one row each, from the same steps: state columns, age, session key and the
+    time of the key's last event (the native counter's record of each open case)."""
     fcols = ", ".join(_state_cols("f", k))
-    return head + f"\nSELECT {fcols}, age FROM e WHERE ek = {EK_OPEN}"
+    return _head(counting_sql) + f"\nSELECT {fcols}, age, sk, lt FROM e WHERE ek = {EK_OPEN}"
+
+
+def cut_codes_sql(counting_sql: str) -> str:
+    """The state codes of the events cut after a goal (step 3), from the same steps: where a state
+    seen only after the goal went (a terminal state that follows the goal is no error)."""
+    return _head(counting_sql) + "\nSELECT DISTINCT x FROM c WHERE st = 0 AND st1 = 7"
 
 
 def _label(codes: tuple, names: list[str], goal: list[bool], k: int):
@@ -310,13 +325,16 @@ def counts_from_rows(rows, nt: NameTable, k: int, meta: dict[str, Any], ages_row
         from ..counts import state_label
 
         ages: dict[str, list[float]] = {}
+        stuck: list[tuple[str, str, float]] = []
         for row in ages_rows or ():
-            lab = labels[idx(row[:k])]
-            ages.setdefault(state_label(lab), []).append(float(row[k]) if row[k] is not None else float("nan"))
+            lab = state_label(labels[idx(row[:k])])
+            ages.setdefault(lab, []).append(float(row[k]) if row[k] is not None else float("nan"))
+            stuck.append((str(row[k + 1]), lab, float(row[k + 2]) if row[k + 2] is not None else float("nan")))
         info = dict(policy_info)
         if info.get("as_of") is None:
             info["as_of"] = tmax
-        info.update({"in_flight": int(stats[EK_FLIGHT]), "finished": int(stats[EK_FINISHED]), "ages": ages})
+        info.update({"in_flight": int(stats[EK_FLIGHT]), "finished": int(stats[EK_FINISHED]), "ages": ages,
+                     "stuck_cases": stuck})
         tc.meta["open_cases"] = info
     stats["tmax"] = tmax
     return tc, stats

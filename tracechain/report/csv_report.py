@@ -72,6 +72,10 @@ def render_csv(a: Analysis, extended=None) -> str:
         header += ["observed_dwell_n", "observed_dwell_mean_s", "observed_dwell_median_s", "observed_dwell_p90_s"]
     if rework is not None:
         header += ["cases_came_back", "reentries_mean", "reentries_median", "reentries_p90", "reentries_max"]
+    oc = getattr(a, "open_cases", None)
+    ages = {x.state: x for x in oc.states} if oc is not None else None
+    if ages is not None:  # with terminal states: the age of the cases open in the state (at as_of)
+        header += ["open_age_median_s", "open_age_p90_s", "open_age_mean_s"]
     w.writerow([csv_cell(h) for h in header])
     for r in a.state_rows():
         if r.role == "end":
@@ -94,5 +98,8 @@ def render_csv(a: Analysis, extended=None) -> str:
             x = rework.get(r.state)
             row += ([str(x.reentered), _f(x.mean), _f(x.median), _f(x.p90), str(x.max)] if x is not None
                     else ["", "", "", "", ""])
+        if ages is not None:
+            x = ages.get(r.state)
+            row += [_f(x.median_age_s), _f(x.p90_age_s), _f(x.mean_age_s)] if x is not None else ["", "", ""]
         w.writerow(row)
     return buf.getvalue()

@@ -360,13 +360,14 @@ def _loss_sections(a: Analysis, pseudo: Pseudonymizer, top: int) -> list[Section
                          _pct(c.open[k] / visits[k] if visits[k] else None),
                          duration(st.median_age_s) if st and st.median_age_s is not None else "–",
                          duration(st.p90_age_s) if st and st.p90_age_s is not None else "–",
+                         duration(st.mean_age_s) if st and st.mean_age_s is not None else "–",
                          duration(st.mean_dwell_s) if st and st.mean_dwell_s is not None else "–"])
         out.append(Section("stuck", "Stuck: sessions still open", [
             Para(f"{_int(c.open.sum())} sessions had not finished when the logs end; they are counted where they "
-                 "stopped, not as exits. Age: time since the open case's last event (median and 90th percentile); "
+                 "stopped, not as exits. Age: time since the open case's last event (median, 90th percentile, mean); "
                  "dwell: the mean time the cases that did leave the state spent in it."),
-            Table(["state", "still open", "visits", "share of visits", "median age", "90% age",
-                   "mean dwell (cases that left)"], rows, frozenset({1, 2, 3, 4, 5, 6}),
+            Table(["state", "still open", "visits", "share of visits", "median age", "90% age", "mean age",
+                   "mean dwell (cases that left)"], rows, frozenset({1, 2, 3, 4, 5, 6, 7}),
                   more=f"… and {len(idx) - top} more" if len(idx) > top else None),
         ]))
     return out

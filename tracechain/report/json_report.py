@@ -131,7 +131,7 @@ def _open_cases(a: Analysis) -> dict[str, Any] | None:
         "open": oc.open_total, "in_flight": oc.in_flight, "finished": oc.finished, "share_open": oc.share_open,
         "states": [
             {"state": r.state, "open_cases": r.open_cases, "median_age_s": r.median_age_s,
-             "p90_age_s": r.p90_age_s, "mean_dwell_s": r.mean_dwell_s}
+             "p90_age_s": r.p90_age_s, "mean_age_s": r.mean_age_s, "mean_dwell_s": r.mean_dwell_s}
             for r in oc.states
         ],
     }

@@ -151,9 +151,9 @@ def render_text(a: Analysis, max_states: int = 40, extended=None) -> str:
         lines.append("Stuck states (open cases: last state not terminal, last event older than the stale limit)")
         if oc.states:
             lines += _table(
-                ["state", "open cases", "median age", "90% age", "mean dwell of those that left"],
+                ["state", "open cases", "median age", "90% age", "mean age", "mean dwell of those that left"],
                 [[safe_text(r.state), f"{r.open_cases:,}", _dur(r.median_age_s), _dur(r.p90_age_s),
-                  _dur(r.mean_dwell_s)] for r in oc.states],
+                  _dur(r.mean_age_s), _dur(r.mean_dwell_s)] for r in oc.states],
             )
         else:
             lines.append("  none")

@@ -376,6 +376,9 @@ def cmd_formats(args: argparse.Namespace) -> int:
         print("Otherwise each role takes the first of its names below (in this order, case aside) that the data")
         print("has, spelled as first seen. JSON Lines: the keys of the first 1,000 lines (if they hold no session or")
         print("event field, those up to the first line that does, at most 100,000); lines without them are skipped.")
+        print("A nested JSON field is named by its dotted path (context.page.path): the whole name as a key first,")
+        print("then the longest leading part that is a key. Detection takes a nested field by its last part only")
+        print("when no top-level name fits.")
         for role, names in (("session", SESSION_NAMES), ("time", TIME_NAMES), ("event", EVENT_NAMES)):
             print(f"{role:8s} {', '.join(names)}")
         return EXIT_OK

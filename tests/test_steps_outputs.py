@@ -118,3 +118,30 @@ def test_output_over_the_input_is_refused(tmp_path, capsys):
     assert main(["steps", str(log), "--steps", ",".join(STEPS), "--csv", str(log)]) == 2
     assert "destroy" in capsys.readouterr().err
     assert log.read_text().startswith("session,time,event\n")
+
+
+def test_the_readme_command_runs_on_the_shipped_samples(tmp_path, monkeypatch, capsys):
+    import re
+    import shlex
+    import shutil
+    from pathlib import Path
+
+    repo = Path(__file__).resolve().parent.parent
+    readme = repo.joinpath("README.md").read_text(encoding="utf-8")
+    found = [re.sub(r"\\\n\s*", " ", m) for m in re.findall(r"^tracechain steps .*?(?<!\\)$", readme, re.M | re.S)]
+    assert len(found) == 1, found
+    argv = shlex.split(found[0])
+    shutil.copytree(repo / "sample_traces", tmp_path / "sample_traces")
+    (tmp_path / "out").mkdir()
+    monkeypatch.chdir(tmp_path)
+    assert main(argv[1:]) == 0
+    text = capsys.readouterr().out
+    doc = json.loads((tmp_path / argv[argv.index("--json") + 1]).read_text())
+    schema = json.loads(resources.files("tracechain").joinpath("schemas/steps-1.schema.json").read_text())
+    jsonschema.Draft202012Validator(schema).validate(doc)
+    reached = [r["sessions"] for r in doc["rows"]]
+    assert reached == sorted(reached, reverse=True) and reached[-1] > 0  # a funnel that reaches its last step
+    assert f"tracechain steps: {doc['sessions']:,} sessions" in text
+    # the same sessions as analyze counts from the same input and shaping
+    assert main(["analyze", *argv[2:argv.index("--steps")], "--json", "out/analysis.json", "-q"]) == 0
+    assert json.loads((tmp_path / "out" / "analysis.json").read_text())["overview"]["sessions"] == doc["sessions"]

@@ -163,14 +163,19 @@ def lookup_path(obj: dict, name: str) -> tuple[object, PathGap | None]:
             return None, PathGap(False, f"{at!r} is {what}")
 
 
-#: Nested objects are searched for field names this many levels deep at most.
-NESTED_DEPTH = 4
+#: Nested objects are searched for field names this many levels deep at most, and at most
+#: this many nested fields are kept (an object keyed by ids would otherwise add fields
+#: without end; the ones kept are the first seen).
+NESTED_DEPTH = 8
+NESTED_FIELDS = 2000
 
 
 def nested_leaves(obj: dict, out: dict, prefix: str = "", depth: int = 1) -> None:
     """Add to ``out`` the dotted path of every plain value (not an object, not an array)
     in the objects nested in ``obj``, in the order they come; top-level keys are not added."""
     for k, v in obj.items():
+        if len(out) >= NESTED_FIELDS:
+            return
         if isinstance(v, dict):
             if depth <= NESTED_DEPTH:
                 nested_leaves(v, out, f"{prefix}{k}.", depth + 1)

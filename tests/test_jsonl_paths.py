@@ -189,3 +189,75 @@ def test_bad_paths_on_the_command_line_exit_2(tmp_path, capsys):
     assert main(["analyze", str(path), "--event-field", "ev.nome"]) == 2
     err = capsys.readouterr().err
     assert "'ev.nome'" in err and "'ev.name'" in err and "Traceback" not in err
+
+
+def _rule(obj, name):
+    """The documented rule, written out again for the oracle: the whole name as a key, else
+    the longest leading part that is a key, then the rest in its value (an object)."""
+    if not isinstance(obj, dict):
+        return None
+    if name in obj:
+        return obj[name]
+    parts = name.split(".")
+    for cut in range(len(parts) - 1, 0, -1):
+        head = ".".join(parts[:cut])
+        if head in obj:
+            return _rule(obj[head], ".".join(parts[cut:]))
+    return None
+
+
+# the ways a line may hold (or not hold) the field "a.b", and what the rule gives for each
+VARIANTS = [
+    lambda i: {"a": {"b": f"E{i % 4}"}},
+    lambda i: {"a.b": f"D{i % 3}"},
+    lambda i: {"a.b": "exact", "a": {"b": "nested"}},
+    lambda i: {"a": {"b": None}},
+    lambda i: {"a": {}},
+    lambda i: {"a": "plain"},
+    lambda i: {"a": [{"b": "in array"}]},
+    lambda i: {"a": {"b": {"c": 1}}},
+    lambda i: {"a": {"b": i % 5}},
+    lambda i: {"a": {"b": i % 2 == 0}},
+    lambda i: {},
+    lambda i: {"a": {"b.c": "x", "b": f"F{i % 2}"}},
+]
+
+
+def _expected_event(v):
+    if isinstance(v, bool):
+        return str(v).lower()
+    if isinstance(v, (str, int)) and v != "":
+        return str(v)
+    return None
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_every_reader_tier_follows_the_rule(tmp_path, seed):
+    # runs of one variant (whole blocks for the fast readers) and mixed stretches, read with
+    # several block sizes: every tier must give what the rule gives, line by line
+    rng = random.Random(seed)
+    objs = []
+    while len(objs) < 1500:
+        make = rng.choice(VARIANTS)
+        for _ in range(rng.choice([1, 3, 40, 200])):
+            i = len(objs)
+            obj = {"sid": f"s{rng.randrange(20)}", **(rng.choice(VARIANTS) if rng.random() < 0.2 else make)(i)}
+            when = rng.random()  # the time too, nested, as a key with a dot, or not at all
+            if when < 0.4:
+                obj["t"] = {"s": 1_775_000_000 + i}
+            elif when < 0.7:
+                obj["t.s"] = 1_775_000_000 + i
+            objs.append(obj)
+    path = tmp_path / "mixed.jsonl"
+    path.write_text("".join(json.dumps(o) + "\n" for o in objs))
+    want = []
+    for ln, obj in enumerate(objs, 1):
+        e = _expected_event(_rule(obj, "a.b"))
+        if e is not None:
+            t = _rule(obj, "t.s")
+            want.append((ln, obj["sid"], e, float(t) if t is not None else None))
+    for block in (None, 333, 4096, 30000):
+        events, report = _events(path, FieldSpec(session="sid", time="t.s", event="a.b"), block)
+        got = [(ln, s, e, None if t != t else t) for ln, s, e, t in events]
+        assert got == want, block
+        assert report.lines_read == len(objs) and sum(report.skipped.values()) == len(objs) - len(want)

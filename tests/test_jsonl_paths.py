@@ -189,6 +189,9 @@ def test_bad_paths_on_the_command_line_exit_2(tmp_path, capsys):
     assert main(["analyze", str(path), "--event-field", "ev.nome"]) == 2
     err = capsys.readouterr().err
     assert "'ev.nome'" in err and "'ev.name'" in err and "Traceback" not in err
+    assert main(["analyze", str(path), "--event-field", "ev.name", "--where", "ev.nome=x"]) == 2
+    err = capsys.readouterr().err
+    assert "'ev.nome' (from --where) has no value" in err and "dotted path" in err and "Traceback" not in err
 
 
 def _rule(obj, name):

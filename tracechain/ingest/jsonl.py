@@ -5,6 +5,14 @@ needed once their types are known. A block Arrow refuses (a malformed line, a
 blank line, a field whose type changes) is parsed again line by line, so every bad
 line is found, counted and reported with its number, and nothing else is lost.
 Blank lines are invalid by the JSON Lines specification: they are counted and skipped.
+
+A field of a nested object is named by its dotted path (``context.page.path``; the rule,
+which also reaches keys holding a dot, is :func:`~tracechain.ingest.fields.lookup_path`).
+Only then does a block take other ways: the flat reader declines a block where a leading
+part of a path is a plain key, Arrow's reader takes the path out of its struct columns when
+their types leave no doubt (:func:`_path_columns`), and the line-by-line reader names the
+branch that is missing or passes through an array. Logs read without dotted names go
+exactly as before.
 """
 
 from __future__ import annotations

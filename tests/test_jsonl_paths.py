@@ -264,3 +264,13 @@ def test_every_reader_tier_follows_the_rule(tmp_path, seed):
         got = [(ln, s, e, None if t != t else t) for ln, s, e, t in events]
         assert got == want, block
         assert report.lines_read == len(objs) and sum(report.skipped.values()) == len(objs) - len(want)
+
+
+def test_the_duckdb_engine_refuses_dotted_paths_with_a_hint(tmp_path, capsys):
+    pytest.importorskip("duckdb")
+    path = tmp_path / "log.jsonl"
+    path.write_text("".join(json.dumps({"sid": "a", "ts": i, "ev": {"name": "x"}}) + "\n" for i in range(3)))
+    for extra in (["--event-field", "ev.name"], ["--event-field", "sid", "--where", "ev.name=x"]):
+        assert main(["analyze", str(path), "--engine", "duckdb", "--session-field", "sid", *extra]) == 2
+        err = capsys.readouterr().err
+        assert "'ev.name' is a dotted path" in err and "--engine native" in err and "Traceback" not in err

@@ -116,6 +116,9 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
     w.add_argument("--method", metavar="LIST", help="web logs: keep these request methods, e.g. GET,POST")
     w.add_argument("--exclude-agent", metavar="REGEX", help="web logs: leave out user agents matching this (bots)")
     w.add_argument("--method-prefix", action="store_true", help="web logs: name events 'GET /path'")
+    w.add_argument("--include-assets", action="store_true",
+                   help="web logs: keep requests for static assets (images, scripts, styles, fonts, favicon, "
+                        "source maps), left out by default")
     w.add_argument("--lifecycle", metavar="LIST", help="XES: keep only these lifecycle:transition values")
     w.add_argument("--span-state-attribute", metavar="KEY", help="OTLP: take the state from this span attribute")
     w.add_argument("--no-mark-errors", action="store_true", help="OTLP: do not suffix error spans with ' [error]'")
@@ -237,6 +240,7 @@ _EXTRA_OPTIONS = {
     "method": ("method", lambda v: [x.strip().upper() for x in v.split(",") if x.strip()]),
     "exclude_agent": ("exclude_agent", str),
     "method_prefix": ("method_prefix", bool),
+    "include_assets": ("include_assets", bool),
     "lifecycle": ("lifecycle", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
     "span_state_attribute": ("span_state_attribute", str),
     "span_kinds": ("span_kinds", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
@@ -372,6 +376,9 @@ def cmd_formats(args: argparse.Namespace) -> int:
         print("Otherwise each role takes the first of its names below (in this order, case aside) that the data")
         print("has, spelled as first seen. JSON Lines: the keys of the first 1,000 lines (if they hold no session or")
         print("event field, those up to the first line that does, at most 100,000); lines without them are skipped.")
+        print("A nested JSON field is named by its dotted path (context.page.path): the whole name as a key first,")
+        print("then the longest leading part that is a key. Detection takes a nested field by its last part only")
+        print("when no top-level name fits.")
         for role, names in (("session", SESSION_NAMES), ("time", TIME_NAMES), ("event", EVENT_NAMES)):
             print(f"{role:8s} {', '.join(names)}")
         return EXIT_OK

@@ -102,7 +102,8 @@ def apply_filters(chunks: Iterable[EventChunk], filters: Filters | None, report:
     if source is not None and absent:
         used = ", ".join(f"{k} {v!r}" for k, v in report.fields.items() if v)
         raise FieldError(f"the field {absent[0]!r} (from --where) has no value in any event read; check its name "
-                         f"(fields in use: {used}; a nested field is not read by --where)", source)
+                         f"(fields in use: {used}; an object or array is no value: name a field inside it by its "
+                         f"dotted path, e.g. 'context.page.path')", source)
 
 
 def _resolve(paths: Iterable[str] | Iterable[Source], stdin: BinaryIO | None,

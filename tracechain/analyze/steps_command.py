@@ -33,6 +33,11 @@ def register(subparsers, _add_input_options) -> None:
     p.add_argument("--strict-order", action="store_true",
                    help="no other state between consecutive steps (repeats of a step are allowed)")
     add_level_option(p)
+    out = p.add_argument_group("outputs (the text is printed unless one of them is '-')")
+    out.add_argument("--json", metavar="FILE",
+                     help="write the steps as JSON (schema tracechain/schemas/steps-1.schema.json; '-' for standard "
+                          "output)")
+    out.add_argument("--csv", metavar="FILE", help="write one row per step as CSV ('-' for standard output)")
     p.set_defaults(handler=cmd_steps)
 
 
@@ -94,5 +99,13 @@ def cmd_steps(args: argparse.Namespace) -> int:
         raise UsageError("no sessions in the input")
     res = steps_analysis(sessions, steps, strict=args.strict_order, within=args.within, level=args.level,
                          goals=goals, terminal=terminal, smoothing=args.smoothing)
-    sys.stdout.write("\n".join(steps_lines(res)) + "\n")
+    from ..files import write_output
+    from ..report.steps_report import render_steps_csv, render_steps_json
+
+    if args.json:
+        write_output(args.json, render_steps_json(res))
+    if args.csv:
+        write_output(args.csv, render_steps_csv(res))
+    if "-" not in (args.json, args.csv):
+        sys.stdout.write("\n".join(steps_lines(res)) + "\n")
     return 0

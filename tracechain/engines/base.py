@@ -21,7 +21,19 @@ from ..events import ParseReport
 from ..ingest.fields import FieldSpec, _epoch_scale, resolve_fields
 from . import sql as S
 
-__all__ = ["Relation", "count_relation"]
+__all__ = ["Relation", "count_relation", "refuse_nested_names"]
+
+
+def refuse_nested_names(fields: FieldSpec, filters, columns: Sequence[str], source: str) -> None:
+    """A field named by a dotted path into a nested object (``context.page.path``) is read by
+    the native reader only: refused with that hint (exit 2) rather than as a field not found."""
+    named = [spec for spec in (fields.session, fields.time, fields.event) if spec]
+    named += list(getattr(filters, "fields", ()) if filters is not None else ())
+    have = set(columns)
+    for name in named:
+        if "." in name and name not in have and name.split(".", 1)[0] in have:
+            raise UsageError(f"{source}: the field {name!r} is a dotted path into a nested object, which only the "
+                             "native engine reads (--engine native)")
 
 
 @dataclass
@@ -57,6 +69,7 @@ def count_relation(runner: SqlRunner, rel: Relation, fields: FieldSpec, shape, o
     """Counts of ``rel`` shaped as ``shape`` (a :class:`~tracechain.pipeline.ShapeOptions`)."""
     d = runner.dialect
     cols = list(rel.columns)
+    refuse_nested_names(fields, getattr(shape, "filters", None), cols, rel.name)
     s_col, t_col, e_col = resolve_fields(fields, cols, rel.name)
     q = d.ident
     report = ParseReport()

@@ -234,7 +234,9 @@ def count_files(paths: list[str], fields: FieldSpec | None = None, shape=None, f
                                 "WHERE json_type(json) = 'OBJECT'", [])
                 cols = sorted(k[0] for k in keys)
             from ..ingest.fields import resolve_fields
+            from .base import refuse_nested_names
 
+            refuse_nested_names(fields, shape.filters, cols, name)
             picked = [c for c in resolve_fields(fields, cols, name) if c is not None]
             if order_by is not None and order_by in cols and order_by not in picked:
                 picked.append(order_by)

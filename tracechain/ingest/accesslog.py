@@ -36,7 +36,8 @@ Lines left out:
   ``"blank line"``, ``"not an access log line"``, ``"unreadable time"``;
 * on purpose (counted by reason only, never raised): ``"no HTTP request line"`` (the
   request is ``-``, or raw bytes such as a TLS handshake sent to a plain-text port),
-  ``"filtered: status"``, ``"filtered: method"``, ``"filtered: user agent"``.
+  ``"filtered: status"``, ``"filtered: method"``, ``"filtered: user agent"``,
+  ``"filtered: static asset"`` (see :data:`ASSET_RE`; a note says how many, once).
 
 Settings (``ReadOptions.extra``):
 
@@ -48,6 +49,10 @@ Settings (``ReadOptions.extra``):
 ``exclude_agent`` (str)
     A regular expression (Python syntax, searched; use ``(?i)`` for case-insensitive)
     of user agents to leave out, e.g. ``"(?i)bot|crawler|spider"``.
+``include_assets`` (bool, default false)
+    Keep requests for static assets (images, scripts, styles, fonts, the favicon, source
+    maps), which are left out by default: a page's assets are fetched by the browser, not
+    chosen by the visitor, and would bury the page-to-page steps.
 ``method_prefix`` (bool, default false)
     Event names ``"GET /path"`` instead of ``"/path"``.
 ``block_bytes`` (int)
@@ -142,6 +147,7 @@ class HttpOptions:
     methods: frozenset = frozenset()
     exclude_agent: re.Pattern | None = None
     method_prefix: bool = False
+    include_assets: bool = False
 
     @property
     def filters_status(self) -> bool:
@@ -166,7 +172,19 @@ class HttpOptions:
                 pattern = re.compile(str(rx))
             except (re.error, OverflowError, RecursionError) as err:  # (a{99999999999}; deep nesting)
                 raise UsageError(f"exclude_agent is not a valid regular expression: {err}") from err
-        return cls(frozenset(classes), frozenset(codes), methods, pattern, bool(extra.get("method_prefix", False)))
+        return cls(frozenset(classes), frozenset(codes), methods, pattern, bool(extra.get("method_prefix", False)),
+                   bool(extra.get("include_assets", False)))
+
+
+#: A static asset: a path whose last segment ends in one of these extensions (case aside):
+#: images, scripts, styles, fonts, icons (the favicon) and source maps. Which files count
+#: as assets is common practice, no source.
+ASSET_EXTENSIONS = (
+    "png", "jpg", "jpeg", "gif", "webp", "avif", "svg", "ico", "bmp", "tif", "tiff",
+    "js", "mjs", "css", "woff", "woff2", "ttf", "otf", "eot", "map",
+)
+ASSET_RE = r"(?i)\.(?:" + "|".join(ASSET_EXTENSIONS) + r")$"
+ASSET_NOTE = "static assets (images, scripts, styles, fonts, favicon, source maps) left out; --include-assets keeps them"
 
 
 def _path_of(target: pa.Array) -> pa.Array:
@@ -216,18 +234,29 @@ def http_chunk(
         if (keep & bot).any():
             report.skipped["filtered: user agent"] += int((keep & bot).sum())
         keep &= ~bot
+    # paths from the distinct targets (far fewer than rows in a web log)
+    targets = pc.dictionary_encode(target)
+    paths = _path_of(targets.dictionary)
+    if escaped:
+        paths = _unescape_column(paths)
+    indices = targets.indices
+    if not opts.include_assets and n:
+        asset = pc.match_substring_regex(paths, ASSET_RE).to_numpy(zero_copy_only=False)
+        if asset.any():
+            asset = asset[indices.to_numpy(zero_copy_only=False)]
+            left_out = int((keep & asset).sum())
+            if left_out:
+                if "filtered: static asset" not in report.skipped:
+                    report.notes.append(ASSET_NOTE)
+                report.skipped["filtered: static asset"] += left_out
+            keep &= ~asset
     if not keep.any():
         return None
     if not keep.all():
         mask = pa.array(keep)
-        host, agent, method, target = (pc.filter(a, mask) for a in (host, agent, method, target))
+        host, agent, method, indices = (pc.filter(a, mask) for a in (host, agent, method, indices))
         time, lines = time[keep], lines[keep]
-    # paths from the distinct targets (far fewer than rows in a web log)
-    targets = pc.dictionary_encode(target)
-    path = _path_of(targets.dictionary)
-    if escaped:
-        path = _unescape_column(path)
-    path = pc.take(path, targets.indices)
+    path = pc.take(paths, indices)
     event = pc.binary_join_element_wise(method, path, " ") if opts.method_prefix else path
     session = pc.binary_join_element_wise(host, agent, " ")
     report.events += len(lines)

@@ -1,6 +1,8 @@
 """Field names and times shared by the tabular parsers (JSON Lines, CSV).
 
 Field detection looks for common names (case-insensitive) when the user names none.
+A field of a nested JSON object is named by its dotted path (``context.page.path``); see
+:func:`lookup_path` for the rule that also reaches keys which themselves hold a dot.
 Times become float seconds since the Unix epoch: Arrow timestamps, ISO 8601 strings
 (a string without an offset is taken as UTC; a trailing zone name `` UTC``, `` GMT`` or
 `` Z``, as data warehouses write text times, means an offset of zero) and epoch numbers, whose unit (s, ms,
@@ -22,7 +24,8 @@ from ..errors import FieldError
 from .._arrowutil import to_numpy
 from .timeformats import ZONE_NAME_RE, strip_zone_name, strptime_seconds
 
-__all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
+__all__ = ["FieldSpec", "resolve_fields", "times_to_seconds", "lookup_path", "nested_leaves", "PathGap",
+           "SESSION_NAMES", "TIME_NAMES", "EVENT_NAMES"]
 
 # (anonymous ids come before user ids: a clickstream export sets the anonymous id on every
 # event and the user id only once someone signs in, so the user id would skip the rest;
@@ -60,20 +63,32 @@ class FieldSpec:
     time_format: str | None = None
 
 
-def _pick(candidates: tuple[str, ...], columns: list[str]) -> str | None:
+def _pick(candidates: tuple[str, ...], columns: list[str], nested: frozenset = frozenset()) -> str | None:
     # the preference order decides between names; between spellings of one name (case
-    # aside), the first in ``columns`` (the order fields are first seen) wins, never the last
+    # aside), the first in ``columns`` (the order fields are first seen) wins, never the last.
+    # Top-level names come first; only when none is a candidate, a nested field (a dotted
+    # path in ``nested``) is taken by its last part: ``context.session_id`` as a session
     lower: dict[str, str] = {}
+    last: dict[str, str] = {}
     for c in columns:
-        lower.setdefault(c.lower(), c)
-    for name in candidates:
-        if name in lower:
-            return lower[name]
+        if c in nested:
+            last.setdefault(c.rsplit(".", 1)[-1].lower(), c)
+        else:
+            lower.setdefault(c.lower(), c)
+    for table in (lower, last):
+        for name in candidates:
+            if name in table:
+                return table[name]
     return None
 
 
-def resolve_fields(spec: FieldSpec, columns: list[str], source: str) -> tuple[str, str | None, str]:
-    """Return the actual (session, time, event) column names, or raise FieldError."""
+def resolve_fields(spec: FieldSpec, columns: list[str], source: str,
+                   nested: frozenset = frozenset()) -> tuple[str, str | None, str]:
+    """Return the actual (session, time, event) column names, or raise FieldError.
+
+    ``nested`` names the entries of ``columns`` that are dotted paths into nested objects
+    (JSON Lines): a field named by the user may be one; detection takes one only by its
+    last part, when no top-level name is a candidate."""
     shown = ", ".join(repr(c) for c in columns) or "none"
 
     def need(value: str | None, candidates: tuple[str, ...], role: str, option: str) -> str:
@@ -84,7 +99,7 @@ def resolve_fields(spec: FieldSpec, columns: list[str], source: str) -> tuple[st
                     source,
                 )
             return value
-        found = _pick(candidates, columns)
+        found = _pick(candidates, columns, nested)
         if found is None:
             raise FieldError(
                 f"no {role} field found (looked for {', '.join(candidates[:6])}, ...); "
@@ -100,10 +115,72 @@ def resolve_fields(spec: FieldSpec, columns: list[str], source: str) -> tuple[st
     elif spec.time is not None:
         time = need(spec.time, TIME_NAMES, "time", "--time-field")
     else:
-        time = _pick(tuple(n for n in TIME_NAMES if n not in (session, event)), columns)
+        time = _pick(tuple(n for n in TIME_NAMES if n not in (session, event)), columns, nested)
     if session == event:
         raise FieldError(f"the session and event fields are both {session!r}", source)
     return session, time, event
+
+
+class PathGap:
+    """Why a dotted field name picks nothing out of a JSON object: the path passes through
+    an array (``array``) or an object on the way is missing, null or a plain value."""
+
+    __slots__ = ("array", "text")
+
+    def __init__(self, array: bool, text: str):
+        self.array, self.text = array, text
+
+
+def lookup_path(obj: dict, name: str) -> tuple[object, PathGap | None]:
+    """The value the field ``name`` names in a parsed JSON object, or why there is none.
+
+    The rule: the whole name is looked up as a key first (``{"a.b": 1}`` answers ``a.b``);
+    if no key has it, the longest leading part of the name, cut at a dot, that is a key is
+    taken and the rest is looked up the same way in its value, which must be an object. So
+    a key that itself holds a dot is always reachable: ``labels.test.case`` finds
+    ``{"labels": {"test.case": 1}}``. A name no leading part of which is a key gives
+    ``(None, None)`` (the field is missing, as a plain key would be); so does a missing
+    last key or a null. An array on the way, or a missing, null or plain value where an
+    object is needed below the top level, gives a :class:`PathGap`."""
+    node, rest, at = obj, name, ""
+    while True:
+        if rest in node:
+            return node[rest], None
+        parts = rest.split(".")
+        for i in range(len(parts) - 1, 0, -1):
+            head = ".".join(parts[:i])
+            if head in node:
+                break
+        else:
+            return None, (PathGap(False, f"{at!r} has no {rest!r}") if at else None)
+        at = f"{at}.{head}" if at else head
+        rest = ".".join(parts[i:])
+        node = node[head]
+        if isinstance(node, list):
+            return None, PathGap(True, f"an array at {at!r}")
+        if not isinstance(node, dict):
+            what = "null" if node is None else "not an object"
+            return None, PathGap(False, f"{at!r} is {what}")
+
+
+#: Nested objects are searched for field names this many levels deep at most, and at most
+#: this many nested fields are kept (an object keyed by ids would otherwise add fields
+#: without end; the ones kept are the first seen).
+NESTED_DEPTH = 8
+NESTED_FIELDS = 2000
+
+
+def nested_leaves(obj: dict, out: dict, prefix: str = "", depth: int = 1) -> None:
+    """Add to ``out`` the dotted path of every plain value (not an object, not an array)
+    in the objects nested in ``obj``, in the order they come; top-level keys are not added."""
+    for k, v in obj.items():
+        if len(out) >= NESTED_FIELDS:
+            return
+        if isinstance(v, dict):
+            if depth <= NESTED_DEPTH:
+                nested_leaves(v, out, f"{prefix}{k}.", depth + 1)
+        elif prefix and not isinstance(v, list) and (path := prefix + k) not in out:
+            out[path] = None
 
 
 _SCALE_SAMPLE = 4096

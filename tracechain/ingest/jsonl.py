@@ -5,6 +5,14 @@ needed once their types are known. A block Arrow refuses (a malformed line, a
 blank line, a field whose type changes) is parsed again line by line, so every bad
 line is found, counted and reported with its number, and nothing else is lost.
 Blank lines are invalid by the JSON Lines specification: they are counted and skipped.
+
+A field of a nested object is named by its dotted path (``context.page.path``; the rule,
+which also reaches keys holding a dot, is :func:`~tracechain.ingest.fields.lookup_path`).
+Only then does a block take other ways: the flat reader declines a block where a leading
+part of a path is a plain key, Arrow's reader takes the path out of its struct columns when
+their types leave no doubt (:func:`_path_columns`), and the line-by-line reader names the
+branch that is missing or passes through an array. Logs read without dotted names go
+exactly as before.
 """
 
 from __future__ import annotations
@@ -22,7 +30,7 @@ import pyarrow.json as pj
 from ..errors import FieldError, IngestError
 from ..events import EventChunk, ParseReport
 from .base import ReadOptions
-from .fields import resolve_fields
+from .fields import lookup_path, nested_leaves, resolve_fields
 from .tabular import keep_fields
 from .flatjson import read_flat_block
 from .sources import Source, count_newlines, iter_line_blocks_counted, read_ahead, text_lines
@@ -145,6 +153,9 @@ class JsonLinesParser:
         roles = names
         if names is not None and options.keep_fields:
             names = names + keep_fields(options, None, names, source.name)
+        # fields named by a dotted path (nested objects); none on the common path, which
+        # is then read exactly as before
+        paths = tuple(n for n in dict.fromkeys(names or ()) if n is not None and "." in n)
         later.reverse()  # (popped from the end: the blocks read while detecting, in order)
         while True:
             if later:
@@ -165,6 +176,8 @@ class JsonLinesParser:
                 continue
             # 1. flat objects of one shape: read with numpy (see flatjson)
             flat = read_flat_block(block, None, names)
+            if flat is not None and paths and _flat_clash(flat.keys, paths):
+                flat = None  # (a leading part of a path is a plain key: the line-by-line reader says why)
             if flat is None and len(block) > _GENERAL_BYTES:
                 # the general readers build far more per byte than the flat one: they get
                 # pieces of at most _GENERAL_BYTES (the rest is tried flat again first)
@@ -191,8 +204,12 @@ class JsonLinesParser:
                         table = None
                 if table is not None:
                     table = _text_keys(block, table, names, nlines)
+                if table is not None and paths:
+                    table = _path_columns(table, paths, names)
                 if table is not None:
-                    if schema is None or (names[1] is not None and names[1] not in schema.names):
+                    if paths:
+                        schema = None  # (a schema would hide a path's other spellings in later blocks)
+                    elif schema is None or (names[1] is not None and names[1] not in schema.names):
                         schema = _narrow_schema(table.schema, names)
                     cols = {c: table.column(c) for c in names if c is not None and c in table.column_names}
                     lines = np.arange(first_line, first_line + nlines, dtype=np.int64)
@@ -236,15 +253,22 @@ def _detect_fields(next_block, options: ReadOptions, source: str,
     the keys seen are added to ``keys``."""
     pending: list = []
     seen: dict[str, None] = {}
+    deep: dict[str, None] = {}  # dotted paths of the values in nested objects
     if keys is not None:
         seen = _Recorded(keys)
+        deep = _Recorded(keys)
+
+    def resolve():
+        found = list(seen) + [p for p in deep if p not in seen]
+        return resolve_fields(options.fields, found, source, frozenset(p for p in deep if p not in seen))
+
     lines = 0
     while True:
         item = next_block(lines + 1)
         if item is None:
             if not seen:  # no line is an object: each is skipped by reason (and the input is empty)
                 return None, pending
-            return resolve_fields(options.fields, list(seen), source), pending
+            return resolve(), pending
         block = item[0]
         pending.append(block)
         pos, n = 0, len(block)
@@ -257,13 +281,17 @@ def _detect_fields(next_block, options: ReadOptions, source: str,
             obj = _parse_line(raw[:-1] if raw.endswith(b"\r") else raw)[0]
             new = False
             if isinstance(obj, dict):
-                for k in obj:
+                for k, v in obj.items():
                     if k not in seen:
                         seen[k] = None
                         new = True
+                    if isinstance(v, dict):
+                        before = len(deep)
+                        nested_leaves({k: v}, deep)
+                        new = new or len(deep) > before
             if lines == DETECT_LINES or lines == DETECT_MAX_LINES or (lines > DETECT_LINES and new):
                 try:
-                    return resolve_fields(options.fields, list(seen), source), pending
+                    return resolve(), pending
                 except FieldError:
                     if lines >= DETECT_MAX_LINES:
                         raise
@@ -299,6 +327,65 @@ def _arrow_reads_alike(block) -> bool:
     except pa.ArrowInvalid:
         return False
     return True
+
+
+def _flat_clash(keys: list[str], paths: tuple[str, ...]) -> bool:
+    """Whether a dotted path is not a key of flat objects but a leading part of it is (a
+    plain value where an object is needed: a reason the flat reader cannot give)."""
+    have = set(keys)
+    for p in paths:
+        if p not in have:
+            parts = p.split(".")
+            if any(".".join(parts[:i]) in have for i in range(1, len(parts))):
+                return True
+    return False
+
+
+def _path_columns(table: pa.Table, paths: tuple[str, ...], names: tuple) -> pa.Table | None:
+    """``table`` with a column for each dotted path, taken out of Arrow's struct columns
+    by the rule of :func:`~tracechain.ingest.fields.lookup_path`; None (the block is read
+    line by line) where Arrow's types cannot tell what that rule picks on every line: a
+    key and a leading part of it both present, an array or plain value on the way. The
+    session and event paths must hold a value on every line (else the line-by-line reader
+    names the missing branch), and a text one, not Arrow's timestamps."""
+    for p in paths:
+        col = _arrow_path(table, p)
+        if col is None:
+            return None
+        if p in (names[0], names[2]) and (col.null_count or pa.types.is_temporal(col.type)):
+            return None
+        if p in table.column_names:
+            continue
+        table = table.append_column(p, col)
+    return table if _plain(table, names) else None
+
+
+def _arrow_path(table: pa.Table, path: str) -> pa.Array | None:
+    """The values ``path`` names in each row of ``table`` (nulls where a branch is
+    missing), or None when the types leave the choice open (see :func:`_path_columns`)."""
+    children = {n: i for i, n in enumerate(table.column_names)}
+    node: pa.Array | None = None
+    rest = path
+    while True:
+        parts = rest.split(".")
+        heads = [h for h in (".".join(parts[:i]) for i in range(len(parts), 0, -1)) if h in children]
+        if len(heads) > 1:
+            return None
+        if not heads:
+            return pa.nulls(table.num_rows if node is None else len(node), pa.string())
+        head = heads[0]
+        if node is None:
+            child = table.column(head).combine_chunks()
+        else:
+            child = node.flatten()[children[head]]  # (flatten: a null parent makes its children null)
+        if head == rest:
+            return child
+        if pa.types.is_null(child.type):
+            return pa.nulls(len(child), pa.string())
+        if not pa.types.is_struct(child.type):
+            return None
+        node, rest = child, rest[len(head) + 1 :]
+        children = {child.type.field(i).name: i for i in range(child.type.num_fields)}
 
 
 def _narrow_schema(schema: pa.Schema, names: tuple[str, str | None, str]) -> pa.Schema | None:
@@ -419,11 +506,24 @@ def _slow_parse(
     line_nos: list[int] = []
     needed = [n for n in dict.fromkeys(names) if n is not None]
     roles = [n for n in names[:3] if n is not None]
+    # dotted paths, found in each object and stored under their name (see lookup_path);
+    # a path through an array skips the line for the session, time and event fields, as
+    # does a missing branch for the session and event (a missing time is no problem)
+    paths = [(n, {names[0]: "session", names[1]: "time", names[2]: "event"}.get(n)) for n in needed if "." in n]
     for i, raw in enumerate(text_lines(block)):
         ln = first_line + i
         obj, reason, detail = _parse_line(raw)
         if reason is None and not isinstance(obj, dict):
             reason, detail = "not a JSON object", type(obj).__name__
+        if reason is None and paths:
+            found = {}
+            for k, role in paths:
+                found[k], gap = lookup_path(obj, k)
+                if gap is not None and role is not None and (gap.array or role != "time"):
+                    reason = (f"{role} field {k!r} passes through {gap.text}" if gap.array
+                              else f"missing {role} field {k!r}: {gap.text}")
+                    break
+            obj.update(found)  # (after every lookup: a path's name may be a leading part of another)
         if reason is None:
             for k in roles:
                 v = obj.get(k)

@@ -458,6 +458,19 @@ def _interval(x: np.ndarray, level: float) -> tuple[float | None, float | None, 
     return float(lo), float(hi), int((~ok).sum())
 
 
+def start_figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, *, level: float, draws: int,
+                  rng: np.random.Generator, prior: float):
+    """Conversion from the start and expected steps of one set of weights on a :class:`UnionIndex`,
+    each as ``(estimate, low, high)`` (None: undefined or infinite; the conversion is None without a
+    goal), with the Dirichlet intervals of the module text, and a note (None: nothing to say)."""
+    conv, steps, conv_d, steps_d, note = _figures(W, absorbing, goal_mask, draws, rng, prior)
+    out = []
+    for est, d in ((conv, conv_d), (steps, steps_d)):
+        lo, hi, _ = _interval(d, level)
+        out.append(None if est is None else (est, lo, hi))
+    return out[0], out[1], note
+
+
 def _change(name: str, ea, eb, da: np.ndarray, db: np.ndarray, level: float) -> FigureChange | None:
     if ea is None and eb is None:
         return None

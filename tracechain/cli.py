@@ -210,6 +210,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .privacy import add_privacy_options
 
     add_interval_options(o)
+    from .analyze.commands import add_segment_options
+
+    add_segment_options(a)
     add_privacy_options(a)
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
@@ -295,6 +298,8 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--max-states must be at least 1")
     if getattr(args, "stuck_cases", None):
         _stuck_cases_possible(args)  # before any reading
+    if args.segment_by is not None:
+        native_only(args, "--segment-by")  # before any reading
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)
@@ -310,11 +315,16 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         boot = sessions_from_args(args, "analyze --intervals bootstrap") if method == "bootstrap" else None
         ext = extended_analysis(chain, seed=args.seed, top=args.top or None, level=args.level, intervals=method,
                                 interval_sessions=boot)
+    seg = None
+    if args.segment_by is not None:
+        from .analyze.commands import segments_from_args
+
+        seg = segments_from_args(args, settings)
     written = []
     if getattr(args, "stuck_cases", None):
         written.append(_write_stuck_cases(args, chain))
     if args.json:
-        written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))
+        written.append(write_output(args.json, dumps(analysis_document(result, extended=ext, segments=seg))))
     wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
     if wants_diagram:
         from .report.dot import fit_diagram
@@ -331,6 +341,10 @@ def cmd_analyze(args: argparse.Namespace) -> int:
                 written.append(write_output(target, render_image(dot_text, fmt)))
     if not args.quiet and args.json != "-":
         sys.stdout.write(render_text(result, extended=ext))
+        if seg is not None:
+            from .report.segments import segments_text
+
+            sys.stdout.write(segments_text(seg))
         sys.stdout.flush()
     for w in written:
         if w != "-":

@@ -311,10 +311,12 @@ def count_grouped(
     strict: bool = False,
     stdin: BinaryIO | None = None,
     keep_fields: tuple[str, ...] = (),
+    extra: dict[str, Any] | None = None,
 ) -> tuple[dict[int, TransitionCounts], ParseReport]:
     """:func:`count_routed` with any number of disjoint groups, not known in advance: ``group(chunk)``
     returns an integer array with the group of each event (-1: left out). One read counts every
-    group; ``keep_fields`` are handed to ``group`` in ``chunk.attrs``.
+    group; ``keep_fields`` are handed to ``group`` in ``chunk.attrs``; ``extra``: the parsers'
+    settings, as for :func:`count_sources`.
 
     Returns the counts of each group that got an event (by group number) and the report.
     """
@@ -326,15 +328,16 @@ def count_grouped(
             yield int(k), codes == k
 
     return _count_parts(paths, parts, format=format, fields=fields, shape=shape, strict=strict, stdin=stdin,
-                        keep_fields=keep_fields)
+                        keep_fields=keep_fields, extra=extra)
 
 
-def _count_parts(paths, parts, *, format, fields, shape, strict, stdin, keep_fields: tuple[str, ...] = ()):
+def _count_parts(paths, parts, *, format, fields, shape, strict, stdin, keep_fields: tuple[str, ...] = (),
+                 extra: dict[str, Any] | None = None):
     """The reading of :func:`count_routed` and :func:`count_grouped`: ``parts(chunk)`` yields
     ``(part, mask)`` pairs; one counter per part, made when the part gets its first event."""
     shape = shape or ShapeOptions()
     keep = tuple(dict.fromkeys((shape.filters.fields if shape.filters is not None else ()) + tuple(keep_fields)))
-    options = ReadOptions(fields=fields or FieldSpec(), strict=strict, keep_fields=keep)
+    options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}), keep_fields=keep)
     sources = _resolve(paths, stdin)
     plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
     for src, parser in plan:

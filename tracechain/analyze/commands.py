@@ -15,7 +15,7 @@ from ..errors import AnalysisError, UsageError
 # moved to tracechain/options.py (shared by every command); the names stay here
 from ..options import _level, add_interval_options, add_level_option, interval_method, sessions_from_args  # noqa: F401
 
-__all__ = ["register", "cmd_order", "cmd_simulate", "cmd_whatif"]
+__all__ = ["register", "cmd_order", "cmd_simulate", "cmd_whatif", "add_segment_options", "segments_from_args"]
 
 
 def _table(headers: list[str], rows: list[list[str]]) -> list[str]:
@@ -122,6 +122,46 @@ def register(subparsers) -> None:
     add_level_option(w)
     w.add_argument("--prior", type=float, default=0.5, help="Dirichlet prior per cell (default 0.5, Jeffreys)")
     w.set_defaults(handler=cmd_whatif, edits=None)
+
+
+def add_segment_options(p: argparse.ArgumentParser) -> None:
+    """``--segment-by FIELD`` and ``--segments K`` (analyze)."""
+    from ..options import whole_number
+    from .segments import DEFAULT_TOP, NONE_LABEL, OTHER_LABEL
+
+    g = p.add_argument_group("segments: one chain per value of a field, compared (native engine)")
+    g.add_argument("--segment-by", metavar="FIELD",
+                   help="also count one chain per value of FIELD (a device, app version, country or campaign "
+                        "field of JSON Lines, CSV or Parquet), all in one more read: conversion and expected steps "
+                        "per segment with intervals (--level, --seed), and a chi-square test across segments of "
+                        "each state's exits, Benjamini-Hochberg across states. A session key's segment is its "
+                        f"value on the key's first event; {NONE_LABEL} when that has none")
+    g.add_argument("--segments", type=whole_number(1), default=DEFAULT_TOP, metavar="K",
+                   help=f"show the K largest segments (by sessions), the rest pooled as {OTHER_LABEL} "
+                        f"(default {DEFAULT_TOP})")
+
+
+def segments_from_args(args: argparse.Namespace, settings: dict):
+    """The :class:`~tracechain.analyze.segments.Segments` that ``--segment-by`` asks for: the input read once
+    more, every segment counted in that read, with the shaping of the main chain (``settings``: its gap)."""
+    from dataclasses import replace
+
+    from ..cli import extra_from_args
+    from ..options import native_only, shape_from_args
+    from .segments import count_segments, segment_analysis
+
+    native_only(args, "--segment-by")
+    shape, fields, goals, terminal = shape_from_args(args)
+    fmt, extra = extra_from_args(args, shape.mapping)
+    extra.pop("max_line_bytes", None)
+    if shape.gap is None and settings.get("gap_seconds"):
+        shape = replace(shape, gap=settings["gap_seconds"])
+    counts, keys, _, notes = count_segments(args.paths, args.segment_by, format=fmt, fields=fields, shape=shape,
+                                            strict=args.strict, extra=extra)
+    if shape.cases is not None:
+        notes.append("open cases end their sessions in the segment figures (no 'stuck' outcome there)")
+    return segment_analysis(counts, goals, terminal, field_name=args.segment_by, keys=keys, top=args.segments,
+                            level=args.level, seed=args.seed, notes=notes)
 
 
 # -- handlers -----------------------------------------------------------------------------

@@ -259,3 +259,14 @@ def test_other_engines_are_refused(shop, capsys):
     _, path, _, _ = shop
     code, _, err = run(["analyze", path, "--segment-by", "device", "--engine", "duckdb", "-q"], capsys)
     assert code == 2 and "--segment-by" in err and "only the native engine" in err
+
+
+def test_standard_input_is_refused_before_reading(shop, capsys, monkeypatch):
+    import io
+    import sys
+
+    _, path, _, _ = shop
+    data = open(path, "rb").read()
+    monkeypatch.setattr(sys, "stdin", io.TextIOWrapper(io.BytesIO(data)))
+    code, _, err = run(["analyze", "-", "--segment-by", "device", "-q"], capsys)
+    assert code == 2 and "standard input" in err and "save it to a file" in err

@@ -299,7 +299,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     if getattr(args, "stuck_cases", None):
         _stuck_cases_possible(args)  # before any reading
     if args.segment_by is not None:
-        native_only(args, "--segment-by")  # before any reading
+        from .analyze.commands import segments_possible
+
+        segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)

@@ -15,7 +15,8 @@ from ..errors import AnalysisError, UsageError
 # moved to tracechain/options.py (shared by every command); the names stay here
 from ..options import _level, add_interval_options, add_level_option, interval_method, sessions_from_args  # noqa: F401
 
-__all__ = ["register", "cmd_order", "cmd_simulate", "cmd_whatif", "add_segment_options", "segments_from_args"]
+__all__ = ["register", "cmd_order", "cmd_simulate", "cmd_whatif", "add_segment_options", "segments_possible",
+           "segments_from_args"]
 
 
 def _table(headers: list[str], rows: list[list[str]]) -> list[str]:
@@ -141,16 +142,35 @@ def add_segment_options(p: argparse.ArgumentParser) -> None:
                         f"(default {DEFAULT_TOP})")
 
 
+def segments_possible(args: argparse.Namespace) -> None:
+    """Refuse, before any reading, what ``--segment-by`` cannot do: another engine, or an input that
+    cannot be read twice (standard input, a named pipe)."""
+    import os
+    import stat
+
+    from ..options import native_only
+
+    native_only(args, "--segment-by")
+    for p in args.paths:
+        try:
+            pipe = p == "-" or stat.S_ISFIFO(os.stat(p).st_mode)
+        except OSError:
+            continue  # (a glob or a missing file: the reader says what is wrong)
+        if pipe:
+            raise UsageError(f"--segment-by reads the input a second time, which {'standard input' if p == '-' else p} "
+                             "cannot give: save it to a file first")
+
+
 def segments_from_args(args: argparse.Namespace, settings: dict):
     """The :class:`~tracechain.analyze.segments.Segments` that ``--segment-by`` asks for: the input read once
     more, every segment counted in that read, with the shaping of the main chain (``settings``: its gap)."""
     from dataclasses import replace
 
     from ..cli import extra_from_args
-    from ..options import native_only, shape_from_args
+    from ..options import shape_from_args
     from .segments import count_segments, segment_analysis
 
-    native_only(args, "--segment-by")
+    segments_possible(args)
     shape, fields, goals, terminal = shape_from_args(args)
     fmt, extra = extra_from_args(args, shape.mapping)
     extra.pop("max_line_bytes", None)

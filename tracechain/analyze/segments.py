@@ -92,6 +92,8 @@ class Segments:
     seed: int
     prior: float
     min_expected: float
+    goals: tuple[str, ...] = ()
+    terminal: tuple[str, ...] = ()
     test_name: str = TEST_NAME
     notes: tuple[str, ...] = ()
     counts: dict = field(default_factory=dict, repr=False, compare=False)  # label -> TransitionCounts
@@ -218,7 +220,8 @@ def segment_analysis(
     if not goals:
         out_notes.append("no goal given: the conversion per segment is not computed")
     return Segments(field_name, tuple(groups), tests, len(ordered), top, float(fdr), float(level), int(draws),
-                    int(seed), float(prior), float(min_expected), notes=tuple(out_notes),
+                    int(seed), float(prior), float(min_expected), tuple(goals), tuple(t for t in terminal if t in known),
+                    notes=tuple(out_notes),
                     counts={lb: c for lb, _, c in shown})
 
 

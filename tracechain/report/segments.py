@@ -11,7 +11,7 @@ from typing import Any
 from ..analyze.segments import Segments
 from .text import safe_text
 
-__all__ = ["segments_text", "segments_document"]
+__all__ = ["segments_text", "segments_document", "segments_section"]
 
 
 def _pct(v: float | None) -> str:
@@ -38,7 +38,7 @@ def segments_text(seg: Segments) -> str:
     headers = ["segment", "sessions", "conversion", f"{lvl} interval", "expected steps", f"{lvl} interval"]
     rows = []
     for g in seg.groups:
-        label = safe_text(g.label, 30) + (f" ({len(g.values)} segments)" if g.values != (g.label,) else "")
+        label = safe_text(g.label, 30) + (f" ({len(g.values)} segment{'s' if len(g.values) > 1 else ''})" if g.values != (g.label,) else "")
         rows.append([label, f"{g.sessions:,}", *_figure(g.conversion, _pct), *_figure(g.steps, _num)])
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
 
@@ -86,3 +86,38 @@ def segments_document(seg: Segments) -> dict[str, Any]:
                   for t in seg.tests],
         "notes": list(seg.notes),
     }
+
+
+def segments_section(seg: Segments, chart=None):
+    """The report's section on segments: the table per segment, the states whose exits differ
+    across segments, and ``chart`` (the small multiples, or a line saying why there are none)."""
+    from .html import Bullets, Para, Section, Table, charts_section
+    from .names import safe_name
+
+    lvl = f"{100 * seg.level:.0f}%"
+    rows = []
+    for g in seg.groups:
+        label = safe_name(g.label, 60) + (f" ({len(g.values)} segment{'s' if len(g.values) > 1 else ''})" if g.values != (g.label,) else "")
+        rows.append([label, f"{g.sessions:,}", *_figure(g.conversion, _pct), *_figure(g.steps, _num)])
+    blocks: list = [
+        Para(f"Sessions by the value of {safe_name(seg.field, 60)}: {seg.segments:,} segment(s); a session key's "
+             "segment is its value on the key's first event, (none) when that has none"
+             + (f"; the {seg.top} largest shown, the rest pooled as (other)." if seg.segments > seg.top else ".")),
+        Table(["segment", "sessions", "conversion", f"{lvl} interval", "expected steps", f"{lvl} interval"], rows,
+              numeric=frozenset({1, 2, 3, 4, 5})),
+    ]
+    sig = seg.significant
+    blocks.append(Para(f"States whose exits differ across segments ({seg.test_name}, Benjamini-Hochberg "
+                       f"q ≤ {seg.fdr:g}): {len(sig)} of {len(seg.tested)} tested."))
+    if sig:
+        blocks.append(Table(["state", "X²", "df", "p", "q", "segments"],
+                            [[safe_name(t.state, 60), f"{t.statistic:.1f}", str(t.df), f"{t.p_value:.2g}",
+                              f"{t.q_value:.2g}", str(len(t.groups))] for t in sig[:15]],
+                            numeric=frozenset({1, 2, 3, 4, 5})))
+    if chart is not None:
+        blocks.extend(charts_section([chart]).blocks)
+    notes = [safe_name(n, 400) for n in seg.notes] + [f"{safe_name(g.label, 60)}: {g.note}" for g in seg.groups
+                                                      if g.note]
+    if notes:
+        blocks.append(Bullets(notes))
+    return Section("segments", f"Segments by {safe_name(seg.field, 60)}", blocks)

@@ -270,3 +270,49 @@ def test_standard_input_is_refused_before_reading(shop, capsys, monkeypatch):
     monkeypatch.setattr(sys, "stdin", io.TextIOWrapper(io.BytesIO(data)))
     code, _, err = run(["analyze", "-", "--segment-by", "device", "-q"], capsys)
     assert code == 2 and "standard input" in err and "save it to a file" in err
+
+
+def test_report_small_multiples_show_each_segments_conversion(shop, tmp_path, capsys):
+    """The chart's bars (their data attributes) against numpy solves of the hand counts: P(reach the
+    goal) from the start and from each state drawn, per segment."""
+    pytest.importorskip("matplotlib")
+    import html as htmlmod
+    import re
+
+    rows, path, _, _ = shop
+    edges, _ = by_hand(rows)
+    out = tmp_path / "r.html"
+    md = tmp_path / "r.md"
+    code, _, err = run(["report", path, "--goal", GOAL, "--segment-by", "device", "--segments", "10",
+                        "--html", str(out), "--markdown", str(md)], capsys)
+    assert code == 0, err
+    page = out.read_text(encoding="utf-8")
+    bars = [dict((k, htmlmod.unescape(v)) for k, v in re.findall(r'data-([a-z]+)="([^"]*)"', tag))
+            for tag in re.findall(r"<[^>]*data-segment=[^>]*>", page)]
+    assert {b["segment"] for b in bars} == set(edges)
+    checked = 0
+    for b in bars:
+        probs = goal_probabilities(edges[b["segment"]], GOAL)
+        if b["seen"] == "yes":
+            assert float(b["value"]) == pytest.approx(probs[b["state"]], rel=1e-9), b
+            checked += 1
+    assert checked >= 4 * len(edges)
+    assert "## Segments by device" in md.read_text(encoding="utf-8")
+
+
+def goal_probabilities(edges: Counter, goal: str) -> dict:
+    """P(reach the goal) from every non-goal state, numpy.linalg.solve of (I - Q) x = R 1_goal."""
+    states = sorted({a for a, _ in edges} - {goal})
+    ix = {s: k for k, s in enumerate(states)}
+    out = Counter()
+    for (a, _), c in edges.items():
+        out[a] += c
+    Q = np.zeros((len(states), len(states)))
+    r = np.zeros(len(states))
+    for (a, b), c in edges.items():
+        if b in ix:
+            Q[ix[a], ix[b]] += c / out[a]
+        elif b == goal:
+            r[ix[a]] += c / out[a]
+    x = np.linalg.solve(np.eye(len(states)) - Q, r)
+    return {s: float(x[k]) for s, k in ix.items()}

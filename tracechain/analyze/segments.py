@@ -205,7 +205,8 @@ def segment_analysis(
         shown.append((OTHER_LABEL, tuple(rest), pooled))
     known = {s for _, _, c in shown for s in c.states}
     goals = [g for g in goals if g in known]
-    ix = union_index([c for _, _, c in shown], goals, [t for t in terminal if t in known])
+    terminal = [t for t in terminal if t in known]
+    ix = union_index([c for _, _, c in shown], goals, terminal)
     rng = np.random.default_rng(seed)
     groups = []
     for (label, values, c), W in zip(shown, ix.weights):
@@ -220,7 +221,7 @@ def segment_analysis(
     if not goals:
         out_notes.append("no goal given: the conversion per segment is not computed")
     return Segments(field_name, tuple(groups), tests, len(ordered), top, float(fdr), float(level), int(draws),
-                    int(seed), float(prior), float(min_expected), tuple(goals), tuple(t for t in terminal if t in known),
+                    int(seed), float(prior), float(min_expected), tuple(goals), tuple(terminal),
                     notes=tuple(out_notes),
                     counts={lb: c for lb, _, c in shown})
 

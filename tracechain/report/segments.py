@@ -29,6 +29,13 @@ def _figure(fig, fmt) -> tuple[str, str]:
     return fmt(est), ("" if lo is None else f"[{fmt(lo)}, {fmt(hi)}]")
 
 
+def _held(g) -> str:
+    """What a pooled group holds, after its label: " (3 segments)"; nothing for a segment of its own."""
+    if g.values == (g.label,):
+        return ""
+    return f" ({len(g.values)} segment{'s' if len(g.values) > 1 else ''})"
+
+
 def segments_text(seg: Segments) -> str:
     """The segment table, the tests across segments and the notes, as lines for the terminal."""
     lvl = f"{100 * seg.level:.0f}%"
@@ -38,7 +45,7 @@ def segments_text(seg: Segments) -> str:
     headers = ["segment", "sessions", "conversion", f"{lvl} interval", "expected steps", f"{lvl} interval"]
     rows = []
     for g in seg.groups:
-        label = safe_text(g.label, 30) + (f" ({len(g.values)} segment{'s' if len(g.values) > 1 else ''})" if g.values != (g.label,) else "")
+        label = safe_text(g.label, 30) + _held(g)
         rows.append([label, f"{g.sessions:,}", *_figure(g.conversion, _pct), *_figure(g.steps, _num)])
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
 
@@ -97,7 +104,7 @@ def segments_section(seg: Segments, chart=None):
     lvl = f"{100 * seg.level:.0f}%"
     rows = []
     for g in seg.groups:
-        label = safe_name(g.label, 60) + (f" ({len(g.values)} segment{'s' if len(g.values) > 1 else ''})" if g.values != (g.label,) else "")
+        label = safe_name(g.label, 60) + _held(g)
         rows.append([label, f"{g.sessions:,}", *_figure(g.conversion, _pct), *_figure(g.steps, _num)])
     blocks: list = [
         Para(f"Sessions by the value of {safe_name(seg.field, 60)}: {seg.segments:,} segment(s); a session key's "

@@ -316,3 +316,9 @@ def goal_probabilities(edges: Counter, goal: str) -> dict:
             r[ix[a]] += c / out[a]
     x = np.linalg.solve(np.eye(len(states)) - Q, r)
     return {s: float(x[k]) for s, k in ix.items()}
+
+
+def test_segments_without_segment_by_is_a_usage_error(shop, capsys):
+    _, path, _, _ = shop
+    code, _, err = run(["analyze", path, "--segments", "3", "-q"], capsys)
+    assert code == 2 and "--segments K goes with --segment-by" in err

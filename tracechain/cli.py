@@ -298,10 +298,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--max-states must be at least 1")
     if getattr(args, "stuck_cases", None):
         _stuck_cases_possible(args)  # before any reading
-    if args.segment_by is not None:
-        from .analyze.commands import segments_possible
+    from .analyze.commands import segments_possible
 
-        segments_possible(args)  # before any reading
+    segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)

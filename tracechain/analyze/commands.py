@@ -137,19 +137,23 @@ def add_segment_options(p: argparse.ArgumentParser) -> None:
                         "per segment with intervals (--level, --seed), and a chi-square test across segments of "
                         "each state's exits, Benjamini-Hochberg across states. A session key's segment is its "
                         f"value on the key's first event; {NONE_LABEL} when that has none")
-    g.add_argument("--segments", type=whole_number(1), default=DEFAULT_TOP, metavar="K",
+    g.add_argument("--segments", type=whole_number(1), default=None, metavar="K",
                    help=f"show the K largest segments (by sessions), the rest pooled as {OTHER_LABEL} "
                         f"(default {DEFAULT_TOP})")
 
 
 def segments_possible(args: argparse.Namespace) -> None:
     """Refuse, before any reading, what ``--segment-by`` cannot do: another engine, or an input that
-    cannot be read twice (standard input, a named pipe)."""
+    cannot be read twice (standard input, a named pipe); and ``--segments`` without it."""
     import os
     import stat
 
     from ..options import native_only
 
+    if args.segment_by is None:
+        if args.segments is not None:
+            raise UsageError("--segments K goes with --segment-by FIELD")
+        return
     native_only(args, "--segment-by")
     for p in args.paths:
         try:
@@ -168,7 +172,7 @@ def segments_from_args(args: argparse.Namespace, settings: dict):
 
     from ..cli import extra_from_args
     from ..options import shape_from_args
-    from .segments import count_segments, segment_analysis
+    from .segments import DEFAULT_TOP, count_segments, segment_analysis
 
     segments_possible(args)
     shape, fields, goals, terminal = shape_from_args(args)
@@ -180,7 +184,8 @@ def segments_from_args(args: argparse.Namespace, settings: dict):
                                             strict=args.strict, extra=extra)
     if shape.cases is not None:
         notes.append("open cases end their sessions in the segment figures (no 'stuck' outcome there)")
-    return segment_analysis(counts, goals, terminal, field_name=args.segment_by, keys=keys, top=args.segments,
+    return segment_analysis(counts, goals, terminal, field_name=args.segment_by, keys=keys,
+                            top=DEFAULT_TOP if args.segments is None else args.segments,
                             level=args.level, seed=args.seed, notes=notes)
 
 

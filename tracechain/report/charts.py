@@ -397,14 +397,14 @@ def segment_chart(seg, max_states: int = 6) -> Chart | None:
         for y, lab, v in zip(ys, labels, values):
             text = "not seen" if lab != start and lab not in rows else f"{100 * v:.0f}%"
             end = hi if lab == start and hi is not None else v  # (past the whisker)
-            ax.text(min(end, 1.0) + 0.02, y, text, va="center", fontsize=9)
+            ax.text(min(end, 1.0) + 0.02, y, text, va="center", fontsize=10)
         ax.set_title(f"{_short(g.label, 28)} · {g.sessions:,} sessions", fontsize=11, loc="left")
         ax.set_xlim(0, 1.15)
         ax.spines[["top", "right"]].set_visible(False)
-        ax.tick_params(labelsize=9)
+        ax.tick_params(labelsize=10)
     for k in range(n, nrows * cols):
         axes[k // cols][k % cols].set_visible(False)
-    axes[0][0].set_yticks(ys, [_short(x, 24) for x in labels], fontsize=9)
+    axes[0][0].set_yticks(ys, [_short(x, 24) for x in labels], fontsize=10)
     for col in range(cols):
         lowest = axes[(n - 1 - col) // cols][col]  # the last panel drawn in this column
         lowest.xaxis.set_tick_params(labelbottom=True)

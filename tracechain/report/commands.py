@@ -297,16 +297,18 @@ def cmd_report(args: argparse.Namespace) -> int:
     outs = [x for x in (args.html, args.markdown, args.csv, args.svg, args.png, args.pdf) if x]
     if outs.count("-") > 1:
         raise UsageError("only one output can go to standard output ('-')")
-    if args.segment_by is not None:
-        from ..analyze.commands import segments_possible
+    from ..analyze.commands import segments_possible
 
-        segments_possible(args)  # before any reading
+    segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = with_case_figures(analyze(chain, report, top=max(args.top, 10), settings=settings,
                                        min_visits=args.min_visits), args)
     seg_sections = None
     if args.segment_by is not None and (args.html or args.markdown):
         seg_sections = [_segments_section(args, settings)]
+    elif args.segment_by is not None:
+        print("tracechain: warning: --segment-by adds a section to the HTML and Markdown report; neither was asked "
+              "for", file=sys.stderr)
     groups = (load_mapping(args.mapping).groups or None) if args.mapping else None
     pseudo = _pseudonymizer(args)
     diagram = svg = missing = None

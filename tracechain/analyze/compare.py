@@ -70,7 +70,8 @@ from ..errors import AnalysisError, UsageError
 
 __all__ = [
     "StateTest", "EdgeChange", "FigureChange", "Comparison", "compare_counts", "benjamini_hochberg",
-    "homogeneity_test", "homogeneity_rows", "UnionIndex", "union_index", "start_figures", "count_split_at", "count_split_by_field", "parse_time", "TEST_NAME",
+    "homogeneity_test", "homogeneity_rows", "UnionIndex", "union_index", "start_figures", "count_split_at",
+    "count_split_by_field", "parse_time", "TEST_NAME",
 ]
 
 TEST_NAME = "Pearson chi-square test of homogeneity, sparse cells pooled"
@@ -300,7 +301,8 @@ class UnionIndex:
     weights: list[sp.csr_array]
 
 
-def union_index(counts: Iterable[TransitionCounts], goals: Iterable[str] = (), terminal: Iterable[str] = ()) -> UnionIndex:
+def union_index(counts: Iterable[TransitionCounts], goals: Iterable[str] = (),
+                terminal: Iterable[str] = ()) -> UnionIndex:
     """The :class:`UnionIndex` of ``counts``; a goal in none of them is an error."""
     counts = list(counts)
     goals, terminal = list(goals), list(terminal)

@@ -322,3 +322,22 @@ def test_segments_without_segment_by_is_a_usage_error(shop, capsys):
     _, path, _, _ = shop
     code, _, err = run(["analyze", path, "--segments", "3", "-q"], capsys)
     assert code == 2 and "--segments K goes with --segment-by" in err
+
+
+def test_segment_values_are_shown_safely(tmp_path, capsys):
+    """Values come from the logs: no markup in the HTML, bidirectional marks as escapes in the text."""
+    rows = []
+    for s in range(30):
+        dev = ["<script>x()</script>", "right\u202eleft"][s % 2]
+        for k, e in enumerate(["Landing", "Cart", GOAL][: 1 + s % 3]):
+            rows.append((f"s{s}", s * 10 + k, e, dev))
+    path = write_log(tmp_path / "odd.jsonl", rows)
+    code, out, err = run(["analyze", path, "--goal", GOAL, "--segment-by", "device"], capsys)
+    assert code == 0, err
+    assert "\u202e" not in out and "right\\u202eleft" in out
+    page = tmp_path / "r.html"
+    code, _, err = run(["report", path, "--goal", GOAL, "--segment-by", "device", "--no-charts", "--html", str(page)],
+                       capsys)
+    assert code == 0, err
+    text = page.read_text(encoding="utf-8")
+    assert "<script>" not in text and "&lt;script&gt;x()&lt;/script&gt;" in text

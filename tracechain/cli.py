@@ -210,7 +210,7 @@ def build_parser() -> argparse.ArgumentParser:
     from .privacy import add_privacy_options
 
     add_interval_options(o)
-    from .analyze.commands import add_segment_options
+    from .options import add_segment_options
 
     add_segment_options(a)
     add_privacy_options(a)
@@ -298,7 +298,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--max-states must be at least 1")
     if getattr(args, "stuck_cases", None):
         _stuck_cases_possible(args)  # before any reading
-    from .analyze.commands import segments_possible
+    from .options import segments_possible
 
     segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
@@ -318,9 +318,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
                                 interval_sessions=boot)
     seg = None
     if args.segment_by is not None:
-        from .analyze.commands import segments_from_args
+        from .options import segments_from_args
 
-        seg = segments_from_args(args, settings)
+        seg = segments_from_args(args, settings, *extra_from_args(args, shape_from_args(args)[0].mapping))
     written = []
     if getattr(args, "stuck_cases", None):
         written.append(_write_stuck_cases(args, chain))

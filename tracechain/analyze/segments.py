@@ -31,6 +31,7 @@ import numpy as np
 
 from ..counts import TransitionCounts
 from ..errors import FieldError, UsageError
+from ..events import ParseReport
 from .compare import TEST_NAME, benjamini_hochberg, homogeneity_rows, start_figures, union_index
 
 __all__ = ["NONE_LABEL", "OTHER_LABEL", "DEFAULT_TOP", "SegmentGroup", "SegmentTest", "Segments", "count_segments",
@@ -107,7 +108,7 @@ class Segments:
         return tuple(t for t in self.tests if t.p_value is not None)
 
 
-def count_segments(paths, field_name: str, **kw) -> tuple[dict[str, TransitionCounts], dict[str, int], object,
+def count_segments(paths, field_name: str, **kw) -> tuple[dict[str, TransitionCounts], dict[str, int], ParseReport,
                                                             list[str]]:
     """Counts per segment of ``field_name`` in one read (see the module text).
 

@@ -82,7 +82,7 @@ def register(subparsers) -> None:
     o.add_argument("--seed", type=_seed, default=0, help="seed of the interval draws (default 0)")
     add_interval_options(o)
     add_case_figure_options(o)
-    from ..analyze.commands import add_segment_options
+    from ..options import add_segment_options
 
     add_segment_options(r)
     o.add_argument("--order-test", action="store_true",
@@ -200,11 +200,13 @@ def _charts(result, args) -> list:
 
 def _segments_section(args, settings):
     """``--segment-by``: the segments' section of the report, with the small multiples when charts can be drawn."""
-    from ..analyze.commands import segments_from_args
+    from ..options import segments_from_args
+    from ..cli import extra_from_args
+    from ..options import shape_from_args
     from .charts import available, missing_reason, segment_chart
     from .segments import segments_section
 
-    seg = segments_from_args(args, settings)
+    seg = segments_from_args(args, settings, *extra_from_args(args, shape_from_args(args)[0].mapping))
     chart = None
     if not args.no_charts:
         chart = segment_chart(seg) if available() else f"No chart of conversion by segment: {missing_reason()}."
@@ -297,7 +299,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     outs = [x for x in (args.html, args.markdown, args.csv, args.svg, args.png, args.pdf) if x]
     if outs.count("-") > 1:
         raise UsageError("only one output can go to standard output ('-')")
-    from ..analyze.commands import segments_possible
+    from ..options import segments_possible
 
     segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)

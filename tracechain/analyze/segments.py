@@ -221,6 +221,10 @@ def segment_analysis(
         out_notes.append("a single segment: nothing to test across segments")
     if not goals:
         out_notes.append("no goal given: the conversion per segment is not computed")
+    sparse = sum(1 for t in tests if t.reason and t.reason.startswith("too few transitions"))
+    if sparse:
+        out_notes.append(f"{sparse} state(s) not tested: too few exits in the smallest segment shown for every "
+                         f"expected count to reach {min_expected:g}; a smaller --segments pools the small segments")
     return Segments(field_name, tuple(groups), tests, len(ordered), top, float(fdr), float(level), int(draws),
                     int(seed), float(prior), float(min_expected), tuple(goals), tuple(terminal),
                     notes=tuple(out_notes),

@@ -77,3 +77,23 @@ def test_edge_lists_cannot_be_split(tmp_path):
     path.write_text("from,to,count\n[start],Home,3\nHome,[end],3\n", encoding="utf-8")
     with pytest.raises(UsageError, match="pre-aggregated"):
         count_routed([str(path)], lambda chunk: None, format="edges")
+
+
+def test_filters_apply_before_routing(tmp_path):
+    from tracechain.pipeline import ShapeOptions
+    from tracechain.shape.filters import Filters
+
+    rows = invented_events(5, shuffle=False)
+    path = tmp_path / "shop.jsonl"
+    path.write_text("".join(json.dumps({"session": s, "time": t, "event": e}) + "\n" for s, t, e in rows),
+                    encoding="utf-8")
+    shape = ShapeOptions(filters=Filters.from_options(["event!=List"]))
+
+    def route(chunk):
+        every = np.ones(len(chunk.time), dtype=bool)
+        return every, ~every
+
+    (a, b), report = count_routed([str(path)], route, shape=shape)
+    kept = [r for r in rows if r[2] != "List"]
+    assert a.to_edges(START, END) == by_hand(kept)
+    assert report.filtered["--where event!=List"] == len(rows) - len(kept)

@@ -213,6 +213,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .privacy import add_privacy_options
 
     add_interval_options(o)
+    from .options import add_segment_options
+
+    add_segment_options(a)
     add_privacy_options(a)
     a.set_defaults(handler=cmd_analyze)
     f = sub.add_parser("formats", help="list the input formats this installation reads")
@@ -299,6 +302,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         raise UsageError("--max-states must be at least 1")
     if getattr(args, "stuck_cases", None):
         _stuck_cases_possible(args)  # before any reading
+    from .options import segments_possible
+
+    segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)
@@ -314,11 +320,16 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         boot = sessions_from_args(args, "analyze --intervals bootstrap") if method == "bootstrap" else None
         ext = extended_analysis(chain, seed=args.seed, top=args.top or None, level=args.level, intervals=method,
                                 interval_sessions=boot)
+    seg = None
+    if args.segment_by is not None:
+        from .options import segments_from_args
+
+        seg = segments_from_args(args, settings, *extra_from_args(args, shape_from_args(args)[0].mapping))
     written = []
     if getattr(args, "stuck_cases", None):
         written.append(_write_stuck_cases(args, chain))
     if args.json:
-        written.append(write_output(args.json, dumps(analysis_document(result, extended=ext))))
+        written.append(write_output(args.json, dumps(analysis_document(result, extended=ext, segments=seg))))
     wants_diagram = any(getattr(args, k) for k in ("dot", "svg", "png", "pdf"))
     if wants_diagram:
         from .report.dot import fit_diagram
@@ -335,6 +346,10 @@ def cmd_analyze(args: argparse.Namespace) -> int:
                 written.append(write_output(target, render_image(dot_text, fmt)))
     if not args.quiet and args.json != "-":
         sys.stdout.write(render_text(result, extended=ext))
+        if seg is not None:
+            from .report.segments import segments_text
+
+            sys.stdout.write(segments_text(seg))
         sys.stdout.flush()
     for w in written:
         if w != "-":

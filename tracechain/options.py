@@ -20,7 +20,7 @@ from .shape.mapping import load_mapping
 
 __all__ = ["EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR", "EXIT_INTERRUPTED", "shape_from_args", "progress_from_args",
            "count_from_args", "native_only", "add_level_option", "add_interval_options", "interval_method",
-           "sessions_from_args"]
+           "sessions_from_args", "add_segment_options", "segments_possible", "segments_from_args"]
 
 EXIT_OK = 0
 EXIT_FINDINGS = 1
@@ -214,3 +214,62 @@ def with_case_figures(result, args):
     return dataclasses.replace(
         result, case_times=case_times(sess, result.goal_labels),
         rework=case_rework(sess, [lp.states for lp in result.loops], rounds=args.loop_rounds))
+
+
+def add_segment_options(p: argparse.ArgumentParser) -> None:
+    """``--segment-by FIELD`` and ``--segments K`` (analyze, report)."""
+    from .analyze.segments import DEFAULT_TOP, NONE_LABEL, OTHER_LABEL
+
+    g = p.add_argument_group("segments: one chain per value of a field, compared (native engine)")
+    g.add_argument("--segment-by", metavar="FIELD",
+                   help="also count one chain per value of FIELD (a device, app version, country or campaign "
+                        "field of JSON Lines, CSV or Parquet), all in one more read: conversion and expected steps "
+                        "per segment with intervals (--level, --seed), and a chi-square test across segments of "
+                        "each state's exits, Benjamini-Hochberg across states. A session key's segment is its "
+                        f"value on the key's first event; {NONE_LABEL} when that has none")
+    g.add_argument("--segments", type=whole_number(1), default=None, metavar="K",
+                   help=f"show the K largest segments (by sessions), the rest pooled as {OTHER_LABEL} "
+                        f"(default {DEFAULT_TOP})")
+
+
+def segments_possible(args: argparse.Namespace) -> None:
+    """Refuse, before any reading, what ``--segment-by`` cannot do: another engine, or an input that
+    cannot be read twice (standard input, a named pipe); and ``--segments`` without it."""
+    import os
+    import stat
+
+    if args.segment_by is None:
+        if args.segments is not None:
+            raise UsageError("--segments K goes with --segment-by FIELD")
+        return
+    native_only(args, "--segment-by")
+    for p in args.paths:
+        try:
+            pipe = p == "-" or stat.S_ISFIFO(os.stat(p).st_mode)
+        except OSError:
+            continue  # (a glob or a missing file: the reader says what is wrong)
+        if pipe:
+            raise UsageError(f"--segment-by reads the input a second time, which {'standard input' if p == '-' else p} "
+                             "cannot give: save it to a file first")
+
+
+def segments_from_args(args: argparse.Namespace, settings: dict, fmt: str | None, extra: dict):
+    """The :class:`~tracechain.analyze.segments.Segments` that ``--segment-by`` asks for: the input read once
+    more, every segment counted in that read, with the shaping of the main chain (``settings``: its gap;
+    ``fmt`` and ``extra``: the input format and the parsers' settings, ``tracechain.cli.extra_from_args``)."""
+    from dataclasses import replace
+
+    from .analyze.segments import DEFAULT_TOP, count_segments, segment_analysis
+
+    segments_possible(args)
+    shape, fields, goals, terminal = shape_from_args(args)
+    extra = {k: v for k, v in extra.items() if k != "max_line_bytes"}
+    if shape.gap is None and settings.get("gap_seconds"):
+        shape = replace(shape, gap=settings["gap_seconds"])
+    counts, keys, _, notes = count_segments(args.paths, args.segment_by, format=fmt, fields=fields, shape=shape,
+                                            strict=args.strict, extra=extra)
+    if shape.cases is not None:
+        notes.append("open cases end their sessions in the segment figures (no 'stuck' outcome there)")
+    return segment_analysis(counts, goals, terminal, field_name=args.segment_by, keys=keys,
+                            top=DEFAULT_TOP if args.segments is None else args.segments,
+                            level=args.level, seed=args.seed, notes=notes)

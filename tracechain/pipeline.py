@@ -31,8 +31,8 @@ from .shape.filters import Filters
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
 
-__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed", "MAX_ORDER",
-           "apply_filters"]
+__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed", "count_grouped",
+           "MAX_ORDER", "apply_filters"]
 
 #: the highest chain order accepted (--order, --max-order, a rules file's 'order:'): counting keeps the
 #: last K-1 codes of every open session, so an order of millions would exhaust memory before reading
@@ -288,33 +288,75 @@ def count_routed(
     mask per side (the events of the chunk that side counts; they may overlap or leave events
     out), or None to skip the chunk. If a session turns out not to be in time order, the sources
     are read once more in sorting mode, as :func:`count_sources` does, and the report notes it.
+    The shape's filters (``--where``, ``--since``, ``--until``) apply before routing.
 
     Returns the counts of each side (empty counts for a side that got no event) and the report.
     Pre-aggregated sources (edge lists) are refused: they cannot be split.
     """
+
+    def parts(chunk):
+        masks = route(chunk)
+        return () if masks is None else enumerate(masks)
+
+    got, report = _count_parts(paths, parts, format=format, fields=fields, shape=shape, strict=strict, stdin=stdin)
+    return tuple(got.get(k, TransitionCounts.empty()) for k in range(sides)), report
+
+
+def count_grouped(
+    paths: Iterable[str] | Iterable[Source],
+    group,
+    *,
+    format: str | None = None,
+    fields: FieldSpec | None = None,
+    shape: ShapeOptions | None = None,
+    strict: bool = False,
+    stdin: BinaryIO | None = None,
+    keep_fields: tuple[str, ...] = (),
+    extra: dict[str, Any] | None = None,
+) -> tuple[dict[int, TransitionCounts], ParseReport]:
+    """:func:`count_routed` with any number of disjoint groups, not known in advance: ``group(chunk)``
+    returns an integer array with the group of each event (-1: left out). One read counts every
+    group; ``keep_fields`` are handed to ``group`` in ``chunk.attrs``; ``extra``: the parsers'
+    settings, as for :func:`count_sources`.
+
+    Returns the counts of each group that got an event (by group number) and the report.
+    """
+    import numpy as np
+
+    def parts(chunk):
+        codes = np.asarray(group(chunk))
+        for k in np.unique(codes[codes >= 0]).tolist():
+            yield int(k), codes == k
+
+    return _count_parts(paths, parts, format=format, fields=fields, shape=shape, strict=strict, stdin=stdin,
+                        keep_fields=keep_fields, extra=extra)
+
+
+def _count_parts(paths, parts, *, format, fields, shape, strict, stdin, keep_fields: tuple[str, ...] = (),
+                 extra: dict[str, Any] | None = None):
+    """The reading of :func:`count_routed` and :func:`count_grouped`: ``parts(chunk)`` yields
+    ``(part, mask)`` pairs; one counter per part, made when the part gets its first event."""
     shape = shape or ShapeOptions()
-    options = ReadOptions(fields=fields or FieldSpec(), strict=strict)
+    keep = tuple(dict.fromkeys((shape.filters.fields if shape.filters is not None else ()) + tuple(keep_fields)))
+    options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}), keep_fields=keep)
     sources = _resolve(paths, stdin)
     plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
     for src, parser in plan:
         if parser.kind != "events":
             raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}); splitting needs events")
 
-    def one_pass(sort: bool) -> tuple[tuple[TransitionCounts, ...], ParseReport]:
+    def one_pass(sort: bool) -> tuple[dict[int, TransitionCounts], ParseReport]:
         report = ParseReport()
-        counters = [shape.counter(sort=sort) for _ in range(sides)]
-        used = [False] * sides
+        counters: dict[int, SessionCounter] = {}
         for src, parser in plan:
             report.sources.append(src.name)
-            for chunk in parser.read(src, options, report):
-                masks = route(chunk)
-                if masks is None:
-                    continue
-                for k, mask in enumerate(masks):
+            for chunk in apply_filters(parser.read(src, options, report), shape.filters, report):
+                for k, mask in parts(chunk):
                     if mask.any():
+                        if k not in counters:
+                            counters[k] = shape.counter(sort=sort)
                         counters[k].add(_take(chunk, mask))
-                        used[k] = True
-        return tuple(c.finish() if u else TransitionCounts.empty() for c, u in zip(counters, used)), report
+        return {k: c.finish() for k, c in sorted(counters.items())}, report
 
     try:
         return one_pass(False)

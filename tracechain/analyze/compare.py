@@ -70,7 +70,8 @@ from ..errors import AnalysisError, UsageError
 
 __all__ = [
     "StateTest", "EdgeChange", "FigureChange", "Comparison", "compare_counts", "benjamini_hochberg",
-    "homogeneity_test", "count_split_at", "count_split_by_field", "parse_time", "TEST_NAME",
+    "homogeneity_test", "homogeneity_rows", "UnionIndex", "union_index", "start_figures", "count_split_at",
+    "count_split_by_field", "parse_time", "TEST_NAME",
 ]
 
 TEST_NAME = "Pearson chi-square test of homogeneity, sparse cells pooled"
@@ -215,18 +216,30 @@ def homogeneity_test(a: np.ndarray, b: np.ndarray, labels: list[str], min_expect
     """
     a = np.asarray(a, dtype=np.float64)
     b = np.asarray(b, dtype=np.float64)
-    keep = (a + b) > 0
-    a, b = a[keep], b[keep]
+    if a.sum() == 0 or b.sum() == 0:
+        keep = (a + b) > 0
+        return None, 0, None, None, [lb for lb, k in zip(labels, keep) if k], (), "no exits on one side"
+    return homogeneity_rows(np.array([a, b]), labels, min_expected)
+
+
+def homogeneity_rows(rows: np.ndarray, labels: list[str], min_expected: float = 5.0):
+    """Pearson's X² test of homogeneity of r rows of counts (r ≥ 2, each with a count), after pooling
+    sparse columns as the module text says: a column is sparse when its expected count in the
+    smallest row is below ``min_expected``. (r − 1)(k − 1) degrees of freedom for k columns left.
+
+    Returns ``(statistic, df, p_value, table, columns, pooled, reason)``, as :func:`homogeneity_test`.
+    """
+    rows = np.asarray(rows, dtype=np.float64)
+    keep = rows.sum(axis=0) > 0
+    rows = rows[:, keep]
     labels = [lb for lb, k in zip(labels, keep) if k]
-    na, nb = a.sum(), b.sum()
-    N = na + nb
-    if na == 0 or nb == 0:
-        return None, 0, None, None, labels, (), "no exits on one side"
+    n = rows.sum(axis=1)
+    N = n.sum()
     if len(labels) == 1:
-        return None, 0, None, np.array([a, b]), labels, (), "a single successor on both sides: nothing to compare"
-    col = a + b
-    # expected counts are col * n_row / N; the smaller row decides whether a column is sparse
-    cutoff = min_expected * N / min(na, nb)
+        return None, 0, None, rows, labels, (), "a single successor on both sides: nothing to compare"
+    col = rows.sum(axis=0)
+    # expected counts are col * n_row / N; the smallest row decides whether a column is sparse
+    cutoff = min_expected * N / n.min()
     order = np.argsort(col, kind="stable")
     pooled_idx: list[int] = []
     pool_total = 0.0
@@ -240,21 +253,17 @@ def homogeneity_test(a: np.ndarray, b: np.ndarray, labels: list[str], min_expect
         pooled_idx.append(int(k))
         pool_total += col[k]
     kept = sorted(int(k) for k in remaining)
-    ta = [a[k] for k in kept]
-    tb = [b[k] for k in kept]
+    table = rows[:, kept]
     columns = [labels[k] for k in kept]
     if pooled_idx:
-        ta.append(float(sum(a[k] for k in pooled_idx)))
-        tb.append(float(sum(b[k] for k in pooled_idx)))
+        table = np.column_stack([table, rows[:, pooled_idx].sum(axis=1)])
         columns.append(f"other ({len(pooled_idx)} pooled)")
     pooled = tuple(labels[k] for k in sorted(pooled_idx))
-    table = np.array([ta, tb])
     if table.shape[1] < 2:
         return None, 0, None, table, columns, pooled, "too few transitions to test (fewer than two cells after pooling)"
-    colsum = table.sum(axis=0)
-    E = np.outer([na, nb], colsum) / N
+    E = np.outer(n, table.sum(axis=0)) / N
     stat = float(((table - E) ** 2 / E).sum())
-    df = table.shape[1] - 1
+    df = (table.shape[0] - 1) * (table.shape[1] - 1)
     p = float(stats.chi2.sf(stat, df))
     return stat, df, p, table, columns, pooled, None
 
@@ -275,6 +284,61 @@ def _weights(c: TransitionCounts, pos: np.ndarray, n: int) -> sp.csr_array:
     cols.append(np.full(len(nz), n - 1))
     vals.append(c.ends[nz].astype(np.float64))
     return sp.coo_array((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n)).tocsr()
+
+
+@dataclass(frozen=True)
+class UnionIndex:
+    """Several sets of counts on one index: 0 = the start, then the union of their states (in the
+    order first seen), then the end; a role and a label per index, and each set's weights
+    (transition, start and end counts) on it."""
+
+    union: tuple
+    labels: list[str]
+    roles: list[str]
+    absorbing: np.ndarray
+    goal_mask: np.ndarray
+    positions: list[np.ndarray]
+    weights: list[sp.csr_array]
+
+
+def union_index(counts: Iterable[TransitionCounts], goals: Iterable[str] = (),
+                terminal: Iterable[str] = ()) -> UnionIndex:
+    """The :class:`UnionIndex` of ``counts``; a goal in none of them is an error."""
+    counts = list(counts)
+    goals, terminal = list(goals), list(terminal)
+    union: list = []
+    known: set = set()
+    for c in counts:
+        for s in c.states:
+            if s not in known:
+                known.add(s)
+                union.append(s)
+    union = tuple(union)
+    for g in goals:
+        if g not in known:
+            raise AnalysisError(f"goal {g!r} occurs on {'neither side' if len(counts) == 2 else 'no side'}")
+    index = {s: k for k, s in enumerate(union)}
+    n = len(union) + 2
+    positions = [np.array([index[s] for s in c.states], dtype=np.int64) for c in counts]
+    weights = [_weights(c, pos, n) for c, pos in zip(counts, positions)]
+    goal_set, term_set = set(goals), set(terminal)
+    if any(isinstance(s, tuple) for s in union):
+        term_set |= {s for s in union if isinstance(s, tuple) and s and s[-1] in set(terminal)}
+    roles = ["start"] + [("goal" if s in goal_set else "terminal" if s in term_set else "transient") for s in union]
+    roles.append("end")
+    taken = {state_label(s) for s in union}
+
+    def free(base: str) -> str:
+        label, k = base, 1
+        while label in taken:
+            k += 1
+            label = f"{base[:-1]} {k}]"
+        return label
+
+    labels = [free("[start]")] + [state_label(s) for s in union] + [free("[end]")]
+    absorbing = np.array([r in ("goal", "terminal", "end") for r in roles])
+    goal_mask = np.array([r == "goal" for r in roles])
+    return UnionIndex(union, labels, roles, absorbing, goal_mask, positions, weights)
 
 
 #: Above this many transient states the intervals are skipped (each draw is a dense solve).
@@ -396,6 +460,19 @@ def _interval(x: np.ndarray, level: float) -> tuple[float | None, float | None, 
     return float(lo), float(hi), int((~ok).sum())
 
 
+def start_figures(W: sp.csr_array, absorbing: np.ndarray, goal_mask: np.ndarray, *, level: float, draws: int,
+                  rng: np.random.Generator, prior: float):
+    """Conversion from the start and expected steps of one set of weights on a :class:`UnionIndex`,
+    each as ``(estimate, low, high)`` (None: undefined or infinite; the conversion is None without a
+    goal), with the Dirichlet intervals of the module text, and a note (None: nothing to say)."""
+    conv, steps, conv_d, steps_d, note = _figures(W, absorbing, goal_mask, draws, rng, prior)
+    out = []
+    for est, d in ((conv, conv_d), (steps, steps_d)):
+        lo, hi, _ = _interval(d, level)
+        out.append(None if est is None else (est, lo, hi))
+    return out[0], out[1], note
+
+
 def _change(name: str, ea, eb, da: np.ndarray, db: np.ndarray, level: float) -> FigureChange | None:
     if ea is None and eb is None:
         return None
@@ -423,33 +500,11 @@ def compare_counts(
         raise UsageError("the minimum expected count must be a positive number")
     if a.sessions == 0 or b.sessions == 0 or a.n_states == 0 or b.n_states == 0:
         raise AnalysisError(f"nothing to compare: side {names[0] if a.n_states == 0 else names[1]} has no sessions")
-    goals, terminal = list(goals), list(terminal)
-    union = tuple(a.states) + tuple(s for s in b.states if s not in set(a.states))
-    for g in goals:
-        if g not in set(union):
-            raise AnalysisError(f"goal {g!r} occurs on neither side")
-    index = {s: k for k, s in enumerate(union)}
-    n = len(union) + 2
-    pos_a = np.array([index[s] for s in a.states], dtype=np.int64)
-    pos_b = np.array([index[s] for s in b.states], dtype=np.int64)
-    Wa, Wb = _weights(a, pos_a, n), _weights(b, pos_b, n)
-    goal_set, term_set = set(goals), set(terminal)
-    if any(isinstance(s, tuple) for s in union):
-        term_set |= {s for s in union if isinstance(s, tuple) and s and s[-1] in set(terminal)}
-    roles = ["start"] + [("goal" if s in goal_set else "terminal" if s in term_set else "transient") for s in union]
-    roles.append("end")
-    taken = {state_label(s) for s in union}
-
-    def free(base: str) -> str:
-        label, k = base, 1
-        while label in taken:
-            k += 1
-            label = f"{base[:-1]} {k}]"
-        return label
-
-    labels = [free("[start]")] + [state_label(s) for s in union] + [free("[end]")]
-    absorbing = np.array([r in ("goal", "terminal", "end") for r in roles])
-    goal_mask = np.array([r == "goal" for r in roles])
+    ix = union_index((a, b), goals, terminal)
+    union, labels, roles, absorbing, goal_mask = ix.union, ix.labels, ix.roles, ix.absorbing, ix.goal_mask
+    n = len(labels)
+    pos_a, pos_b = ix.positions
+    Wa, Wb = ix.weights
     open_a = np.zeros(n, dtype=np.int64)
     open_a[pos_a + 1] = a.open
     open_b = np.zeros(n, dtype=np.int64)

@@ -22,7 +22,8 @@ import io
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 
-__all__ = ["Chart", "available", "missing_reason", "report_charts", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
+__all__ = ["Chart", "available", "missing_reason", "report_charts", "compare_charts", "segment_chart", "CHARTS_EXTRA",
+           "inline_svg"]
 
 CHARTS_EXTRA = "pip install 'tracechain[charts]'"
 INK = "#33475b"  # bars: dark blue-grey
@@ -336,6 +337,85 @@ def compare_charts(cmp) -> list[Chart]:
                          "total variation distance of the exits", labels, values, texts, "compare-states", points,
                          colors=colors, hatches=hatches, xlim=(0, 1)))
     return out
+
+
+def segment_chart(seg, max_states: int = 6) -> Chart | None:
+    """Small multiples of conversion by segment: one panel per group of ``seg`` (a
+    :class:`~tracechain.analyze.segments.Segments`), each with the probability of reaching a goal
+    from the start and from the states most visited over all groups, on one shared scale, so the
+    panels are read side by side; the start's bar carries its interval."""
+    import math
+
+    from ..analyze.summary import analyze
+    from ..chain import Chain
+
+    if not seg.groups or seg.groups[0].conversion is None:
+        return None
+    visits: dict = {}
+    per_group = []
+    for g in seg.groups:
+        c = seg.counts[g.label]
+        known = set(c.states)
+        goals = [s for s in seg.goals if s in known]
+        if not goals:
+            per_group.append({})
+            continue
+        a = analyze(Chain.from_counts(c, goals=goals, terminal=[t for t in seg.terminal if t in known]))
+        rows = {r.state: r for r in a.state_rows() if r.role in ("start", "transient", "sink", "terminal")}
+        per_group.append(rows)
+        for r in rows.values():
+            if r.role != "start":
+                visits[r.state] = visits.get(r.state, 0) + r.visits
+    states = sorted(visits, key=lambda s: (-visits[s], s))[:max_states]
+    start = "[start]"
+    Figure = _plt()
+    n = len(seg.groups)
+    cols = min(3, n)
+    nrows = math.ceil(n / cols)
+    fig = Figure(figsize=(4.2 * cols, (0.36 * (len(states) + 1) + 1.1) * nrows + 0.6), layout="constrained")
+    axes = fig.subplots(nrows, cols, sharex=True, sharey=True, squeeze=False)
+    labels = [start] + states
+    ys = list(range(len(labels)))[::-1]
+    points = []
+    for k, (g, rows) in enumerate(zip(seg.groups, per_group)):
+        ax = axes[k // cols][k % cols]
+        est, lo, hi = g.conversion
+        values = [est] + [float(rows[s].p_any_goal) if s in rows and rows[s].p_any_goal is not None else 0.0
+                          for s in states]
+        bars = ax.barh(ys, values, color=INK, edgecolor="black", linewidth=0.6, height=0.65)
+        for j, (b, lab, v) in enumerate(zip(bars, labels, values)):
+            gid = f"tc-segments-{k}-{j}"
+            b.set_gid(gid)
+            pt = {"gid": gid, "state": lab, "segment": g.label, "value": v,
+                  "seen": "yes" if j == 0 or lab in rows else "no"}
+            if j == 0:
+                pt.update(low=lo, high=hi)
+            points.append(pt)
+        if lo is not None:
+            ax.errorbar([est], [ys[0]], xerr=[[est - lo], [hi - est]], fmt="none", ecolor="black", capsize=4,
+                        elinewidth=1.2)
+        for y, lab, v in zip(ys, labels, values):
+            text = "not seen" if lab != start and lab not in rows else f"{100 * v:.0f}%"
+            end = hi if lab == start and hi is not None else v  # (past the whisker)
+            ax.text(min(end, 1.0) + 0.02, y, text, va="center", fontsize=10)
+        ax.set_title(f"{_short(g.label, 28)} · {g.sessions:,} sessions", fontsize=11, loc="left")
+        ax.set_xlim(0, 1.15)
+        ax.spines[["top", "right"]].set_visible(False)
+        ax.tick_params(labelsize=10)
+    for k in range(n, nrows * cols):
+        axes[k // cols][k % cols].set_visible(False)
+    axes[0][0].set_yticks(ys, [_short(x, 24) for x in labels], fontsize=10)
+    for col in range(cols):
+        lowest = axes[(n - 1 - col) // cols][col]  # the last panel drawn in this column
+        lowest.xaxis.set_tick_params(labelbottom=True)
+        lowest.set_xlabel("probability of reaching a goal", fontsize=10)
+    title = f"Conversion by {_short(seg.field, 30)}: from the start and from the most visited states"
+    fig.suptitle(title, fontsize=13, x=0.01, ha="left")
+    c = Chart("segments", title, fig, points)
+    c.notes = [f"One panel per segment, one scale for all. Whisker on the start's bar: the {100 * seg.level:g}% "
+               f"Dirichlet posterior interval ({seg.draws} draws, seed {seg.seed}); 'not seen': the segment never "
+               "visited that state."]
+    return c
 
 
 # -- inlining in HTML -----------------------------------------------------------------------

@@ -82,6 +82,9 @@ def register(subparsers) -> None:
     o.add_argument("--seed", type=_seed, default=0, help="seed of the interval draws (default 0)")
     add_interval_options(o)
     add_case_figure_options(o)
+    from ..options import add_segment_options
+
+    add_segment_options(r)
     o.add_argument("--order-test", action="store_true",
                    help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
                         "memory) and state the result among the assumptions")
@@ -195,6 +198,21 @@ def _charts(result, args) -> list:
     return report_charts(result, top=args.top, level=args.level, seed=args.seed)
 
 
+def _segments_section(args, settings):
+    """``--segment-by``: the segments' section of the report, with the small multiples when charts can be drawn."""
+    from ..options import segments_from_args
+    from ..cli import extra_from_args
+    from ..options import shape_from_args
+    from .charts import available, missing_reason, segment_chart
+    from .segments import segments_section
+
+    seg = segments_from_args(args, settings, *extra_from_args(args, shape_from_args(args)[0].mapping))
+    chart = None
+    if not args.no_charts:
+        chart = segment_chart(seg) if available() else f"No chart of conversion by segment: {missing_reason()}."
+    return segments_section(seg, chart)
+
+
 def _chart_path(image: str, name: str, fmt: str) -> str:
     import os
 
@@ -281,9 +299,18 @@ def cmd_report(args: argparse.Namespace) -> int:
     outs = [x for x in (args.html, args.markdown, args.csv, args.svg, args.png, args.pdf) if x]
     if outs.count("-") > 1:
         raise UsageError("only one output can go to standard output ('-')")
+    from ..options import segments_possible
+
+    segments_possible(args)  # before any reading
     chain, report, settings = build_chain(args)
     result = with_case_figures(analyze(chain, report, top=max(args.top, 10), settings=settings,
                                        min_visits=args.min_visits), args)
+    seg_sections = None
+    if args.segment_by is not None and (args.html or args.markdown):
+        seg_sections = [_segments_section(args, settings)]
+    elif args.segment_by is not None:
+        print("tracechain: warning: --segment-by adds a section to the HTML and Markdown report; neither was asked "
+              "for", file=sys.stderr)
     groups = (load_mapping(args.mapping).groups or None) if args.mapping else None
     pseudo = _pseudonymizer(args)
     diagram = svg = missing = None
@@ -316,7 +343,7 @@ def cmd_report(args: argparse.Namespace) -> int:
                            diagram_missing=None if args.no_diagram else missing, pseudonymizer=pseudo,
                            top=args.top, seed=args.seed, order_test=order_table,
                            extended=ext if ext is not None else "auto", extended_options=ext_opts,
-                           charts=charts)
+                           charts=charts, comparison_sections=seg_sections)
         if args.html:
             written.append(write_output(args.html, render_html(doc)))
         if args.markdown:

@@ -31,8 +31,9 @@ def load_schema() -> dict:
     return json.loads(text)
 
 
-def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
-    """The JSON document; ``extended`` (an ExtendedAnalysis) adds the optional ``extended`` section."""
+def analysis_document(a: Analysis, extended=None, segments=None) -> dict[str, Any]:
+    """The JSON document; ``extended`` (an ExtendedAnalysis) adds the optional ``extended`` section,
+    ``segments`` (a :class:`~tracechain.analyze.segments.Segments`) the ``segments`` section."""
     ch = a.chain
     counts = ch.counts
     lab = ch.label
@@ -98,6 +99,10 @@ def analysis_document(a: Analysis, extended=None) -> dict[str, Any]:
         from ..analyze.extended import extended_document
 
         doc["extended"] = extended_document(extended)
+    if segments is not None:
+        from .segments import segments_document
+
+        doc["segments"] = segments_document(segments)
     return doc
 
 

@@ -221,7 +221,13 @@ class Chain:
         return len(self.states)
 
     def label(self, i: int) -> str:
-        return state_label(self.states[i])
+        return self.labels[i]
+
+    @cached_property
+    def labels(self) -> tuple[str, ...]:
+        """Every state's display label, by chain index (made once: renderers of large chains
+        ask for hundreds of thousands of them)."""
+        return tuple(state_label(s) for s in self.states)
 
     def index(self, state: State) -> int:
         try:

@@ -84,13 +84,22 @@ def exit_states(chain: Chain, top: int | None = None) -> tuple[ExitState, ...]:
     # list, where more sessions end than start) the ends themselves are the floor, so no
     # share is above 100 % and the shares add up to at most 100 %
     total = max(total, float(to_end.sum()), 1.0)
-    out = []
-    for i in chain.observed:
-        if chain.roles[i] == "transient" and to_end[i] > 0:
-            out.append(ExitState(int(i), int(to_end[i]), int(visits[i]), float(to_end[i] / visits[i]),
-                                 float(to_end[i] / total)))
-    out.sort(key=lambda e: (-e.sessions_lost, e.state))
-    return tuple(out[:top] if top else out)
+    # column-wise (10^5 states: 0.05 s instead of 1 s of per-element numpy lookups)
+    obs = np.asarray(chain.observed, dtype=np.int64)
+    roles = chain.roles
+    transient = np.fromiter((roles[i] == "transient" for i in obs.tolist()), dtype=bool, count=obs.size)
+    sel = obs[transient & (to_end[obs] > 0)] if obs.size else obs
+    lost_f = to_end[sel]
+    lost = lost_f.astype(np.int64)
+    order = np.lexsort((sel, -lost))  # most sessions lost first, then by chain index
+    if top:
+        order = order[:top]
+    sel, lost, lost_f = sel[order], lost[order], lost_f[order]
+    vis = np.asarray(visits)[sel]
+    rate = (lost_f / vis).tolist()
+    share = (lost_f / total).tolist()
+    return tuple(ExitState(i, sl, v, r, sh) for i, sl, v, r, sh in
+                 zip(sel.tolist(), lost.tolist(), vis.astype(np.int64).tolist(), rate, share))
 
 
 def goal_unreachable(chain: Chain) -> dict[int, np.ndarray]:

@@ -54,8 +54,9 @@ class Loop:
         return self.open / self.entries if self.entries else None
 
 
-def loops(chain, min_share: float = MIN_TRAP_SHARE) -> tuple[Loop, ...]:
-    """The loops of ``chain`` (built from counts), most open cases first."""
+def loops(chain, min_share: float = MIN_TRAP_SHARE, classes=None) -> tuple[Loop, ...]:
+    """The loops of ``chain`` (built from counts), most open cases first; ``classes`` (its
+    :class:`~tracechain.analyze.classes.ClassesResult`, if already made) saves a second decomposition."""
     from .classes import communicating_classes
     from .stuck_outcome import stuck_map
     from .visits import chain_visits
@@ -68,7 +69,7 @@ def loops(chain, min_share: float = MIN_TRAP_SHARE) -> tuple[Loop, ...]:
     off = 1 if chain.start is not None else 0
     stuck = {k + off for k in stuck_map(c)}
     out = []
-    for cl in communicating_classes(chain).classes:
+    for cl in (classes or communicating_classes(chain)).classes:
         idx = [i for i in cl.states if chain.roles[i] in ("transient",)]
         if not idx or cl.closed:
             continue

@@ -134,3 +134,36 @@ def test_report_html_and_markdown_show_the_same_observed_times(tmp_path, capsys)
         cells = [duration(v) for v in values]
         assert f"<tr><td>{name}</td><td class=num>{n}</td>" + "".join(f"<td class=num>{c}</td>" for c in cells) in h
         assert f"| {name} | {n} | " + " | ".join(cells) + " |" in m
+
+
+def test_seeded_time_to_goal_is_a_sum_of_two_exponential_stays_within_four_standard_errors():
+    # a seeded two-stage job: QUEUED for an exponential time of mean 60 s, then RUNNING for one of mean
+    # 600 s, then DONE. The time from the first event to the goal is the sum of the two stays, a
+    # hypoexponential law with rates a = 1/60, b = 1/600: F(t) = 1 - (b e^(-a t) - a e^(-b t)) / (b - a),
+    # density a b (e^(-b t) - e^(-a t)) / (a - b), mean 660 s (a standard result; from memory). Its
+    # quantiles are solved with scipy.optimize.brentq. Tolerance: 4 standard errors, as above.
+    from scipy.optimize import brentq
+
+    rng = np.random.default_rng(11)
+    n = 3000
+    a, b = 1 / 60.0, 1 / 600.0
+    rows = []
+    for k in range(n):
+        t0 = float(rng.uniform(0, 86400))
+        q = float(rng.exponential(60.0))
+        r = float(rng.exponential(600.0))
+        rows += [(f"j{k:05d}", t0, "QUEUED"), (f"j{k:05d}", t0 + q, "RUNNING"), (f"j{k:05d}", t0 + q + r, "DONE")]
+    (g,) = case_times(_sessions(rows), goals=["DONE"]).to_goal
+    assert g.n == n
+
+    def cdf(t):
+        return 1 - (b * np.exp(-a * t) - a * np.exp(-b * t)) / (b - a)
+
+    def density(t):
+        return a * b * (np.exp(-b * t) - np.exp(-a * t)) / (a - b)
+
+    for p, got in ((0.5, g.median_s), (0.9, g.p90_s)):
+        q = brentq(lambda t: cdf(t) - p, 1e-9, 1e6)
+        assert got == pytest.approx(q, abs=4 * np.sqrt(p * (1 - p) / n) / density(q)), p
+    sd = np.sqrt(60.0 ** 2 + 600.0 ** 2)  # the stays are independent: variances add
+    assert g.mean_s == pytest.approx(660.0, abs=4 * sd / np.sqrt(n))

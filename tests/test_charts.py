@@ -336,3 +336,79 @@ def test_steps_to_goal_distribution_by_hand_and_by_simulation():
     c = steps_to_goal_chart(analyze(ch))
     assert [p["state"] for p in c.points][0] == "2 steps"
     assert c.points[0]["value"] == pytest.approx(f[2])
+
+
+def _timed_rows():
+    """An invented support chat: 30 sessions Open -> Triage -> (Solved | gone), the time to Solved spread
+    over minutes by a seeded draw, so the distribution has several bins."""
+    rng = np.random.default_rng(7)
+    rows, t, times = [], 1_700_000_000, []
+    for k in range(30):
+        gaps = [int(g) for g in rng.integers(20, 400, size=2)]
+        plan = ["Open", "Triage"] + (["Solved"] if k % 5 else [])
+        for ev, dt in zip(plan, [0] + gaps):
+            t += dt
+            rows.append({"session_id": f"c{k}", "timestamp": t, "event": ev})
+        if k % 5:
+            times.append(float(sum(gaps)))
+        t += 10_000
+    return rows, times
+
+
+def test_time_to_goal_chart_against_the_times_in_the_log(tmp_path):
+    """Bars of the clock-time chart (report --cases) against the times to Solved computed here from the rows
+    (first Solved minus the session's first event: the definition, common practice, no source), bin by bin;
+    the sessions it counts against the analysis JSON's time_to_goal; its median against statistics.median."""
+    import statistics
+
+    rows, times = _timed_rows()
+    log = write_jsonl(tmp_path / "chat.jsonl", rows)
+    assert commands_main(["report", str(log), "--goal", "Solved", "--cases", "--min-visits", "1",
+                          "--svg", str(tmp_path / "d.svg"), "--html", str(tmp_path / "r.html")]) == 0
+    assert commands_main(["analyze", str(log), "--goal", "Solved", "--cases", "--min-visits", "1",
+                          "--json", str(tmp_path / "a.json")]) == 0
+    svg = (tmp_path / "d-time-to-goal.svg").read_text()
+    bars = _bars(svg, "time-to-goal")
+    assert len(bars) >= 3
+    doc = json.loads((tmp_path / "a.json").read_text())
+    ttg = {r["name"]: r for r in doc["cases"]["time_to_goal"]}["Solved"]
+    assert ttg["n"] == len(times) == sum(int(a["data-count"]) for a, _ in bars)
+    arr = np.array(times)
+    prev_hi = 0.0
+    for attrs, width in bars:
+        lo = float(attrs["data-from-s"])
+        hi = float(attrs["data-to-s"]) if "data-to-s" in attrs else np.inf
+        assert lo == pytest.approx(prev_hi)  # bins follow each other from 0, no gap
+        prev_hi = hi
+        assert int(attrs["data-count"]) == int(((arr >= lo) & (arr < hi)).sum())
+        assert float(attrs["data-value"]) == pytest.approx(int(attrs["data-count"]) / len(times))
+    ratios = [w / float(a["data-value"]) for a, w in bars if float(a["data-value"]) > 0]
+    assert max(ratios) == pytest.approx(min(ratios), rel=1e-3)
+    assert ttg["median_s"] == pytest.approx(statistics.median(times))
+    # the caption states the median in the chart's unit (rounded to 0.01 of it)
+    text = dom((tmp_path / "r.html").read_text()).find_id("charts").all_text()
+    m = re.search(r"median ([\d.]+) (s|min|h|d),", text)
+    assert m, text
+    unit = {"s": 1, "min": 60, "h": 3600, "d": 86400}[m.group(2)]
+    assert float(m.group(1)) * unit == pytest.approx(statistics.median(times), abs=0.006 * unit)
+
+
+def test_time_to_goal_chart_needs_the_cases(shop):
+    d, out = shop
+    assert not (d / "img" / "d-time-to-goal.svg").exists()
+    assert "--cases adds the distribution of clock time" in out["html"].read_text()
+
+
+def test_time_bins_are_round_and_cover_the_95th_percentile():
+    from tracechain.report.charts import time_bins
+
+    for values, unit in (([3, 5, 9, 40, 70], "s"), ([100, 500, 900, 3000], "min"), ([7200, 40_000, 90_000], "h"),
+                         ([3 * 86400, 10 * 86400], "d")):
+        edges, size, got = time_bins(values)
+        assert got == unit
+        widths = np.diff(edges) / size
+        assert np.allclose(widths, widths[0])
+        lead = widths[0] / 10 ** np.floor(np.log10(widths[0]))
+        assert min(abs(lead - m) for m in (1, 2, 5)) < 1e-9  # a round width: 1, 2 or 5 times a power of ten
+        assert edges[0] == 0 and edges[-1] > np.percentile(values, 95)
+        assert len(edges) - 1 <= 12

@@ -19,10 +19,11 @@ matplotlib is an optional extra (``pip install 'tracechain[charts]'``): without 
 from __future__ import annotations
 
 import io
+import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 
-__all__ = ["Chart", "available", "missing_reason", "report_charts", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
+__all__ = ["Chart", "available", "missing_reason", "report_charts", "time_to_goal_charts", "time_bins", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
 
 CHARTS_EXTRA = "pip install 'tracechain[charts]'"
 INK = "#33475b"  # bars: dark blue-grey
@@ -276,8 +277,85 @@ def steps_to_goal_chart(a) -> Chart | None:
     c = _hbar("Steps to the goal, among sessions that reach it", "share of converting sessions (the chain's "
               "first-passage distribution)", labels, values, texts, "steps-to-goal", points)
     c.notes = ["Steps, not clock time: the counts keep only the mean gap of each transition, so the chain gives "
-               "the distribution of steps; the expected time is in the expected-time section."]
+               "the distribution of steps" + ("; the clock-time distribution is the next chart." if
+                                              getattr(a, "case_times", None) is not None else
+                                              "; --cases adds the distribution of clock time to the goal.")]
     return c
+
+
+_UNITS = ((1.0, "s"), (60.0, "min"), (3600.0, "h"), (86400.0, "d"))
+
+
+def _time_unit(seconds: float) -> tuple[float, str]:
+    """The unit (seconds per unit, name) in which ``seconds`` reads as a number under 120."""
+    for size, name in _UNITS[::-1]:
+        if seconds >= 2 * size:
+            return size, name
+    return _UNITS[0]
+
+
+def _nice_width(span: float, bins: int = 10) -> float:
+    """A bin width of 1, 2 or 5 times a power of ten that cuts ``span`` into about ``bins`` bins."""
+    raw = max(span, 1e-9) / bins
+    mag = 10 ** math.floor(math.log10(raw))
+    return next(m * mag for m in (1, 2, 5, 10) if m * mag >= raw)
+
+
+def time_bins(values, max_bins: int = 12) -> tuple[list[float], float, str]:
+    """Bin edges (seconds, from 0) for a distribution of times, in a unit people read (s, min, h, d)
+    with a round width; the last edge covers the 95th percentile, later times go to one extra bar."""
+    import numpy as np
+
+    v = np.asarray(values, dtype=float)
+    top = float(np.percentile(v, 95, method="linear")) if v.size else 0.0
+    size, unit = _time_unit(max(top, float(np.median(v)) if v.size else 0.0))
+    width = _nice_width(top / size, bins=max_bins - 2) if top > 0 else 1.0
+    k = max(1, min(max_bins, math.floor(top / size / width) + 1))
+    return [j * width * size for j in range(k + 1)], size, unit
+
+
+def _num(x: float) -> str:
+    return f"{x:g}" if abs(x - round(x)) > 1e-9 else f"{round(x)}"
+
+
+def time_to_goal_charts(a, max_goals: int = 3) -> list[Chart]:
+    """The distribution of clock time from a session's first event to its first entry into each goal
+    (the observed times of ``--cases``), one chart per goal with times, most sessions first."""
+    ct = getattr(a, "case_times", None)
+    if ct is None or not getattr(ct, "to_goal_values", None):
+        return []
+    import numpy as np
+
+    goals = sorted((g for g, v in ct.to_goal_values.items() if v), key=lambda g: -len(ct.to_goal_values[g]))
+    summary = {r.name: r for r in ct.to_goal}
+    out = []
+    for k, g in enumerate(goals[:max_goals]):
+        v = np.asarray(ct.to_goal_values[g], dtype=float)
+        edges, size, unit = time_bins(v)
+        counts = [int(((v >= lo) & (v < hi)).sum()) for lo, hi in zip(edges, edges[1:])]
+        late = int((v >= edges[-1]).sum())
+        bounds = list(zip(edges, edges[1:]))
+        labels = [f"{_num(lo / size)}–{_num(hi / size)} {unit}" for lo, hi in bounds]
+        if late:
+            counts.append(late)
+            bounds.append((edges[-1], None))
+            labels.append(f"{_num(edges[-1] / size)} {unit} or more")
+        n = int(v.size)
+        values = [c / n for c in counts]
+        texts = [f"{100 * s:.1f}% · {c:,} sessions" for s, c in zip(values, counts)]
+        points = [{"state": lab, "value": s, "count": c, "from-s": lo, "to-s": hi}
+                  for lab, s, c, (lo, hi) in zip(labels, values, counts, bounds)]
+        name = "time-to-goal" if k == 0 else f"time-to-goal-{k + 1}"
+        c = _hbar(f"Time to {_short(g, 40)} ({n:,} sessions reach it)",
+                  "share of those sessions, by clock time from their first event", labels, values, texts, name, points)
+        r = summary.get(g)
+        med = "" if r is None or r.median_s is None else (f"median {_num(round(r.median_s / size, 2))} {unit}, "
+                                                           f"90th percentile {_num(round(r.p90_s / size, 2))} {unit} "
+                                                           f"(numpy's {ct.method!r} method); ")
+        c.notes = [f"Observed in the sessions (--cases): {med}bins [from, to) of equal width; the last bar holds "
+                   "the times past the 95th percentile's bin."]
+        out.append(c)
+    return out
 
 
 def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[Chart]:
@@ -288,7 +366,7 @@ def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[
         c = make(a, top)
         if c is not None:
             out.append(c)
-    return out
+    return out + time_to_goal_charts(a)
 
 
 def compare_charts(cmp) -> list[Chart]:

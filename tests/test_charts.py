@@ -412,3 +412,45 @@ def test_time_bins_are_round_and_cover_the_95th_percentile():
         assert min(abs(lead - m) for m in (1, 2, 5)) < 1e-9  # a round width: 1, 2 or 5 times a power of ten
         assert edges[0] == 0 and edges[-1] > np.percentile(values, 95)
         assert len(edges) - 1 <= 12
+
+
+def test_steps_chart_against_subsequences_and_the_beta_quantiles(tmp_path, capsys):
+    """``steps --svg``: each bar's reached count against a plain subsequence test over the hand-made plans
+    (an iterator consumed in order: the definition of reaching steps in order, common practice, no
+    source), its value against count / sessions, and its bracket against scipy's Beta(x + ½, n − x + ½)
+    quantiles (the Jeffreys interval, Brown, Cai and DasGupta 2001, from memory)."""
+    from scipy.stats import beta
+
+    rows, t = [], 1_700_000_000
+    plans = [["Home", "Item", "Cart", "Paid"]] * 6 + [["Home", "Help", "Item", "Cart"]] * 4 + [["Item", "Home"]] * 5 \
+        + [["Home", "Item"]] * 7 + [["Home"]] * 8
+    for k, plan in enumerate(plans):
+        for ev in plan:
+            rows.append({"session_id": f"s{k}", "timestamp": t, "event": ev})
+            t += 9
+        t += 5000
+    log = write_jsonl(tmp_path / "shop.jsonl", rows)
+    steps = ["Home", "Item", "Cart", "Paid"]
+    assert commands_main(["steps", str(log), "--steps", ",".join(steps), "--svg", str(tmp_path / "s.svg"),
+                          "--png", str(tmp_path / "s.png"), "--level", "0.9"]) == 0
+    assert "drop-off" in capsys.readouterr().out  # the table is still printed
+    bars = _bars((tmp_path / "s.svg").read_text(), "steps")
+
+    def reached(plan, k):
+        it = iter(plan)
+        return all(s in it for s in steps[:k])
+
+    want = [sum(reached(p, k) for p in plans) for k in range(1, len(steps) + 1)]
+    assert [int(a["data-count"]) for a, _ in bars] == want == [30, 17, 10, 6]  # and by hand: Item before Home is not reached
+    bases = [len(plans)] + want[:-1]
+    for (attrs, _), x, n in zip(bars, want, bases):
+        assert float(attrs["data-value"]) == pytest.approx(x / len(plans))
+        assert float(attrs["data-low"]) == pytest.approx(beta.ppf(0.05, x + 0.5, n - x + 0.5) if x else 0.0)
+        assert float(attrs["data-high"]) == pytest.approx(beta.ppf(0.95, x + 0.5, n - x + 0.5) if x < n else 1.0)
+    ratios = [w / float(a["data-value"]) for a, w in bars]
+    assert max(ratios) == pytest.approx(min(ratios), rel=1e-3)
+    img = decode_png((tmp_path / "s.png").read_bytes())
+    assert len(np.unique(img.reshape(-1, img.shape[2]), axis=0)) > 8  # drawn, not blank
+    # the chart alone on standard output: no table mixed into the SVG
+    assert commands_main(["steps", str(log), "--steps", "Home,Item", "--svg", "-"]) == 0
+    ET.fromstring(capsys.readouterr().out.encode())

@@ -33,6 +33,9 @@ def register(subparsers, _add_input_options) -> None:
     p.add_argument("--strict-order", action="store_true",
                    help="no other state between consecutive steps (repeats of a step are allowed)")
     add_level_option(p)
+    for fmt in ("svg", "png", "pdf"):
+        p.add_argument(f"--{fmt}", metavar="FILE",
+                       help=f"also draw the steps as bars in {fmt.upper()} (needs the charts extra, matplotlib)")
     p.set_defaults(handler=cmd_steps)
 
 
@@ -94,5 +97,24 @@ def cmd_steps(args: argparse.Namespace) -> int:
         raise UsageError("no sessions in the input")
     res = steps_analysis(sessions, steps, strict=args.strict_order, within=args.within, level=args.level,
                          goals=goals, terminal=terminal, smoothing=args.smoothing)
-    sys.stdout.write("\n".join(steps_lines(res)) + "\n")
+    if "-" not in (args.svg, args.png, args.pdf):  # the chart on standard output is alone there
+        sys.stdout.write("\n".join(steps_lines(res)) + "\n")
+    _write_chart(res, args)
     return 0
+
+
+def _write_chart(res, args: argparse.Namespace) -> None:
+    """The steps chart to each of ``--svg``/``--png``/``--pdf`` that is given."""
+    wanted = {fmt: getattr(args, fmt) for fmt in ("svg", "png", "pdf") if getattr(args, fmt, None)}
+    if not wanted:
+        return
+    from ..report.charts import available, missing_reason, steps_chart
+    from ..report.writer import write_output
+
+    if not available():
+        raise UsageError(f"--{next(iter(wanted))}: {missing_reason()}")
+    chart = steps_chart(res)
+    for fmt, path in wanted.items():
+        written = write_output(path, chart.render(fmt))
+        if written != "-":
+            print(f"wrote {written}", file=sys.stderr)

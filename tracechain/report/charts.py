@@ -23,7 +23,7 @@ import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 
-__all__ = ["Chart", "available", "missing_reason", "report_charts", "time_to_goal_charts", "time_bins", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
+__all__ = ["Chart", "available", "missing_reason", "report_charts", "time_to_goal_charts", "time_bins", "steps_chart", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
 
 CHARTS_EXTRA = "pip install 'tracechain[charts]'"
 INK = "#33475b"  # bars: dark blue-grey
@@ -356,6 +356,31 @@ def time_to_goal_charts(a, max_goals: int = 3) -> list[Chart]:
                    "the times past the 95th percentile's bin."]
         out.append(c)
     return out
+
+
+def steps_chart(res) -> Chart:
+    """The ordered steps (a :class:`~tracechain.analyze.steps.StepsResult`) as bars: the share of all
+    sessions that reach each step in order, with the step-to-step share, its interval and the chain's
+    prediction in each bar's label."""
+    n = res.sessions or 1
+    labels, values, texts, points = [], [], [], []
+    for i, r in enumerate(res.rows):
+        v = r.reached / n
+        of = "of all sessions" if i == 0 else "of the step before"
+        share = "" if r.share is None else f" · {100 * r.share:.0f}% {of}"
+        iv = "" if r.share_low is None else f" [{100 * r.share_low:.0f}–{100 * r.share_high:.0f}%]"
+        model = "" if r.model is None else f" · model {100 * r.model:.0f}%"
+        labels.append(f"{i + 1}. {r.step}")
+        values.append(v)
+        texts.append(f"{r.reached:,} sessions{share}{iv}{model}")
+        points.append({"state": r.step, "value": v, "count": int(r.reached), "share": r.share,
+                       "low": r.share_low, "high": r.share_high, "model": r.model})
+    order = "strict order" if res.strict else "in order"
+    c = _hbar(f"Ordered steps: sessions reaching each step {order} ({res.sessions:,} sessions)",
+              "share of all sessions that reach the step", labels, values, texts, "steps", points, xlim=(0, 1))
+    c.notes = [f"Brackets: the {100 * res.level:g}% Jeffreys interval of the share of the step before; model: the "
+               "fitted chain's probability of entering the step from the step before."]
+    return c
 
 
 def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[Chart]:

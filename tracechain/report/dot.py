@@ -43,9 +43,11 @@ labels; node ids are our own (``n0``, ``n1``).
 
 :func:`render_diff_dot` draws a comparison of two chains (see
 :mod:`tracechain.analyze.compare`) in the same vocabulary: a significant increase is a
-thick solid blue edge with ▲, a significant decrease a thick dashed vermillion edge with
-▼, a transition seen on one side only is dotted (◆ new, ◇ gone), and the rest are thin
-and grey.
+thick solid edge with ▲, a significant decrease a thick dashed edge with ▼, warm vermillion
+when it is worse (more exits, fewer goals) and cool blue when better, with the word in the
+label; a transition seen on one side only is dotted (◆ new, ◇ gone), and the rest are thin
+and grey. Its review layout (the default; :func:`fit_diff_dot` picks the direction for a page)
+draws the exits as a line in each state instead of edges to an end box.
 """
 
 from __future__ import annotations
@@ -62,7 +64,7 @@ from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
 __all__ = ["first_arrival_median", "FIT_PRESETS", "fit_diagram", "measure_layout", "legible_px", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
-           "resolve_state", "FORMATS"]
+           "resolve_state", "FORMATS", "fit_diff_dot"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
 
@@ -1053,7 +1055,8 @@ def diff_verdict(cmp, e) -> str | None:
     return None
 
 
-def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, states=None) -> str:
+def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, states=None,
+                    layout: str = "review", direction: str = "LR") -> str:
     """A diagram of a :class:`~tracechain.analyze.compare.Comparison`.
 
     Every state of either side is drawn once; an edge is drawn for every transition seen
@@ -1064,7 +1067,16 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
     ``min_edge_share`` of all transitions on both sides are not drawn (and counted in the
     caption) unless they are styled as significant. ``states`` (chain indices), when given,
     draws only those states and the edges between them (the caption says how many were left out).
+
+    ``layout="review"`` (the default) draws no end box: each state's exits are a line in the state,
+    ``⤓ end A → B``, and a significant change of them colours the state's outline (warm vermillion:
+    more exits, worse; cool blue: fewer, better; the word is in the line); goals and terminals share
+    the last rank; type is the page preset's; a drawn state that no drawn edge reaches gets a dotted
+    edge from the start (a path through states not drawn). ``layout="classic"`` draws the end box.
     """
+    if layout not in ("classic", "review"):
+        raise AnalysisError(f"layout must be 'classic' or 'review', not {layout!r}")
+    review = layout == "review"
     labels = cmp.labels
     keep = None if states is None else set(states)
     n = len(cmp.states)
@@ -1085,6 +1097,10 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
         if hidden:
             cap.append(f"focused on the states that changed and their neighbours; {hidden} other "
                        f"state{'s' if hidden != 1 else ''} not drawn")
+    exits_of = {}
+    if review:  # exits become a line in their state (also where the focus leaves the end out)
+        exits_of = {e.source: e for e in cmp.edges if cmp.roles[e.target] == "end"}
+        edges = [e for e in edges if cmp.roles[e.target] != "end"]
     for e in edges:
         if e.change in ("up", "down"):
             shown_edges.append(e)
@@ -1095,11 +1111,13 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
     if skipped:
         cap.append(f"{skipped} rare transition{'s' if skipped != 1 else ''} not drawn "
                    f"(under {100 * min_edge_share:g}% of all transitions on both sides)")
-    out.append("  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t",
-                                   label=_label(*cap, limit=200), newrank="true", ranksep=0.55) + ";")
-    out.append("  node " + _attrs(fontname="Helvetica", fontsize=10, shape="box", style="rounded",
+    sizes = FIT_PRESETS["page"] if review else dict(caption=11, node=10, edge=9)
+    out.append("  graph " + _attrs(rankdir=direction, fontname="Helvetica", fontsize=sizes["caption"], labelloc="t",
+                                   label=_REVIEW_LABEL if review else _label(*cap, limit=200), newrank="true",
+                                   ranksep=0.55) + ";")
+    out.append("  node " + _attrs(fontname="Helvetica", fontsize=sizes["node"], shape="box", style="rounded",
                                   color="#666666") + ";")
-    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=9, color=_MUTED, fontcolor="#777777",
+    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=sizes["edge"], color=_MUTED, fontcolor="#777777",
                                   arrowsize=0.7) + ";")
     tests = {t.state: t for t in cmp.tests}
     present = set()
@@ -1109,11 +1127,12 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
         if keep is not None and i not in keep:
             continue
         if role == "start":
-            out.append(f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true",
-                                           style="solid") + ";")
+            size = dict(margin=0.02) if review else dict(width=0.5, fixedsize="true")
+            out.append(f"  n{i} " + _attrs(shape="circle", label="start", style="solid", **size) + ";")
             continue
         if role == "end":
-            out.append(f"  n{i} " + _attrs(shape="box", style="dashed", label="end") + ";")
+            if not review:
+                out.append(f"  n{i} " + _attrs(shape="box", style="dashed", label="end") + ";")
             continue
         kw: dict = {}
         lines = [name]
@@ -1138,6 +1157,15 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
             kw.update(penwidth=2.5, color="#000000")
             present.add("changed")
         lines.append(f"{va:,} → {vb:,} visits")
+        ex = exits_of.get(i)
+        if ex is not None:
+            verdict = diff_verdict(cmp, ex)
+            mark = {"up": "▲ ", "down": "▼ "}.get(ex.change, "")
+            lines.append(f"{mark}⤓ end {_p(ex.p_a)} → {_p(ex.p_b)}" + (f" ({verdict})" if verdict else ""))
+            if verdict:
+                kw.update(color={"worse": _WORSE, "better": _BETTER}[verdict], penwidth=3)
+                present.add(f"exit_{verdict}")
+            present.add("exit_line")
         out.append(f"  n{i} " + _attrs(label=_label(*lines), **kw) + ";")
     for e in shown_edges:
         pa_, pb_ = e.p_a, e.p_b
@@ -1174,11 +1202,47 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
     for lv in sorted(by_level):
         out.append("  { rank=same; " + " ".join(f"n{i};" for i in sorted(by_level[lv])) + " }")
     end = next((i for i in range(n) if cmp.roles[i] == "end"), None)
-    if end is not None and big:
+    if end is not None and big and not review:
         out.append(f"  {{ rank=max; n{end}; }}")
-    out.extend(_diff_legend(present))
+    if review:
+        drawn = [i for i in range(n) if (keep is None or i in keep) and cmp.roles[i] != "end"]
+        reached = {e.target for e in shown_edges if e.source != e.target}
+        if start is not None and start in drawn:
+            for i in drawn:
+                if i != start and i not in reached:
+                    out.append(f"  n{start} -> n{i} " + _attrs(style="dotted", color=_END_EDGE, label="⋯",
+                                                               fontcolor="#555555") + ";")
+                    present.add("shortcut")
+        last = [i for i in drawn if cmp.roles[i] in ("goal", "terminal")]
+        if last:
+            out.append("  { rank=max; " + " ".join(f"n{i};" for i in last) + " }")
+    if review:  # caption and legend in one strip above the diagram, as in the review layout
+        import textwrap
+
+        lines = [part for c in cap for part in textwrap.wrap(c, sizes["wrap"])]
+        label = _caption_table(lines, _diff_legend_rows(present), caption_size=sizes["caption"],
+                               legend_size=sizes["edge"], per_row=3)
+        out = [ln.replace(_REVIEW_LABEL.text, label) for ln in out]
+    else:
+        out.extend(_diff_legend(present))
     out.append("}")
     return "\n".join(out) + "\n"
+
+
+def fit_diff_dot(cmp, fit: str = "page", **kw) -> str:
+    """:func:`render_diff_dot` (review layout) with its ranks left to right or top to bottom,
+    whichever shows the smallest text larger at the preset's target (measured on Graphviz's
+    layout, as :func:`fit_diagram` does); without Graphviz, left to right unmeasured."""
+    best, best_px = None, -1.0
+    for direction in ("LR", "TB"):
+        text = render_diff_dot(cmp, direction=direction, **kw)
+        try:
+            px = legible_px(measure_layout(text), fit)
+        except RenderError:
+            return text
+        if px > best_px + 1e-9:
+            best, best_px = text, px
+    return best
 
 
 _WORSE = "#d55e00"  # Okabe-Ito vermillion: warm, a change for the worse
@@ -1189,7 +1253,12 @@ def _p(x: float | None) -> str:
     return "–" if x is None else f"{100 * x:.0f}%"
 
 
-def _diff_legend(present: set[str]) -> list[str]:
+def _diff_legend(present: set[str], fontsize: int = 9) -> list[str]:
+    return [_legend_node(_diff_legend_rows(present), fontsize)]
+
+
+def _diff_legend_rows(present: set[str]) -> list[str]:
+    """The comparison legend's (sample, meaning) cell pairs for what ``present`` says is drawn."""
     rows = [_line("───▶", _MUTED) + _desc("P(A) → P(B), no significant change")]
     if "up" in present:
         rows.append(_line("━━━▶", "#000000") + _desc("▲ significant increase: thick solid"))
@@ -1207,7 +1276,15 @@ def _diff_legend(present: set[str]) -> list[str]:
         rows.append(_cell("state", style="rounded", border=3) + _desc("Δ exits changed: thick outline"))
     if "new_state" in present or "gone_state" in present:
         rows.append(_cell("state", style="dotted") + _desc("◆ new / ◇ gone state: dotted outline"))
-    return [_legend_node(rows)]
+    if "exit_line" in present:
+        rows.append(_cell("⤓ end") + _desc("share of the state's visits that end there, A → B"))
+    if "exit_worse" in present:
+        rows.append(_cell("state", style="rounded", border=3, color=_WORSE) + _desc("▲ more end there (worse): warm outline"))
+    if "exit_better" in present:
+        rows.append(_cell("state", style="rounded", border=3, color=_BETTER) + _desc("▼ fewer end there (better): cool outline"))
+    if "shortcut" in present:
+        rows.append(_line("┈┈┈▶", _END_EDGE) + _desc("⋯ a path through states not drawn: dotted"))
+    return rows
 
 
 def render_image(dot_text: str, fmt: str) -> bytes:

@@ -922,11 +922,13 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         clean = sanitize_svg(diff_svg, "Comparison diagram") if diff_svg is not None else None
         out.append(Section("compare-diagram", "What changed, drawn", [Figure(
             clean,
-            ["Drawn: the states whose exits changed and their neighbours. Edges in those states: a rise is thick "
-             "and solid with ▲, a fall thick and dashed with ▼; a change for the worse (more exits into the end, "
-             "fewer transitions into a goal) is warm vermillion and says '(worse)', one for the better cool blue "
-             "and says '(better)', other changes black; a transition seen on one side only is dotted (◆ only in "
-             "B, ◇ only in A); the rest are thin and grey. Labels: probability in A → probability in B."],
+            ["Drawn: the states whose exits changed and their neighbours. Each state says how many of its visits "
+             "end there (⤓ end A → B); a significant rise of those outlines the state in warm vermillion and says "
+             "'(worse)', a fall in cool blue and says '(better)'. Edges in changed states: a rise is thick "
+             "and solid with ▲, a fall thick and dashed with ▼; fewer transitions into a goal are warm "
+             "vermillion '(worse)', more cool blue '(better)', other changes black; a transition seen on one side "
+             "only is dotted (◆ only in B, ◇ only in A); a dotted ⋯ edge from the start stands for a path through "
+             "states not drawn; the rest are thin and grey. Labels: probability in A → probability in B."],
             "Comparison diagram", diff_missing)]))
     trows = []
     for t in sorted(cmp.tests, key=lambda t: (not t.significant, t.q_value if t.q_value is not None else 2.0)):

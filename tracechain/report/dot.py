@@ -64,7 +64,7 @@ from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
 __all__ = ["first_arrival_median", "FIT_PRESETS", "fit_diagram", "measure_layout", "legible_px", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
-           "resolve_state", "FORMATS", "fit_diff_dot"]
+           "resolve_state", "FORMATS", "fit_diff_dot", "title_hits"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
 
@@ -273,8 +273,12 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
                   radius: int = 1, rank_by_distance: bool | str = "auto", max_edges: int | None = None,
                   end_edges: str = "auto", layout: str = "review", fit: str | None = None,
                   font_scale: float = 1.0, bare_edges: frozenset = frozenset(), extra_notes: tuple = (),
-                  direction: str | None = None) -> Diagram:
+                  direction: str | None = None, title_places: dict | None = None) -> Diagram:
     """The diagram of an analysis, with what it left out.
+
+    ``title_places`` maps a group frame's name (``cluster_group<k>``) to where its title goes,
+    ``(labelloc, labeljust)`` such as ``("t", "l")`` (default: top centre); :func:`fit_diagram`
+    moves a title that a drawn edge runs through.
 
     An edge is *rare*, and hidden, when it carries less than ``min_edge_share`` of all
     transitions and also less than ``min_edge_prob`` of its source state's exits (so a small
@@ -651,8 +655,9 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         present.add("group")
     for gk, gname in enumerate(group_names):
         out.append(f"  subgraph cluster_group{gk} {{")
+        loc, just = (title_places or {}).get(f"cluster_group{gk}", (None, None))
         out.append("    graph " + _attrs(label=_label(gname, limit=40), style="rounded", color=_GROUP_LINE,
-                                         fontcolor="#333333", penwidth=1) + ";")
+                                         fontcolor="#333333", penwidth=1, labelloc=loc, labeljust=just) + ";")
         for k, members in trap_blocks:
             if members and all(group_of.get(s) == gname for s in members):
                 out.extend(trap_cluster(k, members, "    "))
@@ -863,7 +868,54 @@ def measure_layout(dot_text: str) -> dict:
     g = json.loads(render_image(dot_text, "json"))
     unplaced = [e.get("id") for e in g.get("edges", [])
                 if e.get("xlabel") and not any(k in e for k in ("_xldraw_", "_ldraw_"))]
-    return dict(width=vb[2], height=vb[3], min_font=min(sizes, default=0.0), unplaced=unplaced, svg=svg)
+    return dict(width=vb[2], height=vb[3], min_font=min(sizes, default=0.0), unplaced=unplaced, svg=svg,
+                title_hits=title_hits(g))
+
+
+def title_hits(g: dict) -> dict[str, int]:
+    """Group frame (``cluster_group<k>``) -> how many drawn edges run through its title, on
+    Graphviz's ``-Tjson`` layout: each edge's Bézier curve (xdot ``b`` operation, sampled), widened
+    by half its pen width, against the title's text box (``T`` operation: baseline point, width,
+    alignment; 0.2 em below the baseline to 0.8 em above)."""
+    boxes = {}
+    for o in g.get("objects", []):
+        if not str(o.get("name", "")).startswith("cluster_group"):
+            continue
+        size = 14.0
+        for op in o.get("_ldraw_", []):
+            if op["op"] == "F":
+                size = float(op["size"])
+            elif op["op"] == "T":
+                x, y = op["pt"]
+                w = float(op["width"])
+                x0 = {"c": x - w / 2, "r": x - w}.get(op["align"], x)
+                boxes[o["name"]] = (x0, y - 0.2 * size, x0 + w, y + 0.8 * size)
+    hits = {name: 0 for name in boxes}
+    if not boxes:
+        return hits
+    t = np.linspace(0.0, 1.0, 17)[:, None]
+    for e in g.get("edges", []):
+        pen = 1.0
+        pts = []
+        for op in e.get("_draw_", []):
+            if op["op"] == "S" and op.get("style", "").startswith("setlinewidth("):
+                pen = float(op["style"][13:-1])
+            elif op["op"] in ("b", "B"):
+                P = np.asarray(op["points"], dtype=float)
+                for k in range(0, len(P) - 3, 3):
+                    p0, p1, p2, p3 = P[k:k + 4]
+                    pts.append((1 - t) ** 3 * p0 + 3 * (1 - t) ** 2 * t * p1 + 3 * (1 - t) * t ** 2 * p2 + t ** 3 * p3)
+        if not pts:
+            continue
+        xy = np.vstack(pts)
+        for name, (x0, y0, x1, y1) in boxes.items():
+            r = pen / 2
+            if np.any((xy[:, 0] >= x0 - r) & (xy[:, 0] <= x1 + r) & (xy[:, 1] >= y0 - r) & (xy[:, 1] <= y1 + r)):
+                hits[name] += 1
+    return hits
+
+
+_TITLE_PLACES = (("t", "l"), ("t", "r"), ("b", "l"), ("b", "r"))
 
 
 def legible_px(m: dict, fit: str) -> float:
@@ -930,6 +982,21 @@ def fit_diagram(a: Analysis, fit: str, **kw) -> Diagram:
         d = build_diagram(a, fit=fit, font_scale=scale, bare_edges=frozenset(bare), extra_notes=tuple(notes),
                           **kw, **({"max_states": max_states} if max_states else {}))
         m = measure_layout(d.dot)
+    if any(m["title_hits"].values()):
+        # a frame's title that an edge runs through moves to the corner (top or bottom, left or
+        # right) where the fewest edges run through it; kept only if that lowers the count
+        again = dict(kw, fit=fit, font_scale=scale, bare_edges=frozenset(bare), extra_notes=tuple(notes),
+                     **({"max_states": max_states} if max_states else {}))
+        tried = {place: measure_layout(build_diagram(a, title_places={c: place for c in m["title_hits"]},
+                                                     **again).dot)["title_hits"] for place in _TITLE_PLACES}
+        choice = {c: min([(None, None), *_TITLE_PLACES],
+                         key=lambda p: (m if p == (None, None) else {"title_hits": tried[p]})["title_hits"].get(c, 0))
+                  for c in m["title_hits"]}
+        d2 = build_diagram(a, title_places=choice, **again)
+        m2 = measure_layout(d2.dot)
+        if sum(m2["title_hits"].values()) < sum(m["title_hits"].values()) and not m2["unplaced"] \
+                and legible_px(m2, fit) >= min(want, legible_px(m, fit)) - 1e-9:
+            d = d2
     return d
 
 

@@ -7,8 +7,9 @@ every SVG text of the diagram and chart sections, the type size the browser show
 font size times the scale of its screen transform, SVG 1.1 getScreenCTM) and its box
 (getBoundingClientRect, CSSOM View), and writes them into its DOM, which --dump-dom prints.
 Checked there: no diagram text under the page preset's minimum (FIT_PRESETS["page"]["min_px"],
-10 px), no chart text under 8 px, and no two diagram texts whose boxes overlap by more than a
-sliver (a quarter of the smaller box; neighbouring lines of one label touch). The controls show
+10 px), no chart text under 8 px nor outside its image (cut off), and no two diagram texts whose
+boxes overlap by more than a sliver (a quarter of the smaller box; neighbouring lines of one label
+touch). The controls show
 that the checks can fail: the same diagram squeezed into 300 px is under the minimum, and two
 texts placed on one another overlap. Skipped only without /usr/bin/chromium.
 """
@@ -45,8 +46,9 @@ window.addEventListener("load", function () {
       var fs = parseFloat(doc.defaultView.getComputedStyle(t).fontSize), m = t.getScreenCTM();
       var r = t.getBoundingClientRect();
       if (!t.textContent.trim() || r.width === 0) return;
+      var s = t.ownerSVGElement.getBoundingClientRect();
       out[id].push({text: t.textContent, px: fs * Math.sqrt(Math.abs(m.a * m.d - m.b * m.c)),
-                    box: [r.left, r.top, r.right, r.bottom]});
+                    box: [r.left, r.top, r.right, r.bottom], svg: [s.left, s.top, s.right, s.bottom]});
     });
   });
   document.getElementById("out").textContent = JSON.stringify(out);
@@ -114,6 +116,15 @@ def test_chart_type_in_the_browser(pages, page, section, width):
     texts = pages[1][(page, width)][section]
     assert len(texts) >= 5
     assert min(t["px"] for t in texts) >= 8
+    # every text inside its own image (a text that lost its placement is drawn at the top-left corner,
+    # half of it above the image, where it is cut off)
+    outside = [t["text"] for t in texts if not _inside(t["box"], t["svg"])]
+    assert outside == []
+
+
+def _inside(box, frame, tol: float = 1.0) -> bool:
+    return (box[0] >= frame[0] - tol and box[1] >= frame[1] - tol and box[2] <= frame[2] + tol
+            and box[3] <= frame[3] + tol)
 
 
 def test_the_checks_can_fail(pages):
@@ -121,5 +132,6 @@ def test_the_checks_can_fail(pages):
     # the same report squeezed into a 300 px wide window: the diagram's type falls under the minimum
     small = _measure(tmp, "r.html", 300, "narrow")["diagram"]
     assert min(t["px"] for t in small) < FIT_PRESETS["page"]["min_px"]
+    assert not _inside([5, -6, 60, 8], [0, 0, 600, 400])  # a title drawn at the corner, half above the image
     a = {"text": "a", "box": [0, 0, 40, 12]}
     assert _overlaps([a, {"text": "b", "box": [5, 2, 45, 14]}]) and not _overlaps([a, {"text": "c", "box": [0, 12, 40, 24]}])

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import io
 import math
+import textwrap
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 
@@ -127,7 +128,8 @@ def _hbar(title: str, xlabel: str, labels: list[str], values: list[float], texts
         ax.errorbar(values, ys, xerr=[lo, hi], fmt="none", ecolor="black", capsize=4, elinewidth=1.2)
     ax.set_yticks(ys, [_short(x) for x in labels], fontsize=12)
     ax.set_xlabel(xlabel, fontsize=12)
-    ax.set_title(_short(title, 120), fontsize=14, loc="left")
+    # wrapped: a long title would run past the figure's right edge and be cut off there
+    ax.set_title("\n".join(textwrap.wrap(_short(title, 120), 64)), fontsize=14, loc="left")
     ax.tick_params(axis="x", labelsize=11)
     ax.spines[["top", "right"]].set_visible(False)
     if xlim:

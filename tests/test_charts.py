@@ -454,3 +454,30 @@ def test_steps_chart_against_subsequences_and_the_beta_quantiles(tmp_path, capsy
     # the chart alone on standard output: no table mixed into the SVG
     assert commands_main(["steps", str(log), "--steps", "Home,Item", "--svg", "-"]) == 0
     ET.fromstring(capsys.readouterr().out.encode())
+
+
+def test_compare_exit_change_chart_by_hand_and_against_scipy(tmp_path):
+    """The per-state change in the share of exits that end the session: values by hand on the invented
+    two-week shop; the interval of Cart's change against an independent Monte Carlo of the two Beta
+    marginals of the Dirichlet posterior (scipy.stats.beta, 400,000 draws; the aggregation property
+    of the Dirichlet, common practice, no source); a state that always ends (Archive) has no change."""
+    from scipy.stats import beta
+
+    pa, pb = _compare_logs(tmp_path)
+    html = tmp_path / "c.html"
+    assert commands_main(["compare", str(pa), str(pb), "--goal", "Paid", "--html", str(html), "--draws", "4000",
+                          "-q"]) == 0
+    marks = {n.attrs["data-state"]: n.attrs for n in dom(html.read_text()).find_id("compare-charts").iter()
+             if "data-clear" in n.attrs}
+    # by hand: of the 150 Cart visits a side (k not 3 mod 4), before 50 end there (k = 1 mod 4), after 120
+    # (all but the 30 multiples of 5)
+    cart = marks["Cart"]
+    assert float(cart["data-value"]) == pytest.approx(120 / 150 - 50 / 150)
+    assert cart["data-direction"] == "worse" and cart["data-clear"] == "yes"
+    rng = np.random.default_rng(1)
+    d = beta.rvs(120.5, 30.5, size=400_000, random_state=rng) - beta.rvs(50.5, 100.5, size=400_000, random_state=rng)
+    assert float(cart["data-low"]) == pytest.approx(np.quantile(d, 0.025), abs=0.012)
+    assert float(cart["data-high"]) == pytest.approx(np.quantile(d, 0.975), abs=0.012)
+    arch = marks["Archive"]
+    assert float(arch["data-value"]) == 0 and float(arch["data-low"]) == 0 == float(arch["data-high"])
+    assert arch["data-clear"] == "no"

@@ -24,7 +24,7 @@ import textwrap
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 
-__all__ = ["Chart", "available", "missing_reason", "report_charts", "time_to_goal_charts", "time_bins", "steps_chart", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
+__all__ = ["Chart", "available", "missing_reason", "report_charts", "time_to_goal_charts", "time_bins", "steps_chart", "exit_change_chart", "compare_charts", "CHARTS_EXTRA", "inline_svg"]
 
 CHARTS_EXTRA = "pip install 'tracechain[charts]'"
 INK = "#33475b"  # bars: dark blue-grey
@@ -396,6 +396,91 @@ def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[
     return out + time_to_goal_charts(a)
 
 
+def exit_change_intervals(cmp) -> dict:
+    """State index -> (share A, share B, change B − A, low, high): the share of the state's exits
+    that end the session on each side, and the central ``cmp.level`` interval of the change over
+    ``cmp.draws`` seeded draws of each side's posterior. A row's Dirichlet posterior (counts +
+    ``cmp.prior`` on the observed successors, as :mod:`tracechain.analyze.compare` draws it) has
+    the end cell's marginal Beta(x + prior, n − x + (k − 1) prior), k the successors seen (the
+    aggregation property of the Dirichlet distribution, common practice, no source)."""
+    import numpy as np
+
+    end = [i for i, r in enumerate(cmp.roles) if r == "end"]
+    if not end:
+        return {}
+    rows: dict[int, dict] = {}
+    for e in cmp.edges:
+        r = rows.setdefault(e.source, {"na": 0, "nb": 0, "xa": 0, "xb": 0, "ka": 0, "kb": 0})
+        r["na"] += e.count_a
+        r["nb"] += e.count_b
+        r["ka"] += e.count_a > 0
+        r["kb"] += e.count_b > 0
+        if e.target == end[0]:
+            r["xa"], r["xb"] = e.count_a, e.count_b
+    rng = np.random.default_rng(cmp.seed)
+    lo_q, hi_q = (1 - cmp.level) / 2, 1 - (1 - cmp.level) / 2
+    out = {}
+    for i in sorted(rows):
+        r = rows[i]
+        if cmp.roles[i] == "start" or not r["na"] or not r["nb"] or not (r["xa"] or r["xb"]):
+            continue
+        da = _end_draws(r["xa"], r["na"], r["ka"], cmp.prior, cmp.draws, rng)
+        db = _end_draws(r["xb"], r["nb"], r["kb"], cmp.prior, cmp.draws, rng)
+        d = db - da
+        pa, pb = r["xa"] / r["na"], r["xb"] / r["nb"]
+        out[i] = (pa, pb, pb - pa, float(np.quantile(d, lo_q)), float(np.quantile(d, hi_q)))
+    return out
+
+
+def _end_draws(x: int, n: int, k: int, prior: float, draws: int, rng):
+    """Draws of the end cell's share under the row's Dirichlet posterior on its ``k`` observed
+    successors: Beta(x + prior, n − x + (k − 1) prior); 0 when the end was not observed (not a
+    successor), 1 when it is the only one."""
+    import numpy as np
+
+    if x == 0:
+        return np.zeros(draws)
+    b = (n - x) + (k - 1) * prior
+    if b <= 0:
+        return np.ones(draws)
+    return rng.beta(x + prior, b, draws)
+
+
+def exit_change_chart(cmp, top: int = 15) -> Chart | None:
+    """Per state: the change B − A of the share of its exits that end the session, with intervals;
+    a rise (more sessions lost there) is worse: warm, hatched, ▲; a fall better: cool, dotted, ▼;
+    a change whose interval holds 0 is light grey and says so."""
+    iv = exit_change_intervals(cmp)
+    if not iv:
+        return None
+    A, B = cmp.names
+    order = sorted(iv, key=lambda i: -abs(iv[i][2]))[:top]
+    labels, values, lows, highs, texts, colors, hatches, points = [], [], [], [], [], [], [], []
+    for i in order:
+        pa, pb, d, lo, hi = iv[i]
+        clear = lo > 0 or hi < 0
+        word = ("worse" if d > 0 else "better") if d != 0 else "no change"
+        sign = "▲" if d > 0 else ("▼" if d < 0 else "=")
+        labels.append(cmp.labels[i])
+        values.append(100 * d)
+        lows.append(100 * lo)
+        highs.append(100 * hi)
+        texts.append(f"{sign} {100 * d:+.1f} ({100 * pa:.0f}% → {100 * pb:.0f}%, {word}"
+                     + ("" if clear else "; interval holds 0") + ")")
+        colors.append((WORSE if d > 0 else BETTER) if clear else "#d9d9d9")
+        hatches.append(("//" if d > 0 else "..") if clear else None)
+        points.append({"state": cmp.labels[i], "value": float(d), "low": lo, "high": hi, "direction": word,
+                       "clear": "yes" if clear else "no"})
+    c = _hbar(f"Per state: change in the share of exits that end the session, {_short(B, 20)} − {_short(A, 20)}",
+              "change in points (percent of the state's exits)", labels, values, texts, "compare-exits", points,
+              lows=lows, highs=highs, colors=colors, hatches=hatches)
+    c.figure.axes[0].axvline(0, color="black", linewidth=1)
+    c.notes = [f"Whiskers: {100 * cmp.level:g}% intervals of the change ({cmp.draws:,} seeded draws of each side's "
+               "Dirichlet posterior). Warm with // hatching: more sessions end there (worse); cool with dots: fewer "
+               "(better); light grey: the interval holds 0."]
+    return c
+
+
 def compare_charts(cmp) -> list[Chart]:
     """The comparison: change in conversion and steps with intervals; per-state exit shift."""
     out = []
@@ -424,6 +509,9 @@ def compare_charts(cmp) -> list[Chart]:
         c.figure.axes[0].axvline(0, color="black", linewidth=1)
         c.notes = ["Warm vermillion with // hatching: worse (less conversion, more steps); cool blue with dots: "
                    "better; the sign and the word are in each bar's label. Whiskers: the interval of the change."]
+        out.append(c)
+    c = exit_change_chart(cmp)
+    if c is not None:
         out.append(c)
     tested = [t for t in cmp.tests if t.tvd is not None]
     tested.sort(key=lambda t: (not t.significant, -(t.tvd or 0)))

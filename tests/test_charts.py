@@ -481,3 +481,38 @@ def test_compare_exit_change_chart_by_hand_and_against_scipy(tmp_path):
     arch = marks["Archive"]
     assert float(arch["data-value"]) == 0 and float(arch["data-low"]) == 0 == float(arch["data-high"])
     assert arch["data-clear"] == "no"
+
+
+def test_a_change_whose_interval_holds_zero_says_so(tmp_path):
+    """The summary's signed change and the figures chart: 'interval holds 0' (and a grey bar) exactly when
+    the interval printed beside the change contains 0, read back from the table's own numbers; on the
+    invented two-week shop (a clear fall in conversion) and on a shop where 4 more of 200 pay (within
+    the noise)."""
+    from test_compare import _log
+
+    pa, pb = _compare_logs(tmp_path)
+    small = [_log(tmp_path / f"{side}.jsonl", [(f"{side}{k}", ["Home", "Cart", "Paid"] if k % 2 == 0 or
+                                                (side == "y" and k % 50 == 1) else ["Home", "Cart"])
+                                               for k in range(200)], t0)
+             for side, t0 in (("x", 1_700_000_000), ("y", 1_700_300_000))]
+    seen = set()
+    for k, (a, b) in enumerate(((pa, pb), tuple(small))):
+        html = tmp_path / f"c{k}.html"
+        assert commands_main(["compare", str(a), str(b), "--goal", "Paid", "--html", str(html), "--draws", "400",
+                              "-q"]) == 0
+        root = dom(html.read_text())
+        for r in list(tables(root.find_id("compare")).values())[0][1:]:
+            m = re.search(r"\[([-+][\d.]+)[^,]*, ([-+][\d.]+)", r[3])
+            if not m or not re.search("[▲▼]", r[3]):
+                continue
+            holds = float(m.group(1)) <= 0 <= float(m.group(2))
+            seen.add(holds)
+            assert ("(interval holds 0)" in r[3]) == holds, r
+        bars = [n for n in root.find_id("compare-charts").iter()
+                if n.attrs.get("data-direction") and "data-clear" not in n.attrs]
+        assert bars
+        for bar in bars:
+            holds = float(bar.attrs["data-low"]) <= 0 <= float(bar.attrs["data-high"])
+            fills = {n.attrs.get("fill") for n in bar.iter() if n.tag == "path"}
+            assert ("#d9d9d9" in fills) == holds, (bar.attrs, fills)
+    assert seen == {True, False}

@@ -498,9 +498,10 @@ def compare_charts(cmp) -> list[Chart]:
             highs.append(None if fc.diff_high is None else fc.diff_high * unit)
             sign = "▲" if fc.diff > 0 else ("▼" if fc.diff < 0 else "=")
             word = "worse" if worse and fc.diff != 0 else ("better" if fc.diff != 0 else "no change")
-            texts.append(f"{sign} {v:+.2f} ({word})")
-            colors.append(WORSE if worse and fc.diff != 0 else (BETTER if fc.diff != 0 else NEUTRAL))
-            hatches.append("//" if worse and fc.diff != 0 else ("..") if fc.diff != 0 else None)
+            noise = fc.diff_low is not None and fc.diff_high is not None and fc.diff_low <= 0 <= fc.diff_high
+            texts.append(f"{sign} {v:+.2f} ({word}" + ("; interval holds 0)" if noise else ")"))
+            colors.append("#d9d9d9" if noise else WORSE if worse and fc.diff != 0 else (BETTER if fc.diff != 0 else NEUTRAL))
+            hatches.append(None if noise else "//" if worse and fc.diff != 0 else ("..") if fc.diff != 0 else None)
             points.append({"state": fc.name, "value": float(fc.diff), "low": fc.diff_low, "high": fc.diff_high,
                            "direction": word})
         c = _hbar(f"Change {_short(B, 25)} − {_short(A, 25)}, with intervals",
@@ -508,7 +509,8 @@ def compare_charts(cmp) -> list[Chart]:
                   colors=colors, hatches=hatches)
         c.figure.axes[0].axvline(0, color="black", linewidth=1)
         c.notes = ["Warm vermillion with // hatching: worse (less conversion, more steps); cool blue with dots: "
-                   "better; the sign and the word are in each bar's label. Whiskers: the interval of the change."]
+                   "better; light grey: the interval holds 0; the sign and the word are in each bar's label. "
+                   "Whiskers: the interval of the change."]
         out.append(c)
     c = exit_change_chart(cmp)
     if c is not None:

@@ -906,6 +906,8 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         if fc.diff:  # fewer conversions or more steps: worse
             arrow = "▲" if fc.diff > 0 else "▼"
             change += f" {arrow} " + ("worse" if (fc.diff < 0 if pct else fc.diff > 0) else "better")
+            if fc.diff_low is not None and fc.diff_high is not None and fc.diff_low <= 0 <= fc.diff_high:
+                change += " (interval holds 0)"
         rows.append([fc.name, _iv(fc.a, fc.a_low, fc.a_high, pct), _iv(fc.b, fc.b_low, fc.b_high, pct), change])
     sig = cmp.significant
     blocks: list = [

@@ -533,3 +533,21 @@ def test_chart_transforms_are_kept_only_when_numeric():
     got = {"".join(t.itertext()): t.get("transform") for t in ET.fromstring(inline_svg(svg.encode(), "c", "c")).iter()
            if t.tag.endswith("text")}
     assert got == {"a": "translate(99.5 31.8) rotate(-90)", "b": None, "c": None}
+
+
+def test_diagram_caption_names_the_direction_graphviz_drew(tmp_path, samples):
+    # the caption says which way the states run; checked against where Graphviz put the start and the
+    # goal in the inline SVG (SVG y grows downwards): the shop sample fits the page top to bottom
+    out = tmp_path / "r.html"
+    shop = samples / "shop"
+    assert commands_main(["report", str(shop / "clickstream.jsonl.gz"), "--mapping", str(shop / "mapping.yaml"),
+                          "--gap", "30m", "--html", str(out), "--no-charts"]) == 0
+    sec = dom(out.read_text()).find_id("diagram")
+    pos = {}
+    for t in sec.iter("text"):
+        if t.all_text() in ("start", "Order placed") and "x" in t.attrs:
+            pos[t.all_text()] = (float(t.attrs["x"]), float(t.attrs["y"]))
+    (sx, sy), (gx, gy) = pos["start"], pos["Order placed"]
+    down = (gy - sy) > abs(gx - sx)
+    caption = " ".join(f.all_text() for f in sec.iter("figcaption"))
+    assert ("down the page" in caption) == down and ("to the right" in caption) == (not down)

@@ -307,7 +307,9 @@ def _headline(a: Analysis, ext: Any, ext_reason: str | None) -> list:
 
 def _diagram_section(a: Analysis, svg: str | None, diagram, missing: str | None) -> Section:
     cap = list(diagram.notes) if diagram is not None else []
-    cap.insert(0, "Columns run from the start (left); width of an edge = number of transitions; labels give "
+    flow = "from the start down the page" if diagram is not None and 'rankdir="TB"' in diagram.dot else \
+        "from the start (left) to the right"
+    cap.insert(0, f"The states run {flow}; width of an edge = number of transitions; labels give "
                   "the probability of the edge among its state's exits, and the count. The legend explains "
                   "shapes and line styles.")
     if diagram is not None and diagram.focus is not None:

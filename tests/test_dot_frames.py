@@ -88,3 +88,29 @@ def test_the_title_check_can_fail(samples):
     plain = re.sub(r', labelloc="[tb]", labeljust="[lr]"', "", d.dot)
     assert plain != d.dot  # fit_diagram did move titles
     assert _edges_through_titles(json.loads(graphviz.Source(plain).pipe(format="json")))
+
+
+def test_edge_labels_are_drawn_last_with_a_halo(samples):
+    """In the SVG (report --svg and the HTML's inline diagram), every edge label comes after every edge
+    line in document order (SVG paints in document order: SVG 1.1, 3.3 "Rendering order") and carries a
+    white halo under its letters; the labels are exactly the edge labels of Graphviz's own -Tjson
+    layout, and no text is left inside an edge's group."""
+    import xml.etree.ElementTree as ET
+
+    from tracechain.report.dot import render_image
+
+    a, groups = _analysis(samples, "shop")
+    dot = fit_diagram(a, "page", groups=groups).dot
+    root = ET.fromstring(render_image(dot, "svg"))
+    ns = "{http://www.w3.org/2000/svg}"
+    order = list(root.iter())
+    layer = next(g for g in root.iter(f"{ns}g") if g.get("class") == "edge-labels")
+    labels = list(layer.iter(f"{ns}text"))
+    last_line = max(k for k, el in enumerate(order) if el.tag == f"{ns}path"
+                    and any(el in list(g.iter()) for g in root.iter(f"{ns}g") if g.get("class") == "edge"))
+    assert min(order.index(t) for t in labels) > last_line
+    assert all(t.get("stroke") == "#ffffff" and t.get("paint-order") == "stroke" for t in labels)
+    g = json.loads(graphviz.Source(dot).pipe(format="json"))
+    want = sorted(b[1] for b in text_boxes(g) if str(b[0]).startswith("edge"))
+    assert sorted(t.text for t in labels) == want
+    assert not any(t.tag == f"{ns}text" for e in root.iter(f"{ns}g") if e.get("class") == "edge" for t in e.iter())

@@ -64,7 +64,8 @@ from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
 __all__ = ["first_arrival_median", "FIT_PRESETS", "fit_diagram", "measure_layout", "legible_px", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
-           "resolve_state", "FORMATS", "fit_diff_dot", "title_hits"]
+           "resolve_state", "FORMATS", "fit_diff_dot", "title_hits",
+           "lift_edge_labels"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
 
@@ -1354,6 +1355,35 @@ def _diff_legend_rows(present: set[str]) -> list[str]:
     return rows
 
 
+def lift_edge_labels(svg: bytes) -> bytes:
+    """Graphviz's SVG with every edge label moved to the end of the drawing, each with a white
+    halo (a stroke painted under its letters), so no edge drawn later runs over a label and a line
+    passing behind one does not cut through its letters. Positions are unchanged (Graphviz puts
+    no transform inside the graph's group)."""
+    import xml.etree.ElementTree as ET
+
+    ns = "http://www.w3.org/2000/svg"
+    ET.register_namespace("", ns)
+    ET.register_namespace("xlink", "http://www.w3.org/1999/xlink")
+    root = ET.fromstring(svg)
+    graph = next((g for g in root.iter(f"{{{ns}}}g") if g.get("class") == "graph"), None)
+    if graph is None:
+        return svg
+    layer = ET.Element(f"{{{ns}}}g", {"class": "edge-labels"})
+    for edge in [g for g in graph.iter(f"{{{ns}}}g") if g.get("class") == "edge"]:
+        for parent in [edge, *edge.iter(f"{{{ns}}}g")]:
+            for t in [c for c in parent if c.tag == f"{{{ns}}}text"]:
+                parent.remove(t)
+                t.set("stroke", "#ffffff")
+                t.set("stroke-width", "3")
+                t.set("stroke-linejoin", "round")
+                t.set("paint-order", "stroke")
+                layer.append(t)
+    if len(layer):
+        graph.append(layer)
+    return ET.tostring(root, encoding="utf-8", xml_declaration=True)
+
+
 def render_image(dot_text: str, fmt: str) -> bytes:
     """Render DOT text to svg, png or pdf with the Graphviz ``dot`` program."""
     import graphviz
@@ -1361,7 +1391,8 @@ def render_image(dot_text: str, fmt: str) -> bytes:
     if fmt not in ("svg", "png", "pdf", "json"):
         raise RenderError(f"unknown diagram format {fmt!r}")
     try:
-        return graphviz.Source(dot_text).pipe(format=fmt, quiet=True)
+        data = graphviz.Source(dot_text).pipe(format=fmt, quiet=True)
+        return lift_edge_labels(data) if fmt == "svg" else data
     except graphviz.ExecutableNotFound as err:
         raise RenderError(
             "the Graphviz 'dot' program is not installed (Debian/Ubuntu: apt-get install graphviz); "

@@ -202,6 +202,7 @@ _SVG_ATTRS = {
     "rx", "ry", "fill", "fill-opacity", "stroke", "stroke-width", "stroke-dasharray", "stroke-opacity",
     "stroke-linecap", "stroke-linejoin", "font-family", "font-size", "font-weight", "font-style",
     "text-anchor", "class", "id", "opacity", "preserveAspectRatio", "text-decoration", "baseline-shift",
+    "paint-order",
 }
 
 

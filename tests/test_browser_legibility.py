@@ -1,6 +1,6 @@
 """Legibility of the report and the comparison as Chromium lays them out, at 1280 and 1920 px wide.
 
-The report (the shipped shop sample) and a comparison (tests/test_charts.py's invented shop in two
+The reports of the shipped shop and tickets samples and a comparison (tests/test_charts.py's invented shop in two
 weeks) are opened in headless Chromium inside a frame of a measuring page of this test (the
 report itself runs no script: its policy forbids it). After load, the measuring page reads, for
 every SVG text of the diagram and chart sections, the type size the browser shows (the text's
@@ -90,17 +90,20 @@ def pages(tmp_path_factory):
     shop = REPO / "sample_traces" / "shop"
     assert commands_main(["report", str(shop / "clickstream.jsonl.gz"), "--mapping", str(shop / "mapping.yaml"),
                           "--gap", "30m", "--html", str(tmp / "r.html")]) == 0
+    tickets = REPO / "sample_traces" / "tickets"
+    assert commands_main(["report", str(tickets / "ticket_events.csv"), "--mapping", str(tickets / "mapping.yaml"),
+                          "--stale-after", "2d", "--html", str(tmp / "t.html")]) == 0
     pa, pb = _compare_logs(tmp)
     assert commands_main(["compare", str(pa), str(pb), "--goal", "Paid", "--html", str(tmp / "c.html"), "--draws", "50",
                           "-q"]) == 0
     out = {}
-    for page in ("r", "c"):
+    for page in ("r", "t", "c"):
         for w in WIDTHS:
             out[(page, w)] = _measure(tmp, f"{page}.html", w, page)
     return tmp, out
 
 
-@pytest.mark.parametrize("page,section", [("r", "diagram"), ("c", "compare-diagram")])
+@pytest.mark.parametrize("page,section", [("r", "diagram"), ("t", "diagram"), ("c", "compare-diagram")])
 @pytest.mark.parametrize("width", WIDTHS)
 def test_diagram_type_and_overlaps_in_the_browser(pages, page, section, width):
     texts = pages[1][(page, width)][section]
@@ -110,7 +113,7 @@ def test_diagram_type_and_overlaps_in_the_browser(pages, page, section, width):
     assert _overlaps(texts) == []
 
 
-@pytest.mark.parametrize("page,section", [("r", "charts"), ("c", "compare-charts")])
+@pytest.mark.parametrize("page,section", [("r", "charts"), ("t", "charts"), ("c", "compare-charts")])
 @pytest.mark.parametrize("width", WIDTHS)
 def test_chart_type_in_the_browser(pages, page, section, width):
     texts = pages[1][(page, width)][section]

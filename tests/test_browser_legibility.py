@@ -1,17 +1,17 @@
-"""Legibility of the report and the comparison as Chromium lays them out, at 1280 and 1920 px wide.
+"""Legibility of the reports and the comparison as Chromium lays them out, at 1280 and 1920 px wide.
 
-The reports of the shipped shop and tickets samples and a comparison (tests/test_charts.py's invented shop in two
-weeks) are opened in headless Chromium inside a frame of a measuring page of this test (the
-report itself runs no script: its policy forbids it). After load, the measuring page reads, for
-every SVG text of the diagram and chart sections, the type size the browser shows (the text's
-font size times the scale of its screen transform, SVG 1.1 getScreenCTM) and its box
+The reports of the shipped shop and tickets samples and a comparison (tests/test_charts.py's
+invented shop in two weeks) are opened in headless Chromium inside a frame of a measuring page of
+this test (the report itself runs no script: its policy forbids it). After load, the measuring
+page reads, for every SVG text of the diagram and chart sections, the type size the browser shows
+(the text's font size times the scale of its screen transform, SVG 1.1 getScreenCTM) and its box
 (getBoundingClientRect, CSSOM View), and writes them into its DOM, which --dump-dom prints.
 Checked there: no diagram text under the page preset's minimum (FIT_PRESETS["page"]["min_px"],
 10 px), no chart text under 8 px nor outside its image (cut off), and no two diagram texts whose
 boxes overlap by more than a sliver (a quarter of the smaller box; neighbouring lines of one label
-touch). The controls show
-that the checks can fail: the same diagram squeezed into 300 px is under the minimum, and two
-texts placed on one another overlap. Skipped only without /usr/bin/chromium.
+touch). The controls show that the checks can fail: the same diagram squeezed into 300 px is
+under the minimum, a text half above its image is outside it, and two texts placed on one
+another overlap. Skipped only without /usr/bin/chromium.
 """
 
 from __future__ import annotations

@@ -114,3 +114,30 @@ def test_edge_labels_are_drawn_last_with_a_halo(samples):
     want = sorted(b[1] for b in text_boxes(g) if str(b[0]).startswith("edge"))
     assert sorted(t.text for t in labels) == want
     assert not any(t.tag == f"{ns}text" for e in root.iter(f"{ns}g") if e.get("class") == "edge" for t in e.iter())
+
+
+def test_in_flight_cases_are_stated_once_per_state(samples, tmp_path):
+    """Each drawn state's label (Graphviz's -Tjson0 reading) gives its in-flight cases once, and the number
+    is the analysis JSON's ``in_flight`` for that state (the tickets sample has cases in flight)."""
+    from conftest import run_command
+
+    a, groups = _analysis(samples, "tickets")
+    out = tmp_path / "a.json"
+    argv = [str(samples / v) if "/" in v else v for v in RUNS["tickets"]]
+    run_command(["analyze", *argv, "--json", str(out), "--min-visits", "1"])
+    want = {r["state"]: r["in_flight"] for r in json.loads(out.read_text())["states"]}
+    g = json.loads(graphviz.Source(fit_diagram(a, "page", groups=groups).dot).pipe(format="json0"))
+    seen = 0
+    for o in g["objects"]:
+        label = o.get("label", "")
+        name = label.split("\\n")[0]  # json0 keeps the escString line breaks as written
+        if name not in want or "nodes" in o:
+            continue
+        found = re.findall(r"([\d,]+) in flight", label)
+        assert len(found) <= 1, label
+        if found:
+            seen += 1
+            assert int(found[0].replace(",", "")) == want[name], label
+        else:
+            assert not want[name], (name, want[name])
+    assert seen >= 2

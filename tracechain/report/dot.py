@@ -540,8 +540,6 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         extra = f"{v:,} visits" if has_counts else None
         if has_counts and opened[i]:
             extra += f" · {int(opened[i]):,} still open"
-        if has_counts and flying[i]:
-            extra += f" · {int(flying[i]):,} in flight"
         foc = dict(penwidth=3) if i == focus_idx else {}
         tag = (["◎ focus"] if i == focus_idx else [])
         if i in starts_of and starts_of[i][1] >= 0.01:  # under 1% of starts: the edge's width says enough

@@ -185,11 +185,12 @@ def test_html_stuck_section_has_ages_and_dwell(tmp_path):
     stuck = dom(html.read_text()).find_id("stuck")
     rows = list(tables(stuck).values())[0]
     head, body = rows[0], {r[0]: r for r in rows[1:]}
-    assert head[4:] == ["median age", "90% age", "mean dwell (cases that left)"]
+    assert head[4:] == ["median age", "90% age", "mean age", "mean dwell (cases that left)"]
     # by hand: reference time 10 h; d2 waits in running since 1 h (age 9 h); d3 in blocked since 4 h (6 h).
-    # Dwell in running: d1 1 h, d3 1 h -> mean 1 h; nobody left blocked.
-    assert body["running"][4:] == ["9.0 h", "9.0 h", "60.0 min"]
-    assert body["blocked"][4:] == ["6.0 h", "6.0 h", "–"]
+    # Dwell in running: d1 1 h, d3 1 h -> mean 1 h; nobody left blocked. One open case per state: its
+    # age is the median, the 90th percentile and the mean.
+    assert body["running"][4:] == ["9.0 h", "9.0 h", "9.0 h", "60.0 min"]
+    assert body["blocked"][4:] == ["6.0 h", "6.0 h", "6.0 h", "–"]
 
 
 # -- compare ------------------------------------------------------------------------------------
@@ -336,3 +337,183 @@ def test_steps_to_goal_distribution_by_hand_and_by_simulation():
     c = steps_to_goal_chart(analyze(ch))
     assert [p["state"] for p in c.points][0] == "2 steps"
     assert c.points[0]["value"] == pytest.approx(f[2])
+
+
+def _timed_rows():
+    """An invented support chat: 30 sessions Open -> Triage -> (Solved | gone), the time to Solved spread
+    over minutes by a seeded draw, so the distribution has several bins."""
+    rng = np.random.default_rng(7)
+    rows, t, times = [], 1_700_000_000, []
+    for k in range(30):
+        gaps = [int(g) for g in rng.integers(20, 400, size=2)]
+        plan = ["Open", "Triage"] + (["Solved"] if k % 5 else [])
+        for ev, dt in zip(plan, [0] + gaps):
+            t += dt
+            rows.append({"session_id": f"c{k}", "timestamp": t, "event": ev})
+        if k % 5:
+            times.append(float(sum(gaps)))
+        t += 10_000
+    return rows, times
+
+
+def test_time_to_goal_chart_against_the_times_in_the_log(tmp_path):
+    """Bars of the clock-time chart (report --cases) against the times to Solved computed here from the rows
+    (first Solved minus the session's first event: the definition, common practice, no source), bin by bin;
+    the sessions it counts against the analysis JSON's time_to_goal; its median against statistics.median."""
+    import statistics
+
+    rows, times = _timed_rows()
+    log = write_jsonl(tmp_path / "chat.jsonl", rows)
+    assert commands_main(["report", str(log), "--goal", "Solved", "--cases", "--min-visits", "1",
+                          "--svg", str(tmp_path / "d.svg"), "--html", str(tmp_path / "r.html")]) == 0
+    assert commands_main(["analyze", str(log), "--goal", "Solved", "--cases", "--min-visits", "1",
+                          "--json", str(tmp_path / "a.json")]) == 0
+    svg = (tmp_path / "d-time-to-goal.svg").read_text()
+    bars = _bars(svg, "time-to-goal")
+    assert len(bars) >= 3
+    doc = json.loads((tmp_path / "a.json").read_text())
+    ttg = {r["name"]: r for r in doc["cases"]["time_to_goal"]}["Solved"]
+    assert ttg["n"] == len(times) == sum(int(a["data-count"]) for a, _ in bars)
+    arr = np.array(times)
+    prev_hi = 0.0
+    for attrs, width in bars:
+        lo = float(attrs["data-from-s"])
+        hi = float(attrs["data-to-s"]) if "data-to-s" in attrs else np.inf
+        assert lo == pytest.approx(prev_hi)  # bins follow each other from 0, no gap
+        prev_hi = hi
+        assert int(attrs["data-count"]) == int(((arr >= lo) & (arr < hi)).sum())
+        assert float(attrs["data-value"]) == pytest.approx(int(attrs["data-count"]) / len(times))
+    ratios = [w / float(a["data-value"]) for a, w in bars if float(a["data-value"]) > 0]
+    assert max(ratios) == pytest.approx(min(ratios), rel=1e-3)
+    assert ttg["median_s"] == pytest.approx(statistics.median(times))
+    # the caption states the median in the chart's unit (rounded to 0.01 of it)
+    text = dom((tmp_path / "r.html").read_text()).find_id("charts").all_text()
+    m = re.search(r"median ([\d.]+) (s|min|h|d),", text)
+    assert m, text
+    unit = {"s": 1, "min": 60, "h": 3600, "d": 86400}[m.group(2)]
+    assert float(m.group(1)) * unit == pytest.approx(statistics.median(times), abs=0.006 * unit)
+
+
+def test_time_to_goal_chart_needs_the_cases(shop):
+    d, out = shop
+    assert not (d / "img" / "d-time-to-goal.svg").exists()
+    assert "--cases adds the distribution of clock time" in out["html"].read_text()
+
+
+def test_time_bins_are_round_and_cover_the_95th_percentile():
+    from tracechain.report.charts import time_bins
+
+    for values, unit in (([3, 5, 9, 40, 70], "s"), ([100, 500, 900, 3000], "min"), ([7200, 40_000, 90_000], "h"),
+                         ([3 * 86400, 10 * 86400], "d")):
+        edges, size, got = time_bins(values)
+        assert got == unit
+        widths = np.diff(edges) / size
+        assert np.allclose(widths, widths[0])
+        lead = widths[0] / 10 ** np.floor(np.log10(widths[0]))
+        assert min(abs(lead - m) for m in (1, 2, 5)) < 1e-9  # a round width: 1, 2 or 5 times a power of ten
+        assert edges[0] == 0 and edges[-1] > np.percentile(values, 95)
+        assert len(edges) - 1 <= 12
+
+
+def test_steps_chart_against_subsequences_and_the_beta_quantiles(tmp_path, capsys):
+    """``steps --svg``: each bar's reached count against a plain subsequence test over the hand-made plans
+    (an iterator consumed in order: the definition of reaching steps in order, common practice, no
+    source), its value against count / sessions, and its bracket against scipy's Beta(x + ½, n − x + ½)
+    quantiles (the Jeffreys interval, Brown, Cai and DasGupta 2001, from memory)."""
+    from scipy.stats import beta
+
+    rows, t = [], 1_700_000_000
+    plans = [["Home", "Item", "Cart", "Paid"]] * 6 + [["Home", "Help", "Item", "Cart"]] * 4 + [["Item", "Home"]] * 5 \
+        + [["Home", "Item"]] * 7 + [["Home"]] * 8
+    for k, plan in enumerate(plans):
+        for ev in plan:
+            rows.append({"session_id": f"s{k}", "timestamp": t, "event": ev})
+            t += 9
+        t += 5000
+    log = write_jsonl(tmp_path / "shop.jsonl", rows)
+    steps = ["Home", "Item", "Cart", "Paid"]
+    assert commands_main(["steps", str(log), "--steps", ",".join(steps), "--svg", str(tmp_path / "s.svg"),
+                          "--png", str(tmp_path / "s.png"), "--level", "0.9"]) == 0
+    assert "drop-off" in capsys.readouterr().out  # the table is still printed
+    bars = _bars((tmp_path / "s.svg").read_text(), "steps")
+
+    def reached(plan, k):
+        it = iter(plan)
+        return all(s in it for s in steps[:k])
+
+    want = [sum(reached(p, k) for p in plans) for k in range(1, len(steps) + 1)]
+    assert [int(a["data-count"]) for a, _ in bars] == want == [30, 17, 10, 6]  # and by hand: Item before Home is not reached
+    bases = [len(plans)] + want[:-1]
+    for (attrs, _), x, n in zip(bars, want, bases):
+        assert float(attrs["data-value"]) == pytest.approx(x / len(plans))
+        assert float(attrs["data-low"]) == pytest.approx(beta.ppf(0.05, x + 0.5, n - x + 0.5) if x else 0.0)
+        assert float(attrs["data-high"]) == pytest.approx(beta.ppf(0.95, x + 0.5, n - x + 0.5) if x < n else 1.0)
+    ratios = [w / float(a["data-value"]) for a, w in bars]
+    assert max(ratios) == pytest.approx(min(ratios), rel=1e-3)
+    img = decode_png((tmp_path / "s.png").read_bytes())
+    assert len(np.unique(img.reshape(-1, img.shape[2]), axis=0)) > 8  # drawn, not blank
+    # the chart alone on standard output: no table mixed into the SVG
+    assert commands_main(["steps", str(log), "--steps", "Home,Item", "--svg", "-"]) == 0
+    ET.fromstring(capsys.readouterr().out.encode())
+
+
+def test_compare_exit_change_chart_by_hand_and_against_scipy(tmp_path):
+    """The per-state change in the share of exits that end the session: values by hand on the invented
+    two-week shop; the interval of Cart's change against an independent Monte Carlo of the two Beta
+    marginals of the Dirichlet posterior (scipy.stats.beta, 400,000 draws; the aggregation property
+    of the Dirichlet, common practice, no source); a state that always ends (Archive) has no change."""
+    from scipy.stats import beta
+
+    pa, pb = _compare_logs(tmp_path)
+    html = tmp_path / "c.html"
+    assert commands_main(["compare", str(pa), str(pb), "--goal", "Paid", "--html", str(html), "--draws", "4000",
+                          "-q"]) == 0
+    marks = {n.attrs["data-state"]: n.attrs for n in dom(html.read_text()).find_id("compare-charts").iter()
+             if "data-clear" in n.attrs}
+    # by hand: of the 150 Cart visits a side (k not 3 mod 4), before 50 end there (k = 1 mod 4), after 120
+    # (all but the 30 multiples of 5)
+    cart = marks["Cart"]
+    assert float(cart["data-value"]) == pytest.approx(120 / 150 - 50 / 150)
+    assert cart["data-direction"] == "worse" and cart["data-clear"] == "yes"
+    rng = np.random.default_rng(1)
+    d = beta.rvs(120.5, 30.5, size=400_000, random_state=rng) - beta.rvs(50.5, 100.5, size=400_000, random_state=rng)
+    assert float(cart["data-low"]) == pytest.approx(np.quantile(d, 0.025), abs=0.012)
+    assert float(cart["data-high"]) == pytest.approx(np.quantile(d, 0.975), abs=0.012)
+    arch = marks["Archive"]
+    assert float(arch["data-value"]) == 0 and float(arch["data-low"]) == 0 == float(arch["data-high"])
+    assert arch["data-clear"] == "no"
+
+
+def test_a_change_whose_interval_holds_zero_says_so(tmp_path):
+    """The summary's signed change and the figures chart: 'interval holds 0' (and a grey bar) exactly when
+    the interval printed beside the change contains 0, read back from the table's own numbers; on the
+    invented two-week shop (a clear fall in conversion) and on a shop where 4 more of 200 pay (within
+    the noise)."""
+    from test_compare import _log
+
+    pa, pb = _compare_logs(tmp_path)
+    small = [_log(tmp_path / f"{side}.jsonl", [(f"{side}{k}", ["Home", "Cart", "Paid"] if k % 2 == 0 or
+                                                (side == "y" and k % 50 == 1) else ["Home", "Cart"])
+                                               for k in range(200)], t0)
+             for side, t0 in (("x", 1_700_000_000), ("y", 1_700_300_000))]
+    seen = set()
+    for k, (a, b) in enumerate(((pa, pb), tuple(small))):
+        html = tmp_path / f"c{k}.html"
+        assert commands_main(["compare", str(a), str(b), "--goal", "Paid", "--html", str(html), "--draws", "400",
+                              "-q"]) == 0
+        root = dom(html.read_text())
+        for r in list(tables(root.find_id("compare")).values())[0][1:]:
+            m = re.search(r"\[([-+][\d.]+)[^,]*, ([-+][\d.]+)", r[3])
+            if not m or not re.search("[▲▼]", r[3]):
+                continue
+            holds = float(m.group(1)) <= 0 <= float(m.group(2))
+            seen.add(holds)
+            assert ("(interval holds 0)" in r[3]) == holds, r
+        bars = [n for n in root.find_id("compare-charts").iter()
+                if n.attrs.get("data-direction") and "data-clear" not in n.attrs]
+        assert bars
+        for bar in bars:
+            holds = float(bar.attrs["data-low"]) <= 0 <= float(bar.attrs["data-high"])
+            fills = {n.attrs.get("fill") for n in bar.iter() if n.tag == "path"}
+            assert ("#d9d9d9" in fills) == holds, (bar.attrs, fills)
+    assert seen == {True, False}

@@ -308,7 +308,7 @@ def test_diff_diagram_styles(tmp_path):
     rng = np.random.default_rng(5)
     a, b = simulate(P, start, 3000, rng), simulate(P2, start, 3000, rng)
     c = compare_counts(a, b, [GOAL], draws=50)
-    g = json.loads(graphviz.Source(render_diff_dot(c)).pipe(format="json0"))
+    g = json.loads(graphviz.Source(render_diff_dot(c, layout="classic")).pipe(format="json0"))
     names = {o["_gvid"]: o["name"] for o in g["objects"]}
     style = {(names[e["tail"]], names[e["head"]]): e for e in g["edges"] if not names[e["tail"]].startswith("lg")}
     assert {e.change for e in c.edges} >= {"up", "down"}

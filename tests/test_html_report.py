@@ -519,3 +519,35 @@ def test_one_sanitiser_for_diagrams_and_charts():
         assert not [k for k in attrs if k.lower().startswith("on")] and "style" not in attrs
         assert "evil" not in out and "javascript" not in out
         assert "ok" in ["".join(t.itertext()) for t in root.iter("{http://www.w3.org/2000/svg}text")]
+
+
+def test_chart_transforms_are_kept_only_when_numeric():
+    # matplotlib places each line of a multi-line title by a translate(); the sanitiser keeps such
+    # number-only transforms (else the line is drawn at the corner and cut off) and drops any other
+    import xml.etree.ElementTree as ET
+
+    from tracechain.report.charts import inline_svg
+
+    svg = ('<svg xmlns="http://www.w3.org/2000/svg"><text transform="translate(99.5 31.8) rotate(-90)">a</text>'
+           '<text transform="translate(1 2) url(http://evil/x)">b</text><text transform="expression(x)">c</text></svg>')
+    got = {"".join(t.itertext()): t.get("transform") for t in ET.fromstring(inline_svg(svg.encode(), "c", "c")).iter()
+           if t.tag.endswith("text")}
+    assert got == {"a": "translate(99.5 31.8) rotate(-90)", "b": None, "c": None}
+
+
+def test_diagram_caption_names_the_direction_graphviz_drew(tmp_path, samples):
+    # the caption says which way the states run; checked against where Graphviz put the start and the
+    # goal in the inline SVG (SVG y grows downwards): the shop sample fits the page top to bottom
+    out = tmp_path / "r.html"
+    shop = samples / "shop"
+    assert commands_main(["report", str(shop / "clickstream.jsonl.gz"), "--mapping", str(shop / "mapping.yaml"),
+                          "--gap", "30m", "--html", str(out), "--no-charts"]) == 0
+    sec = dom(out.read_text()).find_id("diagram")
+    pos = {}
+    for t in sec.iter("text"):
+        if t.all_text() in ("start", "Order placed") and "x" in t.attrs:
+            pos[t.all_text()] = (float(t.attrs["x"]), float(t.attrs["y"]))
+    (sx, sy), (gx, gy) = pos["start"], pos["Order placed"]
+    down = (gy - sy) > abs(gx - sx)
+    caption = " ".join(f.all_text() for f in sec.iter("figcaption"))
+    assert ("down the page" in caption) == down and ("to the right" in caption) == (not down)

@@ -8,6 +8,7 @@ from __future__ import annotations
 import copy
 import json
 import math
+import sys
 
 import numpy as np
 import pytest
@@ -144,7 +145,10 @@ def test_infinite_figures_are_null_never_nan(strict_json, schema_validator):
     assert "NaN" not in text and "Infinity" not in text
 
 
-def test_dumps_refuses_nan():
+def test_dumps_never_writes_nan(monkeypatch):
+    # RFC 8259 section 6: NaN is not JSON; orjson writes null, the standard library's path refuses it
+    assert json.loads(dumps({"x": float("nan")})) == {"x": None}
+    monkeypatch.setitem(sys.modules, "orjson", None)
     with pytest.raises(ValueError):
         dumps({"x": float("nan")})
 

@@ -59,7 +59,7 @@ def files(tmp_path_factory):
     title = "</title><script>document.title='pwned'</script>"
     assert commands_main(["report", str(log), "--min-visits", "1", "--goal", GOAL, "--mapping", str(mapping), "--title", title,
                           "--html", str(out["html"]), "--markdown", str(out["md"]), "--csv", str(out["csv"]),
-                          "--svg", str(out["svg"]), "--raw-keys", "--max-states", "100"]) == 0
+                          "--svg", str(out["svg"]), "--raw-keys", "--max-states", "100", "--cases"]) == 0
     return log, mapping, out, title
 
 
@@ -200,5 +200,10 @@ def test_charts_escape_names(files, tmp_path):
     for name in shown:
         assert safe_name(name, 40).rstrip("…")[:20] in texts, name  # the axis label, as text
     assert "\x00" not in texts and "\u202e" not in texts
-    for f in out["svg"].parent.glob(out["svg"].stem + "-*.svg"):
+    # the clock-time chart (--cases) names the hostile goal in its title: as text, shortened by safe_name
+    titles = [t.all_text() for t in sec.iter("text") if t.all_text().startswith("Time to ")]
+    assert titles and safe_name(GOAL, 40) in titles[0], titles
+    files_written = sorted(out["svg"].parent.glob(out["svg"].stem + "-*.svg"))
+    assert any(f.name.endswith("-time-to-goal.svg") for f in files_written)
+    for f in files_written:
         ET.fromstring(f.read_bytes())  # well-formed

@@ -16,7 +16,8 @@ Definitions: common practice, no source.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -39,6 +40,8 @@ class CaseTimes:
     method: str
     to_goal: tuple[TimeSummary, ...]
     dwell: tuple[TimeSummary, ...]
+    #: goal -> the observed times to it, one per session that reached it (for the distribution chart)
+    to_goal_values: dict = field(default_factory=dict)
 
 
 def summarise(name: str, values) -> TimeSummary:
@@ -69,4 +72,5 @@ def case_times(sessions, goals=()) -> CaseTimes:
                 dwell.setdefault(s, []).append(t[k + 1] - t[k])
     tg = tuple(summarise(g, to_goal[g]) for g in goals)
     dw = tuple(sorted((summarise(s, v) for s, v in dwell.items()), key=lambda r: (-r.n, r.name)))
-    return CaseTimes(QUANTILE_METHOD, tg, dw)
+    values = {g: tuple(float(v) for v in to_goal[g] if math.isfinite(v)) for g in goals}
+    return CaseTimes(QUANTILE_METHOD, tg, dw, values)

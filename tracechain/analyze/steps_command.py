@@ -38,6 +38,9 @@ def register(subparsers, _add_input_options) -> None:
                      help="write the steps as JSON (schema tracechain/schemas/steps-1.schema.json; '-' for standard "
                           "output)")
     out.add_argument("--csv", metavar="FILE", help="write one row per step as CSV ('-' for standard output)")
+    for fmt in ("svg", "png", "pdf"):
+        out.add_argument(f"--{fmt}", metavar="FILE",
+                         help=f"also draw the steps as bars in {fmt.upper()} (needs the charts extra, matplotlib)")
     p.set_defaults(handler=cmd_steps)
 
 
@@ -106,6 +109,24 @@ def cmd_steps(args: argparse.Namespace) -> int:
         write_output(args.json, render_steps_json(res))
     if args.csv:
         write_output(args.csv, render_steps_csv(res))
-    if "-" not in (args.json, args.csv):
+    if "-" not in (args.json, args.csv, args.svg, args.png, args.pdf):  # what goes to standard output is alone there
         sys.stdout.write("\n".join(steps_lines(res)) + "\n")
+    _write_chart(res, args)
     return 0
+
+
+def _write_chart(res, args: argparse.Namespace) -> None:
+    """The steps chart to each of ``--svg``/``--png``/``--pdf`` that is given."""
+    wanted = {fmt: getattr(args, fmt) for fmt in ("svg", "png", "pdf") if getattr(args, fmt, None)}
+    if not wanted:
+        return
+    from ..report.charts import available, missing_reason, steps_chart
+    from ..report.writer import write_output
+
+    if not available():
+        raise UsageError(f"--{next(iter(wanted))}: {missing_reason()}")
+    chart = steps_chart(res)
+    for fmt, path in wanted.items():
+        written = write_output(path, chart.render(fmt))
+        if written != "-":
+            print(f"wrote {written}", file=sys.stderr)

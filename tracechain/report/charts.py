@@ -19,11 +19,13 @@ matplotlib is an optional extra (``pip install 'tracechain[charts]'``): without 
 from __future__ import annotations
 
 import io
+import math
+import textwrap
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 
-__all__ = ["Chart", "available", "missing_reason", "report_charts", "compare_charts", "segment_chart", "CHARTS_EXTRA",
-           "inline_svg"]
+__all__ = ["Chart", "available", "missing_reason", "report_charts", "time_to_goal_charts", "time_bins", "steps_chart",
+           "exit_change_chart", "compare_charts", "segment_chart", "CHARTS_EXTRA", "inline_svg"]
 
 CHARTS_EXTRA = "pip install 'tracechain[charts]'"
 INK = "#33475b"  # bars: dark blue-grey
@@ -127,7 +129,8 @@ def _hbar(title: str, xlabel: str, labels: list[str], values: list[float], texts
         ax.errorbar(values, ys, xerr=[lo, hi], fmt="none", ecolor="black", capsize=4, elinewidth=1.2)
     ax.set_yticks(ys, [_short(x) for x in labels], fontsize=12)
     ax.set_xlabel(xlabel, fontsize=12)
-    ax.set_title(_short(title, 120), fontsize=14, loc="left")
+    # wrapped: a long title would run past the figure's right edge and be cut off there
+    ax.set_title("\n".join(textwrap.wrap(_short(title, 120), 64)), fontsize=14, loc="left")
     ax.tick_params(axis="x", labelsize=11)
     ax.spines[["top", "right"]].set_visible(False)
     if xlim:
@@ -277,7 +280,109 @@ def steps_to_goal_chart(a) -> Chart | None:
     c = _hbar("Steps to the goal, among sessions that reach it", "share of converting sessions (the chain's "
               "first-passage distribution)", labels, values, texts, "steps-to-goal", points)
     c.notes = ["Steps, not clock time: the counts keep only the mean gap of each transition, so the chain gives "
-               "the distribution of steps; the expected time is in the expected-time section."]
+               "the distribution of steps" + ("; the clock-time distribution is the next chart." if
+                                              getattr(a, "case_times", None) is not None else
+                                              "; --cases adds the distribution of clock time to the goal.")]
+    return c
+
+
+_UNITS = ((1.0, "s"), (60.0, "min"), (3600.0, "h"), (86400.0, "d"))
+
+
+def _time_unit(seconds: float) -> tuple[float, str]:
+    """The unit (seconds per unit, name) in which ``seconds`` reads as a number under 120."""
+    for size, name in _UNITS[::-1]:
+        if seconds >= 2 * size:
+            return size, name
+    return _UNITS[0]
+
+
+def _nice_width(span: float, bins: int = 10) -> float:
+    """A bin width of 1, 2 or 5 times a power of ten that cuts ``span`` into about ``bins`` bins."""
+    raw = max(span, 1e-9) / bins
+    mag = 10 ** math.floor(math.log10(raw))
+    return next(m * mag for m in (1, 2, 5, 10) if m * mag >= raw)
+
+
+def time_bins(values, max_bins: int = 12) -> tuple[list[float], float, str]:
+    """Bin edges (seconds, from 0) for a distribution of times, in a unit people read (s, min, h, d)
+    with a round width; the last edge covers the 95th percentile, later times go to one extra bar."""
+    import numpy as np
+
+    v = np.asarray(values, dtype=float)
+    top = float(np.percentile(v, 95, method="linear")) if v.size else 0.0
+    size, unit = _time_unit(max(top, float(np.median(v)) if v.size else 0.0))
+    width = _nice_width(top / size, bins=max_bins - 2) if top > 0 else 1.0
+    k = max(1, min(max_bins, math.floor(top / size / width) + 1))
+    return [j * width * size for j in range(k + 1)], size, unit
+
+
+def _num(x: float) -> str:
+    return f"{x:g}" if abs(x - round(x)) > 1e-9 else f"{round(x)}"
+
+
+def time_to_goal_charts(a, max_goals: int = 3) -> list[Chart]:
+    """The distribution of clock time from a session's first event to its first entry into each goal
+    (the observed times of ``--cases``), one chart per goal with times, most sessions first."""
+    ct = getattr(a, "case_times", None)
+    if ct is None or not getattr(ct, "to_goal_values", None):
+        return []
+    import numpy as np
+
+    goals = sorted((g for g, v in ct.to_goal_values.items() if v), key=lambda g: -len(ct.to_goal_values[g]))
+    summary = {r.name: r for r in ct.to_goal}
+    out = []
+    for k, g in enumerate(goals[:max_goals]):
+        v = np.asarray(ct.to_goal_values[g], dtype=float)
+        edges, size, unit = time_bins(v)
+        counts = [int(((v >= lo) & (v < hi)).sum()) for lo, hi in zip(edges, edges[1:])]
+        late = int((v >= edges[-1]).sum())
+        bounds = list(zip(edges, edges[1:]))
+        labels = [f"{_num(lo / size)}–{_num(hi / size)} {unit}" for lo, hi in bounds]
+        if late:
+            counts.append(late)
+            bounds.append((edges[-1], None))
+            labels.append(f"{_num(edges[-1] / size)} {unit} or more")
+        n = int(v.size)
+        values = [c / n for c in counts]
+        texts = [f"{100 * s:.1f}% · {c:,} sessions" for s, c in zip(values, counts)]
+        points = [{"state": lab, "value": s, "count": c, "from-s": lo, "to-s": hi}
+                  for lab, s, c, (lo, hi) in zip(labels, values, counts, bounds)]
+        name = "time-to-goal" if k == 0 else f"time-to-goal-{k + 1}"
+        c = _hbar(f"Time to {_short(g, 40)} ({n:,} sessions reach it)",
+                  "share of those sessions, by clock time from their first event", labels, values, texts, name, points)
+        r = summary.get(g)
+        med = "" if r is None or r.median_s is None else (f"median {_num(round(r.median_s / size, 2))} {unit}, "
+                                                           f"90th percentile {_num(round(r.p90_s / size, 2))} {unit} "
+                                                           f"(numpy's {ct.method!r} method); ")
+        c.notes = [f"Observed in the sessions (--cases): {med}bins [from, to) of equal width; the last bar holds "
+                   "the times past the 95th percentile's bin."]
+        out.append(c)
+    return out
+
+
+def steps_chart(res) -> Chart:
+    """The ordered steps (a :class:`~tracechain.analyze.steps.StepsResult`) as bars: the share of all
+    sessions that reach each step in order, with the step-to-step share, its interval and the chain's
+    prediction in each bar's label."""
+    n = res.sessions or 1
+    labels, values, texts, points = [], [], [], []
+    for i, r in enumerate(res.rows):
+        v = r.reached / n
+        of = "of all sessions" if i == 0 else "of the step before"
+        share = "" if r.share is None else f" · {100 * r.share:.0f}% {of}"
+        iv = "" if r.share_low is None else f" [{100 * r.share_low:.0f}–{100 * r.share_high:.0f}%]"
+        model = "" if r.model is None else f" · model {100 * r.model:.0f}%"
+        labels.append(f"{i + 1}. {r.step}")
+        values.append(v)
+        texts.append(f"{r.reached:,} sessions{share}{iv}{model}")
+        points.append({"state": r.step, "value": v, "count": int(r.reached), "share": r.share,
+                       "low": r.share_low, "high": r.share_high, "model": r.model})
+    order = "strict order" if res.strict else "in order"
+    c = _hbar(f"Ordered steps: sessions reaching each step {order} ({res.sessions:,} sessions)",
+              "share of all sessions that reach the step", labels, values, texts, "steps", points, xlim=(0, 1))
+    c.notes = [f"Brackets: the {100 * res.level:g}% Jeffreys interval of the share of the step before; model: the "
+               "fitted chain's probability of entering the step from the step before."]
     return c
 
 
@@ -289,7 +394,92 @@ def report_charts(a, top: int = 15, level: float = 0.95, seed: int = 0) -> list[
         c = make(a, top)
         if c is not None:
             out.append(c)
+    return out + time_to_goal_charts(a)
+
+
+def exit_change_intervals(cmp) -> dict:
+    """State index -> (share A, share B, change B − A, low, high): the share of the state's exits
+    that end the session on each side, and the central ``cmp.level`` interval of the change over
+    ``cmp.draws`` seeded draws of each side's posterior. A row's Dirichlet posterior (counts +
+    ``cmp.prior`` on the observed successors, as :mod:`tracechain.analyze.compare` draws it) has
+    the end cell's marginal Beta(x + prior, n − x + (k − 1) prior), k the successors seen (the
+    aggregation property of the Dirichlet distribution, common practice, no source)."""
+    import numpy as np
+
+    end = [i for i, r in enumerate(cmp.roles) if r == "end"]
+    if not end:
+        return {}
+    rows: dict[int, dict] = {}
+    for e in cmp.edges:
+        r = rows.setdefault(e.source, {"na": 0, "nb": 0, "xa": 0, "xb": 0, "ka": 0, "kb": 0})
+        r["na"] += e.count_a
+        r["nb"] += e.count_b
+        r["ka"] += e.count_a > 0
+        r["kb"] += e.count_b > 0
+        if e.target == end[0]:
+            r["xa"], r["xb"] = e.count_a, e.count_b
+    rng = np.random.default_rng(cmp.seed)
+    lo_q, hi_q = (1 - cmp.level) / 2, 1 - (1 - cmp.level) / 2
+    out = {}
+    for i in sorted(rows):
+        r = rows[i]
+        if cmp.roles[i] == "start" or not r["na"] or not r["nb"] or not (r["xa"] or r["xb"]):
+            continue
+        da = _end_draws(r["xa"], r["na"], r["ka"], cmp.prior, cmp.draws, rng)
+        db = _end_draws(r["xb"], r["nb"], r["kb"], cmp.prior, cmp.draws, rng)
+        d = db - da
+        pa, pb = r["xa"] / r["na"], r["xb"] / r["nb"]
+        out[i] = (pa, pb, pb - pa, float(np.quantile(d, lo_q)), float(np.quantile(d, hi_q)))
     return out
+
+
+def _end_draws(x: int, n: int, k: int, prior: float, draws: int, rng):
+    """Draws of the end cell's share under the row's Dirichlet posterior on its ``k`` observed
+    successors: Beta(x + prior, n − x + (k − 1) prior); 0 when the end was not observed (not a
+    successor), 1 when it is the only one."""
+    import numpy as np
+
+    if x == 0:
+        return np.zeros(draws)
+    b = (n - x) + (k - 1) * prior
+    if b <= 0:
+        return np.ones(draws)
+    return rng.beta(x + prior, b, draws)
+
+
+def exit_change_chart(cmp, top: int = 15) -> Chart | None:
+    """Per state: the change B − A of the share of its exits that end the session, with intervals;
+    a rise (more sessions lost there) is worse: warm, hatched, ▲; a fall better: cool, dotted, ▼;
+    a change whose interval holds 0 is light grey and says so."""
+    iv = exit_change_intervals(cmp)
+    if not iv:
+        return None
+    A, B = cmp.names
+    order = sorted(iv, key=lambda i: -abs(iv[i][2]))[:top]
+    labels, values, lows, highs, texts, colors, hatches, points = [], [], [], [], [], [], [], []
+    for i in order:
+        pa, pb, d, lo, hi = iv[i]
+        clear = lo > 0 or hi < 0
+        word = ("worse" if d > 0 else "better") if d != 0 else "no change"
+        sign = "▲" if d > 0 else ("▼" if d < 0 else "=")
+        labels.append(cmp.labels[i])
+        values.append(100 * d)
+        lows.append(100 * lo)
+        highs.append(100 * hi)
+        texts.append(f"{sign} {100 * d:+.1f} ({100 * pa:.0f}% → {100 * pb:.0f}%, {word}"
+                     + ("" if clear else "; interval holds 0") + ")")
+        colors.append((WORSE if d > 0 else BETTER) if clear else "#d9d9d9")
+        hatches.append(("//" if d > 0 else "..") if clear else None)
+        points.append({"state": cmp.labels[i], "value": float(d), "low": lo, "high": hi, "direction": word,
+                       "clear": "yes" if clear else "no"})
+    c = _hbar(f"Per state: change in the share of exits that end the session, {_short(B, 20)} − {_short(A, 20)}",
+              "change in points (percent of the state's exits)", labels, values, texts, "compare-exits", points,
+              lows=lows, highs=highs, colors=colors, hatches=hatches)
+    c.figure.axes[0].axvline(0, color="black", linewidth=1)
+    c.notes = [f"Whiskers: {100 * cmp.level:g}% intervals of the change ({cmp.draws:,} seeded draws of each side's "
+               "Dirichlet posterior). Warm with // hatching: more sessions end there (worse); cool with dots: fewer "
+               "(better); light grey: the interval holds 0."]
+    return c
 
 
 def compare_charts(cmp) -> list[Chart]:
@@ -309,9 +499,10 @@ def compare_charts(cmp) -> list[Chart]:
             highs.append(None if fc.diff_high is None else fc.diff_high * unit)
             sign = "▲" if fc.diff > 0 else ("▼" if fc.diff < 0 else "=")
             word = "worse" if worse and fc.diff != 0 else ("better" if fc.diff != 0 else "no change")
-            texts.append(f"{sign} {v:+.2f} ({word})")
-            colors.append(WORSE if worse and fc.diff != 0 else (BETTER if fc.diff != 0 else NEUTRAL))
-            hatches.append("//" if worse and fc.diff != 0 else ("..") if fc.diff != 0 else None)
+            noise = fc.diff_low is not None and fc.diff_high is not None and fc.diff_low <= 0 <= fc.diff_high
+            texts.append(f"{sign} {v:+.2f} ({word}" + ("; interval holds 0)" if noise else ")"))
+            colors.append("#d9d9d9" if noise else WORSE if worse and fc.diff != 0 else (BETTER if fc.diff != 0 else NEUTRAL))
+            hatches.append(None if noise else "//" if worse and fc.diff != 0 else ("..") if fc.diff != 0 else None)
             points.append({"state": fc.name, "value": float(fc.diff), "low": fc.diff_low, "high": fc.diff_high,
                            "direction": word})
         c = _hbar(f"Change {_short(B, 25)} − {_short(A, 25)}, with intervals",
@@ -319,7 +510,11 @@ def compare_charts(cmp) -> list[Chart]:
                   colors=colors, hatches=hatches)
         c.figure.axes[0].axvline(0, color="black", linewidth=1)
         c.notes = ["Warm vermillion with // hatching: worse (less conversion, more steps); cool blue with dots: "
-                   "better; the sign and the word are in each bar's label. Whiskers: the interval of the change."]
+                   "better; light grey: the interval holds 0; the sign and the word are in each bar's label. "
+                   "Whiskers: the interval of the change."]
+        out.append(c)
+    c = exit_change_chart(cmp)
+    if c is not None:
         out.append(c)
     tested = [t for t in cmp.tests if t.tvd is not None]
     tested.sort(key=lambda t: (not t.significant, -(t.tvd or 0)))

@@ -473,7 +473,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
     from ..analyze.compare import compare_counts
     from ..options import EXIT_OK
     from ..errors import RenderError, UsageError
-    from .dot import render_diff_dot, render_image
+    from .dot import fit_diff_dot, render_image
     from .html import build_compare_report, render_html
     from .markdown import render_markdown
     from .writer import write_output
@@ -495,7 +495,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
     dot_text = None
     svg = missing = None
     if args.dot or args.svg or args.html or args.markdown:
-        dot_text = render_diff_dot(cmp, title=args.title, min_edge_share=args.min_edge_share,
+        dot_text = fit_diff_dot(cmp, "page", title=args.title, min_edge_share=args.min_edge_share,
                                    states=None if args.full_diagram else changed_neighbourhood(cmp))
         if args.dot:
             written.append(write_output(args.dot, dot_text))

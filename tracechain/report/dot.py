@@ -43,9 +43,11 @@ labels; node ids are our own (``n0``, ``n1``).
 
 :func:`render_diff_dot` draws a comparison of two chains (see
 :mod:`tracechain.analyze.compare`) in the same vocabulary: a significant increase is a
-thick solid blue edge with ▲, a significant decrease a thick dashed vermillion edge with
-▼, a transition seen on one side only is dotted (◆ new, ◇ gone), and the rest are thin
-and grey.
+thick solid edge with ▲, a significant decrease a thick dashed edge with ▼, warm vermillion
+when it is worse (more exits, fewer goals) and cool blue when better, with the word in the
+label; a transition seen on one side only is dotted (◆ new, ◇ gone), and the rest are thin
+and grey. Its review layout (the default; :func:`fit_diff_dot` picks the direction for a page)
+draws the exits as a line in each state instead of edges to an end box.
 """
 
 from __future__ import annotations
@@ -62,7 +64,8 @@ from ..analyze.summary import Analysis
 from ..errors import AnalysisError, RenderError
 
 __all__ = ["first_arrival_median", "FIT_PRESETS", "fit_diagram", "measure_layout", "legible_px", "render_dot", "render_image", "dot_quote", "build_diagram", "Diagram", "render_diff_dot",
-           "resolve_state", "FORMATS"]
+           "resolve_state", "FORMATS", "fit_diff_dot", "title_hits",
+           "lift_edge_labels"]
 
 FORMATS = ("dot", "svg", "png", "pdf")
 
@@ -271,8 +274,12 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
                   radius: int = 1, rank_by_distance: bool | str = "auto", max_edges: int | None = None,
                   end_edges: str = "auto", layout: str = "review", fit: str | None = None,
                   font_scale: float = 1.0, bare_edges: frozenset = frozenset(), extra_notes: tuple = (),
-                  direction: str | None = None) -> Diagram:
+                  direction: str | None = None, title_places: dict | None = None) -> Diagram:
     """The diagram of an analysis, with what it left out.
+
+    ``title_places`` maps a group frame's name (``cluster_group<k>``) to where its title goes,
+    ``(labelloc, labeljust)`` such as ``("t", "l")`` (default: top centre); :func:`fit_diagram`
+    moves a title that a drawn edge runs through.
 
     An edge is *rare*, and hidden, when it carries less than ``min_edge_share`` of all
     transitions and also less than ``min_edge_prob`` of its source state's exits (so a small
@@ -533,8 +540,6 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         extra = f"{v:,} visits" if has_counts else None
         if has_counts and opened[i]:
             extra += f" · {int(opened[i]):,} still open"
-        if has_counts and flying[i]:
-            extra += f" · {int(flying[i]):,} in flight"
         foc = dict(penwidth=3) if i == focus_idx else {}
         tag = (["◎ focus"] if i == focus_idx else [])
         if i in starts_of and starts_of[i][1] >= 0.01:  # under 1% of starts: the edge's width says enough
@@ -649,8 +654,9 @@ def build_diagram(a: Analysis, min_edge_share: float = 0.005, max_states: int = 
         present.add("group")
     for gk, gname in enumerate(group_names):
         out.append(f"  subgraph cluster_group{gk} {{")
+        loc, just = (title_places or {}).get(f"cluster_group{gk}", (None, None))
         out.append("    graph " + _attrs(label=_label(gname, limit=40), style="rounded", color=_GROUP_LINE,
-                                         fontcolor="#333333", penwidth=1) + ";")
+                                         fontcolor="#333333", penwidth=1, labelloc=loc, labeljust=just) + ";")
         for k, members in trap_blocks:
             if members and all(group_of.get(s) == gname for s in members):
                 out.extend(trap_cluster(k, members, "    "))
@@ -861,7 +867,54 @@ def measure_layout(dot_text: str) -> dict:
     g = json.loads(render_image(dot_text, "json"))
     unplaced = [e.get("id") for e in g.get("edges", [])
                 if e.get("xlabel") and not any(k in e for k in ("_xldraw_", "_ldraw_"))]
-    return dict(width=vb[2], height=vb[3], min_font=min(sizes, default=0.0), unplaced=unplaced, svg=svg)
+    return dict(width=vb[2], height=vb[3], min_font=min(sizes, default=0.0), unplaced=unplaced, svg=svg,
+                title_hits=title_hits(g))
+
+
+def title_hits(g: dict) -> dict[str, int]:
+    """Group frame (``cluster_group<k>``) -> how many drawn edges run through its title, on
+    Graphviz's ``-Tjson`` layout: each edge's Bézier curve (xdot ``b`` operation, sampled), widened
+    by half its pen width, against the title's text box (``T`` operation: baseline point, width,
+    alignment; 0.2 em below the baseline to 0.8 em above)."""
+    boxes = {}
+    for o in g.get("objects", []):
+        if not str(o.get("name", "")).startswith("cluster_group"):
+            continue
+        size = 14.0
+        for op in o.get("_ldraw_", []):
+            if op["op"] == "F":
+                size = float(op["size"])
+            elif op["op"] == "T":
+                x, y = op["pt"]
+                w = float(op["width"])
+                x0 = {"c": x - w / 2, "r": x - w}.get(op["align"], x)
+                boxes[o["name"]] = (x0, y - 0.2 * size, x0 + w, y + 0.8 * size)
+    hits = {name: 0 for name in boxes}
+    if not boxes:
+        return hits
+    t = np.linspace(0.0, 1.0, 17)[:, None]
+    for e in g.get("edges", []):
+        pen = 1.0
+        pts = []
+        for op in e.get("_draw_", []):
+            if op["op"] == "S" and op.get("style", "").startswith("setlinewidth("):
+                pen = float(op["style"][13:-1])
+            elif op["op"] in ("b", "B"):
+                P = np.asarray(op["points"], dtype=float)
+                for k in range(0, len(P) - 3, 3):
+                    p0, p1, p2, p3 = P[k:k + 4]
+                    pts.append((1 - t) ** 3 * p0 + 3 * (1 - t) ** 2 * t * p1 + 3 * (1 - t) * t ** 2 * p2 + t ** 3 * p3)
+        if not pts:
+            continue
+        xy = np.vstack(pts)
+        for name, (x0, y0, x1, y1) in boxes.items():
+            r = pen / 2
+            if np.any((xy[:, 0] >= x0 - r) & (xy[:, 0] <= x1 + r) & (xy[:, 1] >= y0 - r) & (xy[:, 1] <= y1 + r)):
+                hits[name] += 1
+    return hits
+
+
+_TITLE_PLACES = (("t", "l"), ("t", "r"), ("b", "l"), ("b", "r"))
 
 
 def legible_px(m: dict, fit: str) -> float:
@@ -928,6 +981,21 @@ def fit_diagram(a: Analysis, fit: str, **kw) -> Diagram:
         d = build_diagram(a, fit=fit, font_scale=scale, bare_edges=frozenset(bare), extra_notes=tuple(notes),
                           **kw, **({"max_states": max_states} if max_states else {}))
         m = measure_layout(d.dot)
+    if any(m["title_hits"].values()):
+        # a frame's title that an edge runs through moves to the corner (top or bottom, left or
+        # right) where the fewest edges run through it; kept only if that lowers the count
+        again = dict(kw, fit=fit, font_scale=scale, bare_edges=frozenset(bare), extra_notes=tuple(notes),
+                     **({"max_states": max_states} if max_states else {}))
+        tried = {place: measure_layout(build_diagram(a, title_places={c: place for c in m["title_hits"]},
+                                                     **again).dot)["title_hits"] for place in _TITLE_PLACES}
+        choice = {c: min([(None, None), *_TITLE_PLACES],
+                         key=lambda p: (m if p == (None, None) else {"title_hits": tried[p]})["title_hits"].get(c, 0))
+                  for c in m["title_hits"]}
+        d2 = build_diagram(a, title_places=choice, **again)
+        m2 = measure_layout(d2.dot)
+        if sum(m2["title_hits"].values()) < sum(m["title_hits"].values()) and not m2["unplaced"] \
+                and legible_px(m2, fit) >= min(want, legible_px(m, fit)) - 1e-9:
+            d = d2
     return d
 
 
@@ -1053,7 +1121,8 @@ def diff_verdict(cmp, e) -> str | None:
     return None
 
 
-def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, states=None) -> str:
+def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, states=None,
+                    layout: str = "review", direction: str = "LR") -> str:
     """A diagram of a :class:`~tracechain.analyze.compare.Comparison`.
 
     Every state of either side is drawn once; an edge is drawn for every transition seen
@@ -1064,7 +1133,16 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
     ``min_edge_share`` of all transitions on both sides are not drawn (and counted in the
     caption) unless they are styled as significant. ``states`` (chain indices), when given,
     draws only those states and the edges between them (the caption says how many were left out).
+
+    ``layout="review"`` (the default) draws no end box: each state's exits are a line in the state,
+    ``⤓ end A → B``, and a significant change of them colours the state's outline (warm vermillion:
+    more exits, worse; cool blue: fewer, better; the word is in the line); goals and terminals share
+    the last rank; type is the page preset's; a drawn state that no drawn edge reaches gets a dotted
+    edge from the start (a path through states not drawn). ``layout="classic"`` draws the end box.
     """
+    if layout not in ("classic", "review"):
+        raise AnalysisError(f"layout must be 'classic' or 'review', not {layout!r}")
+    review = layout == "review"
     labels = cmp.labels
     keep = None if states is None else set(states)
     n = len(cmp.states)
@@ -1085,6 +1163,10 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
         if hidden:
             cap.append(f"focused on the states that changed and their neighbours; {hidden} other "
                        f"state{'s' if hidden != 1 else ''} not drawn")
+    exits_of = {}
+    if review:  # exits become a line in their state (also where the focus leaves the end out)
+        exits_of = {e.source: e for e in cmp.edges if cmp.roles[e.target] == "end"}
+        edges = [e for e in edges if cmp.roles[e.target] != "end"]
     for e in edges:
         if e.change in ("up", "down"):
             shown_edges.append(e)
@@ -1095,11 +1177,13 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
     if skipped:
         cap.append(f"{skipped} rare transition{'s' if skipped != 1 else ''} not drawn "
                    f"(under {100 * min_edge_share:g}% of all transitions on both sides)")
-    out.append("  graph " + _attrs(rankdir="LR", fontname="Helvetica", fontsize=11, labelloc="t",
-                                   label=_label(*cap, limit=200), newrank="true", ranksep=0.55) + ";")
-    out.append("  node " + _attrs(fontname="Helvetica", fontsize=10, shape="box", style="rounded",
+    sizes = FIT_PRESETS["page"] if review else dict(caption=11, node=10, edge=9)
+    out.append("  graph " + _attrs(rankdir=direction, fontname="Helvetica", fontsize=sizes["caption"], labelloc="t",
+                                   label=_REVIEW_LABEL if review else _label(*cap, limit=200), newrank="true",
+                                   ranksep=0.55) + ";")
+    out.append("  node " + _attrs(fontname="Helvetica", fontsize=sizes["node"], shape="box", style="rounded",
                                   color="#666666") + ";")
-    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=9, color=_MUTED, fontcolor="#777777",
+    out.append("  edge " + _attrs(fontname="Helvetica", fontsize=sizes["edge"], color=_MUTED, fontcolor="#777777",
                                   arrowsize=0.7) + ";")
     tests = {t.state: t for t in cmp.tests}
     present = set()
@@ -1109,11 +1193,12 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
         if keep is not None and i not in keep:
             continue
         if role == "start":
-            out.append(f"  n{i} " + _attrs(shape="circle", label="start", width=0.5, fixedsize="true",
-                                           style="solid") + ";")
+            size = dict(margin=0.02) if review else dict(width=0.5, fixedsize="true")
+            out.append(f"  n{i} " + _attrs(shape="circle", label="start", style="solid", **size) + ";")
             continue
         if role == "end":
-            out.append(f"  n{i} " + _attrs(shape="box", style="dashed", label="end") + ";")
+            if not review:
+                out.append(f"  n{i} " + _attrs(shape="box", style="dashed", label="end") + ";")
             continue
         kw: dict = {}
         lines = [name]
@@ -1138,6 +1223,15 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
             kw.update(penwidth=2.5, color="#000000")
             present.add("changed")
         lines.append(f"{va:,} → {vb:,} visits")
+        ex = exits_of.get(i)
+        if ex is not None:
+            verdict = diff_verdict(cmp, ex)
+            mark = {"up": "▲ ", "down": "▼ "}.get(ex.change, "")
+            lines.append(f"{mark}⤓ end {_p(ex.p_a)} → {_p(ex.p_b)}" + (f" ({verdict})" if verdict else ""))
+            if verdict:
+                kw.update(color={"worse": _WORSE, "better": _BETTER}[verdict], penwidth=3)
+                present.add(f"exit_{verdict}")
+            present.add("exit_line")
         out.append(f"  n{i} " + _attrs(label=_label(*lines), **kw) + ";")
     for e in shown_edges:
         pa_, pb_ = e.p_a, e.p_b
@@ -1174,11 +1268,47 @@ def render_diff_dot(cmp, title: str | None = None, min_edge_share: float = 0.0, 
     for lv in sorted(by_level):
         out.append("  { rank=same; " + " ".join(f"n{i};" for i in sorted(by_level[lv])) + " }")
     end = next((i for i in range(n) if cmp.roles[i] == "end"), None)
-    if end is not None and big:
+    if end is not None and big and not review:
         out.append(f"  {{ rank=max; n{end}; }}")
-    out.extend(_diff_legend(present))
+    if review:
+        drawn = [i for i in range(n) if (keep is None or i in keep) and cmp.roles[i] != "end"]
+        reached = {e.target for e in shown_edges if e.source != e.target}
+        if start is not None and start in drawn:
+            for i in drawn:
+                if i != start and i not in reached:
+                    out.append(f"  n{start} -> n{i} " + _attrs(style="dotted", color=_END_EDGE, label="⋯",
+                                                               fontcolor="#555555") + ";")
+                    present.add("shortcut")
+        last = [i for i in drawn if cmp.roles[i] in ("goal", "terminal")]
+        if last:
+            out.append("  { rank=max; " + " ".join(f"n{i};" for i in last) + " }")
+    if review:  # caption and legend in one strip above the diagram, as in the review layout
+        import textwrap
+
+        lines = [part for c in cap for part in textwrap.wrap(c, sizes["wrap"])]
+        label = _caption_table(lines, _diff_legend_rows(present), caption_size=sizes["caption"],
+                               legend_size=sizes["edge"], per_row=3)
+        out = [ln.replace(_REVIEW_LABEL.text, label) for ln in out]
+    else:
+        out.extend(_diff_legend(present))
     out.append("}")
     return "\n".join(out) + "\n"
+
+
+def fit_diff_dot(cmp, fit: str = "page", **kw) -> str:
+    """:func:`render_diff_dot` (review layout) with its ranks left to right or top to bottom,
+    whichever shows the smallest text larger at the preset's target (measured on Graphviz's
+    layout, as :func:`fit_diagram` does); without Graphviz, left to right unmeasured."""
+    best, best_px = None, -1.0
+    for direction in ("LR", "TB"):
+        text = render_diff_dot(cmp, direction=direction, **kw)
+        try:
+            px = legible_px(measure_layout(text), fit)
+        except RenderError:
+            return text
+        if px > best_px + 1e-9:
+            best, best_px = text, px
+    return best
 
 
 _WORSE = "#d55e00"  # Okabe-Ito vermillion: warm, a change for the worse
@@ -1189,7 +1319,12 @@ def _p(x: float | None) -> str:
     return "–" if x is None else f"{100 * x:.0f}%"
 
 
-def _diff_legend(present: set[str]) -> list[str]:
+def _diff_legend(present: set[str], fontsize: int = 9) -> list[str]:
+    return [_legend_node(_diff_legend_rows(present), fontsize)]
+
+
+def _diff_legend_rows(present: set[str]) -> list[str]:
+    """The comparison legend's (sample, meaning) cell pairs for what ``present`` says is drawn."""
     rows = [_line("───▶", _MUTED) + _desc("P(A) → P(B), no significant change")]
     if "up" in present:
         rows.append(_line("━━━▶", "#000000") + _desc("▲ significant increase: thick solid"))
@@ -1207,7 +1342,44 @@ def _diff_legend(present: set[str]) -> list[str]:
         rows.append(_cell("state", style="rounded", border=3) + _desc("Δ exits changed: thick outline"))
     if "new_state" in present or "gone_state" in present:
         rows.append(_cell("state", style="dotted") + _desc("◆ new / ◇ gone state: dotted outline"))
-    return [_legend_node(rows)]
+    if "exit_line" in present:
+        rows.append(_cell("⤓ end") + _desc("share of the state's visits that end there, A → B"))
+    if "exit_worse" in present:
+        rows.append(_cell("state", style="rounded", border=3, color=_WORSE) + _desc("▲ more end there (worse): warm outline"))
+    if "exit_better" in present:
+        rows.append(_cell("state", style="rounded", border=3, color=_BETTER) + _desc("▼ fewer end there (better): cool outline"))
+    if "shortcut" in present:
+        rows.append(_line("┈┈┈▶", _END_EDGE) + _desc("⋯ a path through states not drawn: dotted"))
+    return rows
+
+
+def lift_edge_labels(svg: bytes) -> bytes:
+    """Graphviz's SVG with every edge label moved to the end of the drawing, each with a white
+    halo (a stroke painted under its letters), so no edge drawn later runs over a label and a line
+    passing behind one does not cut through its letters. Positions are unchanged (Graphviz puts
+    no transform inside the graph's group)."""
+    import xml.etree.ElementTree as ET
+
+    ns = "http://www.w3.org/2000/svg"
+    ET.register_namespace("", ns)
+    ET.register_namespace("xlink", "http://www.w3.org/1999/xlink")
+    root = ET.fromstring(svg)
+    graph = next((g for g in root.iter(f"{{{ns}}}g") if g.get("class") == "graph"), None)
+    if graph is None:
+        return svg
+    layer = ET.Element(f"{{{ns}}}g", {"class": "edge-labels"})
+    for edge in [g for g in graph.iter(f"{{{ns}}}g") if g.get("class") == "edge"]:
+        for parent in [edge, *edge.iter(f"{{{ns}}}g")]:
+            for t in [c for c in parent if c.tag == f"{{{ns}}}text"]:
+                parent.remove(t)
+                t.set("stroke", "#ffffff")
+                t.set("stroke-width", "3")
+                t.set("stroke-linejoin", "round")
+                t.set("paint-order", "stroke")
+                layer.append(t)
+    if len(layer):
+        graph.append(layer)
+    return ET.tostring(root, encoding="utf-8", xml_declaration=True)
 
 
 def render_image(dot_text: str, fmt: str) -> bytes:
@@ -1217,7 +1389,8 @@ def render_image(dot_text: str, fmt: str) -> bytes:
     if fmt not in ("svg", "png", "pdf", "json"):
         raise RenderError(f"unknown diagram format {fmt!r}")
     try:
-        return graphviz.Source(dot_text).pipe(format=fmt, quiet=True)
+        data = graphviz.Source(dot_text).pipe(format=fmt, quiet=True)
+        return lift_edge_labels(data) if fmt == "svg" else data
     except graphviz.ExecutableNotFound as err:
         raise RenderError(
             "the Graphviz 'dot' program is not installed (Debian/Ubuntu: apt-get install graphviz); "

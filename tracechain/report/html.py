@@ -202,6 +202,7 @@ _SVG_ATTRS = {
     "rx", "ry", "fill", "fill-opacity", "stroke", "stroke-width", "stroke-dasharray", "stroke-opacity",
     "stroke-linecap", "stroke-linejoin", "font-family", "font-size", "font-weight", "font-style",
     "text-anchor", "class", "id", "opacity", "preserveAspectRatio", "text-decoration", "baseline-shift",
+    "paint-order",
 }
 
 
@@ -307,7 +308,9 @@ def _headline(a: Analysis, ext: Any, ext_reason: str | None) -> list:
 
 def _diagram_section(a: Analysis, svg: str | None, diagram, missing: str | None) -> Section:
     cap = list(diagram.notes) if diagram is not None else []
-    cap.insert(0, "Columns run from the start (left); width of an edge = number of transitions; labels give "
+    flow = "from the start down the page" if diagram is not None and 'rankdir="TB"' in diagram.dot else \
+        "from the start (left) to the right"
+    cap.insert(0, f"The states run {flow}; width of an edge = number of transitions; labels give "
                   "the probability of the edge among its state's exits, and the count. The legend explains "
                   "shapes and line styles.")
     if diagram is not None and diagram.focus is not None:
@@ -907,6 +910,8 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         if fc.diff:  # fewer conversions or more steps: worse
             arrow = "▲" if fc.diff > 0 else "▼"
             change += f" {arrow} " + ("worse" if (fc.diff < 0 if pct else fc.diff > 0) else "better")
+            if fc.diff_low is not None and fc.diff_high is not None and fc.diff_low <= 0 <= fc.diff_high:
+                change += " (interval holds 0)"
         rows.append([fc.name, _iv(fc.a, fc.a_low, fc.a_high, pct), _iv(fc.b, fc.b_low, fc.b_high, pct), change])
     sig = cmp.significant
     blocks: list = [
@@ -923,11 +928,13 @@ def comparison_sections(cmp, diff_svg: str | bytes | None = None, pseudo: Pseudo
         clean = sanitize_svg(diff_svg, "Comparison diagram") if diff_svg is not None else None
         out.append(Section("compare-diagram", "What changed, drawn", [Figure(
             clean,
-            ["Drawn: the states whose exits changed and their neighbours. Edges in those states: a rise is thick "
-             "and solid with ▲, a fall thick and dashed with ▼; a change for the worse (more exits into the end, "
-             "fewer transitions into a goal) is warm vermillion and says '(worse)', one for the better cool blue "
-             "and says '(better)', other changes black; a transition seen on one side only is dotted (◆ only in "
-             "B, ◇ only in A); the rest are thin and grey. Labels: probability in A → probability in B."],
+            ["Drawn: the states whose exits changed and their neighbours. Each state says how many of its visits "
+             "end there (⤓ end A → B); a significant rise of those outlines the state in warm vermillion and says "
+             "'(worse)', a fall in cool blue and says '(better)'. Edges in changed states: a rise is thick "
+             "and solid with ▲, a fall thick and dashed with ▼; fewer transitions into a goal are warm "
+             "vermillion '(worse)', more cool blue '(better)', other changes black; a transition seen on one side "
+             "only is dotted (◆ only in B, ◇ only in A); a dotted ⋯ edge from the start stands for a path through "
+             "states not drawn; the rest are thin and grey. Labels: probability in A → probability in B."],
             "Comparison diagram", diff_missing)]))
     trows = []
     for t in sorted(cmp.tests, key=lambda t: (not t.significant, t.q_value if t.q_value is not None else 2.0)):

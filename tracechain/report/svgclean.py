@@ -19,6 +19,9 @@ XLINK_NS = "http://www.w3.org/1999/xlink"
 __all__ = ["clean_svg", "SVG_NS", "XLINK_NS"]
 
 
+_NUMERIC_TRANSFORM = re.compile(r"(\s*(translate|rotate|scale|matrix)\(\s*[-+\d.eE]+(\s*[,\s]\s*[-+\d.eE]+)*\s*\)\s*)+")
+
+
 def _local(tag: str) -> str:
     return tag.split("}", 1)[-1] if tag.startswith("{") else tag
 
@@ -99,6 +102,8 @@ def clean_svg(svg: bytes | str, *, label: str, tags: set[str], attrs: set[str], 
                 if not v.startswith("#"):
                     continue
                 v = "#" + ident(v[1:])
+            elif n == "transform" and _NUMERIC_TRANSFORM.fullmatch(v):
+                pass  # numbers only: how matplotlib places each line of a multi-line text
             else:
                 v = value(v)
                 if v is None:

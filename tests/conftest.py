@@ -14,7 +14,7 @@ import pytest
 
 REPO = Path(__file__).resolve().parent.parent
 SAMPLES = REPO / "sample_traces"
-SCHEMA_PATH = REPO / "tracechain" / "schemas" / "analysis-1.schema.json"
+SCHEMA_PATH = REPO / "tracechain" / "schemas" / "analysis-2.schema.json"
 
 
 def _refuse_constant(name: str):

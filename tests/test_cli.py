@@ -65,7 +65,7 @@ def test_quiet_writes_files_only(run_cli, shop_log, tmp_path, strict_json):
     status, out, err = run_cli("analyze", shop_log, "--goal", "Paid", "--json", target, "-q")
     assert status == 0 and out == ""
     assert f"wrote {target}" in err
-    assert strict_json(target.read_text(encoding="utf-8"))["schema_version"] == "1.1"
+    assert strict_json(target.read_text(encoding="utf-8"))["schema_version"] == "2.0"
 
 
 # -- degenerate inputs ------------------------------------------------------------------------
@@ -235,7 +235,7 @@ def test_output_through_a_symlink_keeps_the_link(run_cli, shop_log, tmp_path, st
     status, _, err = run_cli("analyze", shop_log, "--json", link, "-q")
     assert status == 0, err
     assert link.is_symlink()
-    assert strict_json(real.read_text(encoding="utf-8"))["schema_version"] == "1.1"
+    assert strict_json(real.read_text(encoding="utf-8"))["schema_version"] == "2.0"
 
 
 def test_output_to_a_fifo_is_written_in_place(run_cli, shop_log, tmp_path, strict_json):
@@ -253,4 +253,4 @@ def test_output_to_a_fifo_is_written_in_place(run_cli, shop_log, tmp_path, stric
     reader.join(timeout=10)
     assert status == 0, err
     assert stat.S_ISFIFO(os.stat(fifo).st_mode)
-    assert got and strict_json(got[0].decode("utf-8"))["schema_version"] == "1.1"
+    assert got and strict_json(got[0].decode("utf-8"))["schema_version"] == "2.0"

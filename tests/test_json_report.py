@@ -52,7 +52,7 @@ def test_sample_documents_validate(sample_docs, schema_validator, name):
     doc = sample_docs[name]
     errors = sorted(schema_validator.iter_errors(doc), key=lambda e: list(e.path))
     assert not errors, [f"{list(e.path)}: {e.message}" for e in errors[:5]]
-    assert doc["schema_version"] == SCHEMA_VERSION == "1.1"
+    assert doc["schema_version"] == SCHEMA_VERSION == "2.0"
 
 
 @pytest.mark.parametrize("name", ["shop", "tickets", "tickets-order2"])

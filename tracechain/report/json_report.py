@@ -1,6 +1,6 @@
 """The analysis as a JSON document, versioned and described by a JSON Schema.
 
-The schema is ``tracechain/schemas/analysis-1.schema.json`` (JSON Schema draft
+The schema is ``tracechain/schemas/analysis-2.schema.json`` (JSON Schema draft
 2020-12). Every document carries ``schema_version``; no NaN or Infinity is ever written
 (undefined figures are ``null``).
 """
@@ -20,14 +20,15 @@ from ..analyze.summary import Analysis
 
 __all__ = ["SCHEMA_VERSION", "analysis_document", "dumps", "load_schema"]
 
-#: 1.1: ``visits`` everywhere counts arrivals in the state (whoever arrives; before, the per-state
-#: rows left out the last visit of open and in-flight cases); state rows gain ``open`` and
-#: ``in_flight`` (and ``p_stuck``); stale open cases are an outcome by default (``outcomes``).
-SCHEMA_VERSION = "1.1"
+#: 2.0, a major version because a field kept its name and changed its meaning: ``visits``
+#: everywhere counts arrivals in the state (whoever arrives; in 1.0 the per-state rows left out
+#: the last visit of open and in-flight cases); state rows gain ``open`` and ``in_flight`` (and
+#: ``p_stuck``); stale open cases are an outcome by default (``outcomes``).
+SCHEMA_VERSION = "2.0"
 
 
 def load_schema() -> dict:
-    text = resources.files("tracechain").joinpath("schemas/analysis-1.schema.json").read_text(encoding="utf-8")
+    text = resources.files("tracechain").joinpath("schemas/analysis-2.schema.json").read_text(encoding="utf-8")
     return json.loads(text)
 
 

@@ -478,7 +478,8 @@ def exit_change_chart(cmp, top: int = 15) -> Chart | None:
     c.figure.axes[0].axvline(0, color="black", linewidth=1)
     c.notes = [f"Whiskers: {100 * cmp.level:g}% intervals of the change ({cmp.draws:,} seeded draws of each side's "
                "Dirichlet posterior). Warm with // hatching: more sessions end there (worse); cool with dots: fewer "
-               "(better); light grey: the interval holds 0."]
+               "(better); light grey: the interval holds 0. Each state's interval stands alone, not adjusted for "
+               "looking at many states: the per-state tests (Benjamini-Hochberg) say which states changed."]
     return c
 
 

@@ -91,7 +91,7 @@ def test_schema_rejects_broken_documents(sample_docs, schema_validator):
     doc = sample_docs["shop"]
     mutations = [
         lambda d: d.pop("schema_version"),
-        lambda d: d.__setitem__("schema_version", "2.0"),
+        lambda d: d.__setitem__("schema_version", "3.0"),
         lambda d: d["conversion"].__setitem__("from_start", 1.5),
         lambda d: d["states"][0].__setitem__("role", "lost"),
         lambda d: d["classes"][0].__setitem__("period", 0),

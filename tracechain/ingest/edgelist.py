@@ -366,8 +366,11 @@ def _build(fast, rows: _Rows, source: Source, options: ReadOptions) -> Transitio
     r, c, v, g = code[a[inner]], code[b[inner]], cnt[inner], gap[inner]
     has_gap = ~np.isnan(g)
     counts = _csr(m, r, c, v)
-    gap_sum = _csr(m, r, c, np.where(has_gap, g, 0.0), dtype=np.float64)
-    gap_n = _csr(m, r, c, np.where(has_gap, v, 0))
+    # only the rows that carry a gap: an edge list without gap_sum (the usual case) then holds no
+    # second and third matrix of explicit zeros (at 10^6 edges, ~50 MB of the read's peak)
+    gr, gc = r[has_gap], c[has_gap]
+    gap_sum = _csr(m, gr, gc, g[has_gap], dtype=np.float64)
+    gap_n = _csr(m, gr, gc, v[has_gap])
     return TransitionCounts(
         states, counts, starts, ends, np.zeros(m, dtype=np.int64), gap_sum, gap_n,
         sessions=int(starts.sum()), events=int(v.sum()) + int(starts.sum()), meta={"pre_aggregated": True},

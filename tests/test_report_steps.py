@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 
+import numpy as np
 import pytest
 
 from tracechain.cli import main
@@ -153,3 +154,24 @@ def test_no_section_without_steps(tmp_path, capsys):
     capsys.readouterr()
     assert main(["report", str(src), "--html", str(h), "--within", "1h"]) == 2
     assert "--within and --strict-order go with --steps" in capsys.readouterr().err
+
+
+def test_chart_labels_end_inside_the_figure():
+    """A first step that every session reaches: its bar spans the whole share axis, and its label must
+    still end inside the figure (a file cuts off what runs past its edge). Extents measured by
+    matplotlib's own layout (common practice, no source); the scale's ticks stay within 0..1."""
+    pytest.importorskip("matplotlib")
+    from tracechain.analyze.order import Sessions
+    from tracechain.analyze.steps import steps_analysis
+    from tracechain.report.charts import steps_chart
+
+    seqs = tuple(("Home", "Item", "Cart", "Paid")[: 1 + k % 4] for k in range(40))
+    sessions = Sessions(seqs, tuple(np.full(len(s), np.nan) for s in seqs), tuple(f"s{k}" for k in range(40)))
+    res = steps_analysis(sessions, ["Home", "Item", "Cart", "Paid"])
+    assert res.rows[0].reached == 40  # every session, by construction
+    fig = steps_chart(res).figure
+    fig.draw_without_rendering()
+    ax = fig.axes[0]
+    right = max(t.get_window_extent().x1 for t in ax.texts)
+    assert right <= fig.bbox.x1
+    assert max(ax.get_xticks()) <= 1.0 and ax.get_xlim()[1] > 1.0  # room made for the label, not a longer scale

@@ -175,3 +175,18 @@ def test_chart_labels_end_inside_the_figure():
     right = max(t.get_window_extent().x1 for t in ax.texts)
     assert right <= fig.bbox.x1
     assert max(ax.get_xticks()) <= 1.0 and ax.get_xlim()[1] > 1.0  # room made for the label, not a longer scale
+
+
+def test_standard_input_is_refused_before_reading(tmp_path):
+    """The steps read the sessions a second time, which standard input cannot give: a usage error naming it,
+    before the report reads anything (exit 2), not an empty section."""
+    import subprocess
+    import sys
+
+    src = _write(tmp_path, LOG)
+    cmd = [sys.executable, "-m", "tracechain.cli", "report", "-", "--format", "csv", "--steps", "Home,Item", "--html",
+           str(tmp_path / "r.html")]
+    p = subprocess.run(cmd, input=src.read_bytes(), capture_output=True)
+    assert p.returncode == 2
+    assert b"report --steps reads the input a second time, which standard input cannot give" in p.stderr
+    assert b"Traceback" not in p.stderr and not (tmp_path / "r.html").exists()

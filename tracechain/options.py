@@ -282,21 +282,26 @@ def add_segment_options(p: argparse.ArgumentParser) -> None:
 def segments_possible(args: argparse.Namespace) -> None:
     """Refuse, before any reading, what ``--segment-by`` cannot do: another engine, or an input that
     cannot be read twice (standard input, a named pipe); and ``--segments`` without it."""
-    import os
-    import stat
-
     if args.segment_by is None:
         if args.segments is not None:
             raise UsageError("--segments K goes with --segment-by FIELD")
         return
     native_only(args, "--segment-by")
+    readable_twice(args, "--segment-by")
+
+
+def readable_twice(args: argparse.Namespace, what: str) -> None:
+    """Refuse, before any reading, an input that cannot be read a second time (standard input, a named pipe)."""
+    import os
+    import stat
+
     for p in args.paths:
         try:
             pipe = p == "-" or stat.S_ISFIFO(os.stat(p).st_mode)
         except OSError:
             continue  # (a glob or a missing file: the reader says what is wrong)
         if pipe:
-            raise UsageError(f"--segment-by reads the input a second time, which {'standard input' if p == '-' else p} "
+            raise UsageError(f"{what} reads the input a second time, which {'standard input' if p == '-' else p} "
                              "cannot give: save it to a file first")
 
 

@@ -317,9 +317,11 @@ def cmd_report(args: argparse.Namespace) -> int:
     from ..options import segments_possible
 
     segments_possible(args)  # before any reading
-    from ..options import steps_wanted
+    from ..options import native_only, readable_twice, steps_wanted
 
-    steps_wanted(args)
+    if steps_wanted(args) is not None and (args.html or args.markdown):
+        native_only(args, "report --steps")
+        readable_twice(args, "report --steps")
     chain, report, settings = build_chain(args)
     result = with_case_figures(analyze(chain, report, top=max(args.top, 10), settings=settings,
                                        min_visits=args.min_visits), args)

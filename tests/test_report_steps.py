@@ -190,3 +190,14 @@ def test_standard_input_is_refused_before_reading(tmp_path):
     assert p.returncode == 2
     assert b"report --steps reads the input a second time, which standard input cannot give" in p.stderr
     assert b"Traceback" not in p.stderr and not (tmp_path / "r.html").exists()
+
+
+def test_strict_order_and_within_reach_the_section(tmp_path):
+    """--strict-order and --within go to the section as to ``steps --json``. By hand, strict order and each step
+    within 50 s of Home: Home in s1 s2 s3 s4 s6; Item next without another state between, within 50 s: s1 (10 s),
+    s3 (30 s), s6 (5 s) (s2 has Help between, s4 Cart next); Cart then: s1 only (40 s; s6 has Help between)."""
+    doc, html_text, _ = _run(tmp_path, LOG, STEPS, ("--strict-order", "--within", "50s"))
+    (rows,) = tables(dom(html_text).find_id("steps")).values()
+    assert rows[1:] == _expected_rows(doc)
+    assert [int(r[1]) for r in rows[1:]] == [5, 3, 1, 0]
+    assert "strict order" in dom(html_text).find_id("steps").all_text()

@@ -4,8 +4,9 @@
 the handlers take the shared options from :mod:`tracechain.options`. The old ``main`` and
 ``build_parser`` of this module are now ``tracechain.cli``'s (it registers these commands).
 
-``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE]``
-    the analysis as a self-contained HTML report, a Markdown summary, per-state CSV.
+``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE] [--steps LIST]``
+    the analysis as a self-contained HTML report, a Markdown summary, per-state CSV; with
+    ``--steps`` also the ordered steps (a funnel) as a section of the report.
 
 ``tracechain compare A B`` or ``tracechain compare PATH --split-at TIME`` or
 ``tracechain compare PATH --split-field NAME --split-values X,Y``

@@ -187,6 +187,53 @@ def sessions_from_args(args, what: str):
                                          progress=progress_from_args(args), filters=shape.filters), shape)
 
 
+def add_steps_options(group, required: bool = False) -> None:
+    """``--steps LIST``, ``--within DURATION`` and ``--strict-order`` (steps, report: one definition for both,
+    so that the report's section shows what ``tracechain steps`` shows for the same input)."""
+    from .durations import parse_duration
+
+    group.add_argument("--steps", required=required, metavar="LIST",
+                       help="the funnel's steps, comma-separated states (after the mapping file), e.g. "
+                            "'Landing,Product,Cart'")
+    group.add_argument("--within", type=parse_duration, metavar="DURATION",
+                       help="every step must come no later than this after the first step (e.g. 1h)")
+    group.add_argument("--strict-order", action="store_true",
+                       help="no other state between consecutive steps (repeats of a step are allowed)")
+
+
+def steps_wanted(args: argparse.Namespace) -> list[str] | None:
+    """The ``--steps`` list (None without it), checked before any reading: ``--within`` and
+    ``--strict-order`` need it, the steps are states of a first-order chain, ``--within`` is positive."""
+    from .analyze.steps import parse_steps
+
+    if args.steps is None:
+        if args.within is not None or args.strict_order:
+            raise UsageError("--within and --strict-order go with --steps LIST")
+        return None
+    steps = parse_steps(args.steps)
+    if args.order != 1:
+        raise UsageError("steps work on first-order chains (--order 1): steps are states")
+    if args.within is not None and args.within <= 0:
+        raise UsageError("--within must be a positive duration")
+    return steps
+
+
+def steps_from_args(args: argparse.Namespace, what: str):
+    """The :class:`~tracechain.analyze.steps.StepsResult` that ``--steps`` asks for (None without it): the
+    input's sessions read into memory (native engine only), the chain fitted to them for the predictions."""
+    from .analyze.steps import steps_analysis
+
+    steps = steps_wanted(args)
+    if steps is None:
+        return None
+    _, _, goals, terminal = shape_from_args(args)
+    sessions = sessions_from_args(args, what)
+    if not len(sessions):
+        raise UsageError("no sessions in the input")
+    return steps_analysis(sessions, steps, strict=args.strict_order, within=args.within, level=args.level,
+                          goals=goals, terminal=terminal, smoothing=args.smoothing)
+
+
 def add_case_figure_options(group) -> None:
     """``--min-visits``, ``--cases`` and ``--loop-rounds`` (analyze, report: one definition for both, so that
     the two commands list the same states and the same observed times for the same input)."""
@@ -235,21 +282,26 @@ def add_segment_options(p: argparse.ArgumentParser) -> None:
 def segments_possible(args: argparse.Namespace) -> None:
     """Refuse, before any reading, what ``--segment-by`` cannot do: another engine, or an input that
     cannot be read twice (standard input, a named pipe); and ``--segments`` without it."""
-    import os
-    import stat
-
     if args.segment_by is None:
         if args.segments is not None:
             raise UsageError("--segments K goes with --segment-by FIELD")
         return
     native_only(args, "--segment-by")
+    readable_twice(args, "--segment-by")
+
+
+def readable_twice(args: argparse.Namespace, what: str) -> None:
+    """Refuse, before any reading, an input that cannot be read a second time (standard input, a named pipe)."""
+    import os
+    import stat
+
     for p in args.paths:
         try:
             pipe = p == "-" or stat.S_ISFIFO(os.stat(p).st_mode)
         except OSError:
             continue  # (a glob or a missing file: the reader says what is wrong)
         if pipe:
-            raise UsageError(f"--segment-by reads the input a second time, which {'standard input' if p == '-' else p} "
+            raise UsageError(f"{what} reads the input a second time, which {'standard input' if p == '-' else p} "
                              "cannot give: save it to a file first")
 
 

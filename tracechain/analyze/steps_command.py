@@ -16,8 +16,7 @@ HELP_MODEL = ("model: in the first-order chain fitted to the same sessions, the 
 
 def register(subparsers, _add_input_options) -> None:
     """Add ``steps``; ``_add_input_options`` is the command line's shared input options."""
-    from ..durations import parse_duration
-    from ..options import add_level_option
+    from ..options import add_level_option, add_steps_options
 
     p = subparsers.add_parser(
         "steps", help="ordered steps (a funnel): sessions reaching each step in order, drop-off, times, model",
@@ -25,13 +24,7 @@ def register(subparsers, _add_input_options) -> None:
                     "consecutive steps with an interval, the median and 90th-percentile time between them, and "
                     "beside each observed share the fitted chain's prediction. " + HELP_MODEL + ".")
     _add_input_options(p)
-    p.add_argument("--steps", required=True, metavar="LIST",
-                   help="the funnel's steps, comma-separated states (after the mapping file), e.g. "
-                        "'Landing,Product,Cart'")
-    p.add_argument("--within", type=parse_duration, metavar="DURATION",
-                   help="every step must come no later than this after the first step (e.g. 1h)")
-    p.add_argument("--strict-order", action="store_true",
-                   help="no other state between consecutive steps (repeats of a step are allowed)")
+    add_steps_options(p, required=True)
     add_level_option(p)
     out = p.add_argument_group("outputs (the text is printed unless one of them is '-')")
     out.add_argument("--json", metavar="FILE",
@@ -88,20 +81,9 @@ def steps_lines(res) -> list[str]:
 
 
 def cmd_steps(args: argparse.Namespace) -> int:
-    from ..options import sessions_from_args, shape_from_args
-    from .steps import parse_steps, steps_analysis
+    from ..options import steps_from_args
 
-    steps = parse_steps(args.steps)
-    if args.order != 1:
-        raise UsageError("steps works on first-order chains (--order 1): steps are states")
-    if args.within is not None and args.within <= 0:
-        raise UsageError("--within must be a positive duration")
-    _, _, goals, terminal = shape_from_args(args)
-    sessions = sessions_from_args(args, "tracechain steps")
-    if not len(sessions):
-        raise UsageError("no sessions in the input")
-    res = steps_analysis(sessions, steps, strict=args.strict_order, within=args.within, level=args.level,
-                         goals=goals, terminal=terminal, smoothing=args.smoothing)
+    res = steps_from_args(args, "tracechain steps")
     from ..files import write_output
     from ..report.steps_report import render_steps_csv, render_steps_json
 

@@ -136,11 +136,35 @@ def _hbar(title: str, xlabel: str, labels: list[str], values: list[float], texts
     if xlim:
         ax.set_xlim(*xlim)
     span = (ax.get_xlim()[1] - ax.get_xlim()[0]) or 1.0
+    drawn = []
     for y, v, t, hi in zip(ys, values, texts, highs or [None] * n):
         end = max(v, hi if hi is not None else v, 0)
-        ax.text(end + 0.01 * span, y, _short(t, 60), va="center", fontsize=11)
+        drawn.append(ax.text(end + 0.01 * span, y, _short(t, 60), va="center", fontsize=11))
     ax.margins(x=0.18)
+    if xlim:
+        _room_for_labels(fig, ax, drawn, xlim)
     return Chart(name, title, fig, points)
+
+
+def _room_for_labels(fig, ax, labels, xlim, rounds: int = 4) -> None:
+    """Widen a fixed x range until every bar's label ends inside the figure: a long label beside a
+    bar near the end of the range (a first step that every session reaches) would run past the
+    figure's right edge, where the file cuts it off. The ticks and the axis line stay within the
+    range, so the added room reads as room for the labels, not as a longer scale."""
+    moved = False
+    for _ in range(rounds):
+        fig.draw_without_rendering()
+        right = max((t.get_window_extent().x1 for t in labels), default=0.0)
+        limit = fig.bbox.x1 - 0.01 * fig.bbox.width
+        if right <= limit:
+            break
+        if not moved:
+            ax.set_xticks([x for x in ax.get_xticks() if xlim[0] <= x <= xlim[1] + 1e-9])
+            ax.spines["bottom"].set_bounds(*xlim)
+            moved = True
+        lo, hi = ax.get_xlim()
+        per_unit = ax.get_window_extent().width / (hi - lo)
+        ax.set_xlim(lo, hi + 1.1 * (right - limit) / per_unit)
 
 
 def exit_chart(a, top: int = 15) -> Chart | None:

@@ -4,8 +4,9 @@
 the handlers take the shared options from :mod:`tracechain.options`. The old ``main`` and
 ``build_parser`` of this module are now ``tracechain.cli``'s (it registers these commands).
 
-``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE]``
-    the analysis as a self-contained HTML report, a Markdown summary, per-state CSV.
+``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE] [--steps LIST]``
+    the analysis as a self-contained HTML report, a Markdown summary, per-state CSV; with
+    ``--steps`` also the ordered steps (a funnel) as a section of the report.
 
 ``tracechain compare A B`` or ``tracechain compare PATH --split-at TIME`` or
 ``tracechain compare PATH --split-field NAME --split-values X,Y``
@@ -60,7 +61,7 @@ def _diagram_options(p: argparse.ArgumentParser) -> None:
 def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
     from ..options import (MAX_DRAWS, _seed, _share, add_case_figure_options, add_interval_options, add_level_option,
-                           whole_number)
+                           add_steps_options, whole_number)
     from ..cli import _add_input_options
 
     r = subparsers.add_parser(
@@ -85,6 +86,8 @@ def register(subparsers) -> None:
     from ..options import add_segment_options
 
     add_segment_options(r)
+    add_steps_options(r.add_argument_group(
+        "ordered steps (a funnel): a section with the sessions reaching each step in order (native engine)"))
     o.add_argument("--order-test", action="store_true",
                    help="test the chain's order (orders 0 to 2; reads the input again and holds the sessions in "
                         "memory) and state the result among the assumptions")
@@ -213,6 +216,19 @@ def _segments_section(args, settings):
     return segments_section(seg, chart)
 
 
+def _steps_section(args):
+    """``--steps``: (the "Ordered steps" section, its chart or None); the sessions are read once more."""
+    from ..options import steps_from_args
+    from .charts import available, missing_reason, steps_chart
+    from .steps_report import steps_section
+
+    res = steps_from_args(args, "report --steps")
+    chart = None
+    if not args.no_charts:
+        chart = steps_chart(res) if available() else f"No chart of the steps: {missing_reason()}."
+    return steps_section(res, chart), chart
+
+
 def _chart_path(image: str, name: str, fmt: str) -> str:
     import os
 
@@ -302,6 +318,11 @@ def cmd_report(args: argparse.Namespace) -> int:
     from ..options import segments_possible
 
     segments_possible(args)  # before any reading
+    from ..options import native_only, readable_twice, steps_wanted
+
+    if steps_wanted(args) is not None and (args.html or args.markdown):
+        native_only(args, "report --steps")
+        readable_twice(args, "report --steps")
     chain, report, settings = build_chain(args)
     result = with_case_figures(analyze(chain, report, top=max(args.top, 10), settings=settings,
                                        min_visits=args.min_visits), args)
@@ -311,6 +332,13 @@ def cmd_report(args: argparse.Namespace) -> int:
     elif args.segment_by is not None:
         print("tracechain: warning: --segment-by adds a section to the HTML and Markdown report; neither was asked "
               "for", file=sys.stderr)
+    steps_chart = None
+    if args.steps is not None and (args.html or args.markdown):
+        steps_sec, steps_chart = _steps_section(args)
+        seg_sections = [steps_sec] + (seg_sections or [])
+    elif args.steps is not None:
+        print("tracechain: warning: --steps adds a section to the HTML and Markdown report; neither was asked for",
+              file=sys.stderr)
     groups = (load_mapping(args.mapping).groups or None) if args.mapping else None
     pseudo = _pseudonymizer(args)
     diagram = svg = missing = None
@@ -324,7 +352,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         if missing:
             print(f"tracechain: warning: no diagram in the report: {missing}", file=sys.stderr)
     charts = _charts(result, args)
-    chart_files = _chart_files(args, images, [c for c in charts if not isinstance(c, str)])
+    drawn = [c for c in charts + [steps_chart] if c is not None and not isinstance(c, str)]
+    chart_files = _chart_files(args, images, drawn)
     order_table = _order_test(args) if args.order_test and (args.html or args.markdown) else None
     from .html import load_extended
 

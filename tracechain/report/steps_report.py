@@ -6,7 +6,8 @@ with a ``schema_version``; shares and predictions are fractions (the text shows 
 percentages), times are seconds, undefined figures are ``null``. CSV: one row per step with
 the same figures (empty cells where undefined), step names guarded against formula injection
 as in the per-state CSV (:func:`tracechain.report.csv_report.csv_cell`). Both give the figures
-the text shows, before rounding.
+the text shows, before rounding. :func:`steps_section` is the same table as the report's
+"Ordered steps" section (``tracechain report --steps``), with the bar chart beside it.
 """
 
 from __future__ import annotations
@@ -23,7 +24,7 @@ from .csv_report import csv_cell
 from .json_report import dumps
 
 __all__ = ["STEPS_SCHEMA_VERSION", "STEPS_CSV_COLUMNS", "steps_document", "render_steps_json", "render_steps_csv",
-           "load_steps_schema"]
+           "load_steps_schema", "steps_section"]
 
 STEPS_SCHEMA_VERSION = "1.0"
 STEPS_CSV_COLUMNS = ("step", "sessions", "observed", "observed_low", "observed_high", "model", "drop_off",
@@ -92,3 +93,46 @@ def render_steps_csv(res: StepsResult) -> str:
                     _num(d["drop_off"]), _num(di[0]), _num(di[1]), _num(t.get("n")), _num(t.get("median_s")),
                     _num(t.get("p90_s")), _num(t.get("mean_s"))])
     return buf.getvalue()
+
+
+def _pct(x: float | None) -> str:
+    return "n/a" if x is None else f"{100 * x:.1f}%"
+
+
+def steps_section(res: StepsResult, chart=None):
+    """The report's "Ordered steps" section: one row per step with the sessions reaching it, the observed
+    share and the chain's prediction beside it, the drop-off with its interval and the median and 90th
+    percentile time from the step before; then ``chart`` (the bars, or a line saying why there are none)."""
+    from .html import Bullets, Para, Section, Table, charts_section, duration
+    from .names import safe_name
+
+    lvl = f"{100 * res.level:g}%"
+    rows = []
+    for i, r in enumerate(res.rows):
+        d = _row(i, r)
+        di = d["drop_off_interval"]
+        t = d["time_from_previous"]
+        rows.append([safe_name(r.step, 60), f"{r.reached:,}", _pct(r.share), _pct(r.model),
+                     "" if i == 0 else _pct(d["drop_off"]), "" if di is None else f"[{_pct(di[0])}, {_pct(di[1])}]",
+                     "" if t is None else duration(t["median_s"]), "" if t is None else duration(t["p90_s"])])
+    how = ("strict order: no other state between consecutive steps (repeats of a step allowed)" if res.strict
+           else "in order, other states allowed in between")
+    if res.within_s is not None:
+        how += f", each step within {duration(res.within_s)} of the first"
+    blocks: list = [
+        Para(f"Sessions that reach each step {how} (a funnel); {res.sessions:,} sessions in all."),
+        Table(["step", "sessions", "observed", "model", "drop-off", f"{lvl} interval", "median time",
+               "90th percentile"], rows, numeric=frozenset(range(1, 8))),
+        Bullets(["observed: the share of the sessions at the step before that reach this step (first row: of all "
+                 "sessions); drop-off: the rest.",
+                 "model: in the first-order chain fitted to the same sessions, the probability that a walk from the "
+                 "step before enters this step before it ends or enters another goal or terminal state (with strict "
+                 "order: before it enters any other state; first row: from the start). Where it differs from the "
+                 "observed share, the memoryless model does not describe the ordered sequence.",
+                 f"interval: the {lvl} Jeffreys interval (Beta posterior) of the drop-off; times: from the step "
+                 f"before, percentiles by numpy's {res.quantile_method!r} method."]
+                + [safe_name(n, 400) for n in res.notes]),
+    ]
+    if chart is not None:
+        blocks.extend(charts_section([chart]).blocks)
+    return Section("steps", "Ordered steps", blocks)

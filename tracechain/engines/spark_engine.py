@@ -129,10 +129,10 @@ def _runner(spark, where: str, ts_unit: str = "us") -> SqlRunner:
         ts_seconds = "CAST(unix_micros({}) AS DOUBLE) * CAST(1e-06 AS DOUBLE)"
 
     def run(stmt, params):
-        if params:
-            raise ValueError("the spark runner takes no parameters")
         try:
-            return [tuple(r) for r in spark.sql(stmt).collect()]
+            # '?' markers bound positionally (Spark 3.5+): --where values are data, never SQL text
+            df = spark.sql(stmt, args=list(params)) if params else spark.sql(stmt)
+            return [tuple(r) for r in df.collect()]
         except Exception as err:
             raise IngestError(f"Spark: {_first_line(err)}", where) from None
 
@@ -162,16 +162,14 @@ def _runner(spark, where: str, ts_unit: str = "us") -> SqlRunner:
         return [r[0] for r in run(f"SELECT q.{d.ident(col)} FROM {rel.sql} q WHERE q.{d.ident(col)} IS NOT NULL "
                                   f"LIMIT {int(n)}", [])]
 
-    return SqlRunner(d, run, names_relation, time_expr, lambda c: f"CAST({c} AS STRING)", first_values)
+    return SqlRunner(d, run, names_relation, time_expr, lambda c: f"CAST({c} AS STRING)", first_values,
+                     regex=lambda c, m: f"({c} RLIKE {m})")
 
 
 def _check_shape(shape) -> None:
     if shape.mapping is not None and getattr(shape.mapping, "parser", None):
         raise UsageError("the mapping file declares a line pattern ('parser:') for text logs, which only the native "
                          "engine reads; use --engine native")
-    if getattr(shape, "filters", None) is not None:
-        raise UsageError("--where, --since and --until are not yet supported by the spark engine; use --engine "
-                         "native, duckdb, sqlite or postgres")
 
 
 def count_dataframe(df, fields: FieldSpec | None = None, shape=None, order_by: str | None = None,

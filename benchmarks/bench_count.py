@@ -75,6 +75,7 @@ OPTIONS = {
     "where": "--where device!=kiosk (one condition on a further field; keeps every event)",
     "since": "--since 2000-01-01 (far before every event; keeps every event)",
     "segments": "--segment-by device (3 values; the whole chain and every segment in one read)",
+    "two-reads": "--segment-by device as it was first made: count_sources, then count_segments (two reads)",
 }
 WHERE_KEEPS_ALL = "device!=kiosk"
 SINCE_FAR_BACK = "2000-01-01"
@@ -272,6 +273,12 @@ def run_tracechain(path, fmt, option="none"):
             total = c if total is None else total + c
         extra = {"segments": len(segs), "segments_add_up": total == counts,
                  "segment_keys": sum(keys.values())}
+    elif option == "two-reads":
+        from tracechain.analyze.segments import count_segments
+
+        counts, report = count_sources([path], shape=ShapeOptions())
+        segs, _, _, _ = count_segments([path], SEGMENT_FIELD, shape=ShapeOptions())
+        extra = {"segments": len(segs)}
     else:
         filters = {"none": None, "where": Filters.from_options([WHERE_KEEPS_ALL]),
                    "since": Filters.from_options(since=SINCE_FAR_BACK)}[option]

@@ -126,8 +126,8 @@ def count_segments(paths, field_name: str, **kw) -> tuple[dict[str, TransitionCo
     return counts, keys, report, notes
 
 
-def count_with_segments(paths, field_name: str, **kw) -> tuple[TransitionCounts, ParseReport,
-                                                                 dict[str, TransitionCounts], dict[str, int], list[str]]:
+def count_with_segments(paths, field_name: str, **kw) -> tuple[
+        TransitionCounts, ParseReport, dict[str, TransitionCounts], dict[str, int], list[str]]:
     """The whole-data counts and the counts per segment of ``field_name``, all in one read.
 
     ``kw`` as for :func:`tracechain.pipeline.count_sources_grouped` (so the whole-data counts are

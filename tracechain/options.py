@@ -226,8 +226,8 @@ def add_segment_options(p: argparse.ArgumentParser) -> None:
                    help="also count one chain per value of FIELD (a device, app version, country or campaign "
                         "field of JSON Lines, CSV or Parquet), in the same read as the whole chain: conversion and "
                         "expected steps per segment with intervals (--level, --seed), and a chi-square test across "
-                        "segments of each state's exits, Benjamini-Hochberg across states. A session key's segment is its "
-                        f"value on the key's first event; {NONE_LABEL} when that has none")
+                        "segments of each state's exits, Benjamini-Hochberg across states. A session key's segment "
+                        f"is its value on the key's first event; {NONE_LABEL} when that has none")
     g.add_argument("--segments", type=whole_number(1), default=None, metavar="K",
                    help=f"show the K largest segments (by sessions), the rest pooled as {OTHER_LABEL} "
                         f"(default {DEFAULT_TOP})")

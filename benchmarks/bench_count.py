@@ -68,6 +68,18 @@ MEMORY_TARGET = 0.25
 FIXED_KEYS = 20_000
 UNORDERED_FRACTION = 0.01
 GEN_VERSION = 1  # bump when the generator changes, so cached files are remade
+OPTION_TARGET = 1.10  # filters and segments: at most 10 % slower than no option
+#: --options: what each adds to the plain count_sources run
+OPTIONS = {
+    "none": "count_sources, no option (the reference of the ratios)",
+    "where": "--where device!=kiosk (one condition on a further field; keeps every event)",
+    "since": "--since 2000-01-01 (far before every event; keeps every event)",
+    "segments": "--segment-by device (3 values; the whole chain and every segment in one read)",
+    "two-reads": "--segment-by device as it was first made: count_sources, then count_segments (two reads)",
+}
+WHERE_KEEPS_ALL = "device!=kiosk"
+SINCE_FAR_BACK = "2000-01-01"
+SEGMENT_FIELD = "device"
 
 # --------------------------------------------------------------------------------------
 # data generator (runs in its own process: --generate)
@@ -246,12 +258,34 @@ def run_duckdb(path, fmt):
     return edges, events, {}
 
 
-def run_tracechain(path, fmt):
+def run_tracechain(path, fmt, option="none"):
+    """count_sources with no option, or with one of :data:`OPTIONS` (what ``analyze`` runs for it)."""
     from tracechain.pipeline import ShapeOptions, count_sources
+    from tracechain.shape.filters import Filters
 
-    counts, report = count_sources([path], shape=ShapeOptions())
+    extra = {}
+    if option == "segments":
+        from tracechain.analyze.segments import count_with_segments
+
+        counts, report, segs, keys, _ = count_with_segments([path], SEGMENT_FIELD, shape=ShapeOptions())
+        total = None
+        for c in segs.values():
+            total = c if total is None else total + c
+        extra = {"segments": len(segs), "segments_add_up": total == counts,
+                 "segment_keys": sum(keys.values())}
+    elif option == "two-reads":
+        from tracechain.analyze.segments import count_segments
+
+        counts, report = count_sources([path], shape=ShapeOptions())
+        segs, _, _, _ = count_segments([path], SEGMENT_FIELD, shape=ShapeOptions())
+        extra = {"segments": len(segs)}
+    else:
+        filters = {"none": None, "where": Filters.from_options([WHERE_KEEPS_ALL]),
+                   "since": Filters.from_options(since=SINCE_FAR_BACK)}[option]
+        counts, report = count_sources([path], shape=ShapeOptions(filters=filters))
+        extra = {"filtered": sum(report.filtered.values())}
     edges = counts.to_edges(start=START, end=END)
-    return edges, int(report.events), {"notes": list(report.notes), "sessions": counts.sessions}
+    return edges, int(report.events), {"notes": list(report.notes), "sessions": counts.sessions, **extra}
 
 
 def run_one(tool, fmt, path, result):
@@ -260,10 +294,15 @@ def run_one(tool, fmt, path, result):
     elif tool == "duckdb":
         import duckdb  # noqa: F401
     else:
+        import tracechain.analyze.segments  # noqa: F401
         import tracechain.pipeline  # noqa: F401
+        import tracechain.shape.filters  # noqa: F401
     t0 = time.perf_counter()
-    edges, events, extra = {"baseline": run_baseline, "duckdb": run_duckdb,
-                            "tracechain": run_tracechain}[tool](path, fmt)
+    if tool.startswith("tracechain+"):
+        edges, events, extra = run_tracechain(path, fmt, tool.split("+", 1)[1])
+    else:
+        edges, events, extra = {"baseline": run_baseline, "duckdb": run_duckdb,
+                                "tracechain": run_tracechain}[tool](path, fmt)
     seconds = time.perf_counter() - t0
     import resource
 
@@ -314,6 +353,10 @@ def main(argv=None):
     ap.add_argument("--tools", default="baseline,tracechain",
                     help="baseline (pandas), duckdb and/or tracechain (default baseline,tracechain)")
     ap.add_argument("--times", default="ms", help="ms (epoch milliseconds) and/or iso (ISO 8601 text) (default ms)")
+    ap.add_argument("--options", default=None, metavar="LIST",
+                    help="instead of the tools: tracechain alone with each of " + ", ".join(OPTIONS)
+                         + " (none is always run), --repeat N rounds alternating between them; "
+                           "prints each option's time as a multiple of the no-option run's (target <= 1.10)")
     ap.add_argument("--generate", nargs=3, metavar=("N", "FMT", "PATH"), help=argparse.SUPPRESS)
     ap.add_argument("--unordered", type=float, default=0.0, help=argparse.SUPPRESS)
     ap.add_argument("--fixed-keys", type=int, default=0, help=argparse.SUPPRESS)
@@ -338,6 +381,8 @@ def main(argv=None):
     print(f"python {sys.version.split()[0]}, {os.cpu_count()} cores, load average {load}; data in {a.workdir}",
           flush=True)
 
+    if a.options is not None:
+        return options_run(a, sizes, formats, [o for o in a.options.split(",") if o])
     rows = []
     for n in sizes:
         for fmt in formats:
@@ -392,6 +437,59 @@ def main(argv=None):
             print(f"{case:11s} {fmt:6s} {n:>11,d} {ratio:16.2f} {'PASS' if ratio <= 1.2 else 'MISS'} {mem:16.2f}"
                   f"  {'OK' if ok else 'MISMATCH'}")
     bad = [v for v in verdicts + duck if not v[5]]
+    return 1 if bad else 0
+
+
+def options_run(a, sizes, formats, options):
+    """--options: each option against no option, in rounds that alternate between them (one run of
+    each per round, in a rotated order), so that a change in the machine's load falls on all alike.
+    Prints the median and the fastest per option and their ratios to the no-option run's; each
+    option's counts must equal the no-option counts (the filters keep every event; the segments
+    must add up to the whole chain)."""
+    import statistics
+
+    unknown = [o for o in options if o not in OPTIONS]
+    if unknown:
+        sys.exit(f"unknown option case {unknown[0]!r}: choose from {', '.join(OPTIONS)}")
+    options = ["none"] + [o for o in options if o != "none"]
+    for o in options:
+        print(f"  {o:9s} {OPTIONS[o]}")
+    bad = 0
+    for n in sizes:
+        for fmt in formats:
+            path = data_file(a.workdir, n, fmt, "ordered")
+            runs = {o: [] for o in options}
+            for r in range(a.repeat):
+                order = options[r % len(options):] + options[:r % len(options)]
+                for o in order:
+                    res = measure(f"tracechain+{o}", fmt, path, a.workdir)
+                    runs[o].append(res)
+                    print(f"  round {r + 1} {fmt:5s} {n:>11,d} {o:9s} {res['seconds']:7.2f} s "
+                          f"{res['cpu']:7.2f} cpu-s {res['peak_mb']:6.0f} MB", flush=True)
+            ref = runs["none"][0]
+            med0 = statistics.median(x["seconds"] for x in runs["none"])
+            min0 = min(x["seconds"] for x in runs["none"])
+            cpu0 = statistics.median(x["cpu"] for x in runs["none"])
+            print()
+            print(f"{fmt} {n:,d} events, {a.repeat} alternating round(s)")
+            hdr = (f"{'option':9s} {'median s':>9s} {'fastest s':>9s} {'median cpu s':>12s} {'peak MB':>8s} "
+                   f"{'x none (median)':>15s} {'x none (fastest)':>16s} {'x none (cpu)':>12s}  check")
+            print(hdr)
+            print("-" * len(hdr))
+            for o in options:
+                xs = runs[o]
+                med = statistics.median(x["seconds"] for x in xs)
+                fast = min(x["seconds"] for x in xs)
+                cpu = statistics.median(x["cpu"] for x in xs)
+                peak = max(x["peak_mb"] for x in xs)
+                last = xs[-1]
+                ok = last["edges"] == ref["edges"] and last["events"] == ref["events"] and \
+                    last.get("segments_add_up", True) and not last.get("filtered", 0)
+                bad += not ok
+                verdict = "" if o == "none" else (" PASS" if med / med0 <= OPTION_TARGET else " MISS")
+                print(f"{o:9s} {med:9.2f} {fast:9.2f} {cpu:12.2f} {peak:8.0f} {med / med0:11.3f}{verdict:4s} "
+                      f"{fast / min0:16.3f} {cpu / cpu0:12.3f}  {'OK' if ok else 'MISMATCH'}")
+            print()
     return 1 if bad else 0
 
 

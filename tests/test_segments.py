@@ -26,6 +26,7 @@ from scipy import stats
 
 from tracechain.analyze.segments import NONE_LABEL, OTHER_LABEL, count_segments, segment_analysis
 from tracechain.cli import main
+from tracechain.counts import TransitionCounts
 from tracechain.ingest.fields import FieldSpec
 from tracechain.pipeline import ShapeOptions
 from tracechain.shape.filters import Filters
@@ -261,15 +262,22 @@ def test_other_engines_are_refused(shop, capsys):
     assert code == 2 and "--segment-by" in err and "only the native engine" in err
 
 
-def test_standard_input_is_refused_before_reading(shop, capsys, monkeypatch):
+def test_standard_input_is_read_once_and_segmented(shop, tmp_path, capsys, monkeypatch):
+    # one read: standard input, which cannot be read twice, gives what the file gives
     import io
     import sys
 
     _, path, _, _ = shop
-    data = open(path, "rb").read()
-    monkeypatch.setattr(sys, "stdin", io.TextIOWrapper(io.BytesIO(data)))
-    code, _, err = run(["analyze", "-", "--segment-by", "device", "-q"], capsys)
-    assert code == 2 and "standard input" in err and "save it to a file" in err
+    from_file, from_stdin = tmp_path / "file.json", tmp_path / "stdin.json"
+    code, _, err = run(["analyze", path, "--goal", GOAL, "--segment-by", "device", "--json", str(from_file), "-q"],
+                       capsys)
+    assert code == 0, err
+    monkeypatch.setattr(sys, "stdin", io.TextIOWrapper(io.BytesIO(open(path, "rb").read())))
+    code, _, err = run(["analyze", "-", "--goal", GOAL, "--segment-by", "device", "--json", str(from_stdin), "-q"],
+                       capsys)
+    assert code == 0, err
+    a, b = (json.loads(f.read_text(encoding="utf-8")) for f in (from_file, from_stdin))
+    assert a["segments"] == b["segments"] and a["overview"] == b["overview"]
 
 
 def test_report_small_multiples_show_each_segments_conversion(shop, tmp_path, capsys):
@@ -341,3 +349,84 @@ def test_segment_values_are_shown_safely(tmp_path, capsys):
     assert code == 0, err
     text = page.read_text(encoding="utf-8")
     assert "<script>" not in text and "&lt;script&gt;x()&lt;/script&gt;" in text
+
+
+# One pass (analyze and report count the whole chain and the segments in the same read). Oracle:
+# the native count_sources on the same file and shape, read on its own, and count_segments (the
+# segments read on their own); the segments' sum must equal the whole count, since a key's events
+# all go to the segment of its first event (so no session straddles segments).
+
+def shuffled_shop(seed: int):
+    """invented_shop with a few sessions' first two lines swapped in the file (out of time order),
+    so that the sorting re-read is taken too."""
+    rows = invented_shop(seed, n=400)
+    rng = random.Random(seed)
+    first = {}
+    for i, r in enumerate(rows):
+        first.setdefault(r[0], i)
+    for key in rng.sample(sorted(first), 8):
+        i = first[key]
+        if i + 1 < len(rows) and rows[i + 1][0] == key:
+            rows[i], rows[i + 1] = rows[i + 1], rows[i]
+    return rows
+
+
+SHAPES = {
+    "plain": ShapeOptions(goals=(GOAL,)),
+    "gap and order 2": ShapeOptions(goals=(GOAL,), gap=25.0, order=2),
+    "filtered, repeats collapsed": ShapeOptions(collapse_repeats=True, truncate_at_goal=False,
+                                                filters=Filters.from_options(["event!=Search"])),
+}
+
+
+@pytest.mark.parametrize("ordered", [True, False], ids=["in order", "out of order"])
+@pytest.mark.parametrize("name", list(SHAPES))
+def test_one_pass_equals_count_sources_and_the_segments_add_up(tmp_path, name, ordered):
+    from tracechain.analyze.segments import count_with_segments
+    from tracechain.pipeline import count_sources
+
+    shape = SHAPES[name]
+    rows = invented_shop(5, n=400) if ordered else shuffled_shop(5)
+    path = write_log(tmp_path / "shop.jsonl", rows)
+    whole, report, seg_counts, keys, _ = count_with_segments([path], "device", fields=FIELDS, shape=shape)
+    alone, alone_report = count_sources([path], fields=FIELDS, shape=shape)
+    assert whole == alone and whole.to_edges() == alone.to_edges()
+    assert (report.events, report.filtered, report.notes) == (alone_report.events, alone_report.filtered,
+                                                              alone_report.notes)
+    assert any("not in time order" in n for n in report.notes) is not ordered
+    total = TransitionCounts.empty()
+    for c in seg_counts.values():
+        total = total + c
+    assert total == alone and total.to_edges() == alone.to_edges()
+    two_read, two_keys, _, _ = count_segments([path], "device", fields=FIELDS, shape=shape)
+    assert seg_counts == two_read and keys == two_keys
+    if name == "plain":
+        edges, nkeys = by_hand(sorted(rows, key=lambda r: (r[0], r[1])))
+        assert {k: c.to_edges(START, END) for k, c in seg_counts.items()} == {k: dict(v) for k, v in edges.items()}
+        assert keys == dict(nkeys)
+
+
+@pytest.mark.parametrize("ordered", [True, False], ids=["in order", "out of order"])
+def test_the_input_is_read_once(tmp_path, ordered):
+    # the progress callback gets every byte read: the file's size once (twice when the events are
+    # out of time order and the file is read again in sorting mode, as count_sources does)
+    import os
+
+    from tracechain.analyze.segments import count_with_segments
+
+    path = write_log(tmp_path / "shop.jsonl", invented_shop(5, n=400) if ordered else shuffled_shop(5))
+    read = []
+    count_with_segments([path], "device", fields=FIELDS, shape=ShapeOptions(), progress=read.append)
+    assert sum(read) == os.path.getsize(path) * (1 if ordered else 2)
+
+
+def test_segment_by_leaves_the_main_chain_as_it_was(shop, tmp_path, capsys):
+    _, path, _, _ = shop
+    plain, seg = tmp_path / "plain.json", tmp_path / "seg.json"
+    for out, more in ((plain, []), (seg, ["--segment-by", "device"])):
+        code, _, err = run(["analyze", path, "--goal", GOAL, "--json", str(out), "-q"] + more, capsys)
+        assert code == 0, err
+    a, b = (json.loads(f.read_text(encoding="utf-8")) for f in (plain, seg))
+    assert "segments" in b and "segments" not in a
+    b.pop("segments")
+    assert a == b

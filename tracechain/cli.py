@@ -276,9 +276,23 @@ def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict
 
 
 def build_chain(args: argparse.Namespace):
+    """The chain the command line asks for, its parse report and the settings it was made with."""
+    chain, report, settings, _ = build_chain_and_segments(args, segments=False)
+    return chain, report, settings
+
+
+def build_chain_and_segments(args: argparse.Namespace, segments: bool = True):
+    """:func:`build_chain` and, with ``--segment-by`` (when ``segments``), the segments, counted in
+    the same read of the input (None without it)."""
     shape, fields, goals, terminal = shape_from_args(args)
     fmt, extra = extra_from_args(args, shape.mapping)
-    counts, report = count_from_args(args, shape, fields, fmt, extra)
+    seg_input = None
+    if segments and getattr(args, "segment_by", None) is not None:
+        from .options import count_with_segments_from_args
+
+        counts, report, seg_input = count_with_segments_from_args(args, shape, fields, fmt, extra)
+    else:
+        counts, report = count_from_args(args, shape, fields, fmt, extra)
     mode = getattr(args, "open_cases", "stuck") or "stuck"
     if shape.cases is not None and mode == "stuck":
         from .analyze.stuck_outcome import with_stuck_outcomes
@@ -292,7 +306,12 @@ def build_chain(args: argparse.Namespace):
         "stale_after_seconds": shape.cases.stale_after if shape.cases else None,
         "open_cases": mode if shape.cases else None,
     }
-    return chain, report, settings
+    seg = None
+    if seg_input is not None:
+        from .options import segments_from_counts
+
+        seg = segments_from_counts(args, goals, terminal, *seg_input)
+    return chain, report, settings, seg
 
 
 def cmd_analyze(args: argparse.Namespace) -> int:
@@ -305,7 +324,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     from .options import segments_possible
 
     segments_possible(args)  # before any reading
-    chain, report, settings = build_chain(args)
+    chain, report, settings, seg = build_chain_and_segments(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)
     ext = None
@@ -320,11 +339,6 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         boot = sessions_from_args(args, "analyze --intervals bootstrap") if method == "bootstrap" else None
         ext = extended_analysis(chain, seed=args.seed, top=args.top or None, level=args.level, intervals=method,
                                 interval_sessions=boot)
-    seg = None
-    if args.segment_by is not None:
-        from .options import segments_from_args
-
-        seg = segments_from_args(args, settings, *extra_from_args(args, shape_from_args(args)[0].mapping))
     written = []
     if getattr(args, "stuck_cases", None):
         written.append(_write_stuck_cases(args, chain))

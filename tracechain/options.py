@@ -20,7 +20,8 @@ from .shape.mapping import load_mapping
 
 __all__ = ["EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR", "EXIT_INTERRUPTED", "shape_from_args", "progress_from_args",
            "count_from_args", "native_only", "add_level_option", "add_interval_options", "interval_method",
-           "sessions_from_args", "add_segment_options", "segments_possible", "segments_from_args"]
+           "sessions_from_args", "add_segment_options", "segments_possible", "count_with_segments_from_args",
+           "segments_from_counts"]
 
 EXIT_OK = 0
 EXIT_FINDINGS = 1
@@ -270,24 +271,23 @@ def add_segment_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("segments: one chain per value of a field, compared (native engine)")
     g.add_argument("--segment-by", metavar="FIELD",
                    help="also count one chain per value of FIELD (a device, app version, country or campaign "
-                        "field of JSON Lines, CSV or Parquet), all in one more read: conversion and expected steps "
-                        "per segment with intervals (--level, --seed), and a chi-square test across segments of "
-                        "each state's exits, Benjamini-Hochberg across states. A session key's segment is its "
-                        f"value on the key's first event; {NONE_LABEL} when that has none")
+                        "field of JSON Lines, CSV or Parquet), in the same read as the whole chain: conversion and "
+                        "expected steps per segment with intervals (--level, --seed), and a chi-square test across "
+                        "segments of each state's exits, Benjamini-Hochberg across states. A session key's segment "
+                        f"is its value on the key's first event; {NONE_LABEL} when that has none")
     g.add_argument("--segments", type=whole_number(1), default=None, metavar="K",
                    help=f"show the K largest segments (by sessions), the rest pooled as {OTHER_LABEL} "
                         f"(default {DEFAULT_TOP})")
 
 
 def segments_possible(args: argparse.Namespace) -> None:
-    """Refuse, before any reading, what ``--segment-by`` cannot do: another engine, or an input that
-    cannot be read twice (standard input, a named pipe); and ``--segments`` without it."""
+    """Refuse, before any reading, what ``--segment-by`` cannot do: another engine; and ``--segments``
+    without it."""
     if args.segment_by is None:
         if args.segments is not None:
             raise UsageError("--segments K goes with --segment-by FIELD")
         return
     native_only(args, "--segment-by")
-    readable_twice(args, "--segment-by")
 
 
 def readable_twice(args: argparse.Namespace, what: str) -> None:
@@ -305,23 +305,26 @@ def readable_twice(args: argparse.Namespace, what: str) -> None:
                              "cannot give: save it to a file first")
 
 
-def segments_from_args(args: argparse.Namespace, settings: dict, fmt: str | None, extra: dict):
-    """The :class:`~tracechain.analyze.segments.Segments` that ``--segment-by`` asks for: the input read once
-    more, every segment counted in that read, with the shaping of the main chain (``settings``: its gap;
-    ``fmt`` and ``extra``: the input format and the parsers' settings, ``tracechain.cli.extra_from_args``)."""
-    from dataclasses import replace
-
-    from .analyze.segments import DEFAULT_TOP, count_segments, segment_analysis
+def count_with_segments_from_args(args: argparse.Namespace, shape: ShapeOptions, fields: FieldSpec, fmt, extra):
+    """The main chain's counts and report as :func:`count_from_args` gives them on the native engine
+    (its default gap, open cases, progress bar, filters), and the ``--segment-by`` segments counted in
+    the same read: ``(counts, report, (segment_counts, keys, notes))``."""
+    from .analyze.segments import count_with_segments
 
     segments_possible(args)
-    shape, fields, goals, terminal = shape_from_args(args)
-    extra = {k: v for k, v in extra.items() if k != "max_line_bytes"}
-    if shape.gap is None and settings.get("gap_seconds"):
-        shape = replace(shape, gap=settings["gap_seconds"])
-    counts, keys, _, notes = count_segments(args.paths, args.segment_by, format=fmt, fields=fields, shape=shape,
-                                            strict=args.strict, extra=extra)
+    counts, report, seg_counts, keys, notes = count_with_segments(
+        args.paths, args.segment_by, format=fmt, fields=fields, shape=shape, strict=args.strict, extra=extra,
+        progress=progress_from_args(args))
     if shape.cases is not None:
         notes.append("open cases end their sessions in the segment figures (no 'stuck' outcome there)")
-    return segment_analysis(counts, goals, terminal, field_name=args.segment_by, keys=keys,
+    return counts, report, (seg_counts, keys, notes)
+
+
+def segments_from_counts(args: argparse.Namespace, goals, terminal, seg_counts, keys, notes):
+    """The :class:`~tracechain.analyze.segments.Segments` that ``--segment-by`` asks for, from the
+    counts :func:`count_with_segments_from_args` made."""
+    from .analyze.segments import DEFAULT_TOP, segment_analysis
+
+    return segment_analysis(seg_counts, goals, terminal, field_name=args.segment_by, keys=keys,
                             top=DEFAULT_TOP if args.segments is None else args.segments,
                             level=args.level, seed=args.seed, notes=notes)

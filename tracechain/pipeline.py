@@ -31,8 +31,8 @@ from .shape.filters import Filters
 from .shape.mapping import Mapping
 from .shape.sessions import OutOfOrder, SessionCounter
 
-__all__ = ["ShapeOptions", "count_sources", "read_events", "count_chunks", "count_routed", "count_grouped",
-           "MAX_ORDER", "apply_filters"]
+__all__ = ["ShapeOptions", "count_sources", "count_sources_grouped", "read_events", "count_chunks", "count_routed",
+           "count_grouped", "MAX_ORDER", "apply_filters"]
 
 #: the highest chain order accepted (--order, --max-order, a rules file's 'order:'): counting keeps the
 #: last K-1 codes of every open session, so an order of millions would exhaust memory before reading
@@ -194,22 +194,62 @@ def count_sources(
     EmptyInputError
         When no source yields a usable event or transition.
     """
+    counts, report, _ = _metered(progress, paths, format, fields, shape, strict, extra, stdin, finish_session)
+    return counts, report
+
+
+def count_sources_grouped(
+    paths: Iterable[str],
+    group,
+    *,
+    keep_fields: tuple[str, ...] = (),
+    format: str | None = None,
+    fields: FieldSpec | None = None,
+    shape: ShapeOptions | None = None,
+    strict: bool = False,
+    extra: dict[str, Any] | None = None,
+    stdin: BinaryIO | None = None,
+    finish_session=None,
+    progress: Any = None,
+) -> tuple[TransitionCounts, ParseReport, dict[int, TransitionCounts]]:
+    """:func:`count_sources` and :func:`count_grouped` in one read: the whole-data counts exactly as
+    :func:`count_sources` gives them (its default gap, open cases, progress, notes and errors), and
+    in the same pass the counts of each group ``group(chunk)`` assigns (as for :func:`count_grouped`;
+    the groups' sessions end at the end of the data, without the open-case policy).
+
+    If ``group`` keeps every event of a session key in one group (the segments of
+    :mod:`tracechain.analyze.segments` do), the groups' counts add up to the whole-data counts.
+    Pre-aggregated sources (edge lists) are refused: they cannot be split.
+    """
+    return _metered(progress, paths, format, fields, shape, strict, extra, stdin, finish_session, group,
+                    tuple(keep_fields))
+
+
+def _metered(progress, *args):
+    """:func:`_count_sources` with the progress meter ``progress`` asks for, closed at the end."""
     meter = make_meter(progress)
     try:
         with quick_thread_switches():
-            return _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session, meter)
+            return _count_sources(meter, *args)
     finally:
         if meter is not None:
             meter.close()
 
 
-def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_session,
-                   meter: ReadMeter | None) -> tuple[TransitionCounts, ParseReport]:
+def _count_sources(meter: ReadMeter | None, paths, format, fields, shape, strict, extra, stdin, finish_session,
+                   group=None, keep_fields: tuple[str, ...] = ()
+                   ) -> tuple[TransitionCounts, ParseReport, dict[int, TransitionCounts] | None]:
+    import numpy as np
+
     shape = shape or ShapeOptions()
-    keep = shape.filters.fields if shape.filters is not None else ()
+    keep = tuple(dict.fromkeys((shape.filters.fields if shape.filters is not None else ()) + keep_fields))
     options = ReadOptions(fields=fields or FieldSpec(), strict=strict, extra=dict(extra or {}), keep_fields=keep)
     sources = _resolve(paths, stdin, meter)
     plan = [(src, get_parser(format) if format else detect_parser(src)) for src in sources]
+    if group is not None:
+        for src, parser in plan:
+            if parser.kind != "events":
+                raise UsageError(f"{src.name} holds pre-aggregated counts ({parser.name}); splitting needs events")
     gap_note = None
     if shape.gap is None:
         defaults = {getattr(p, "default_gap", None) for _, p in plan} - {None}
@@ -218,9 +258,10 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
             gap_note = (f"sessions cut after {shape.gap / 60:g} minutes of inactivity (the default for "
                         f"{', '.join(sorted({p.name for _, p in plan if getattr(p, 'default_gap', None)}))} logs)")
 
-    def one_pass(sort: bool) -> tuple[TransitionCounts, ParseReport]:
+    def one_pass(sort: bool) -> tuple[TransitionCounts, ParseReport, dict[int, TransitionCounts] | None]:
         report = ParseReport()
         counter = shape.counter(sort=sort)
+        grouped: dict[int, SessionCounter] = {}
         pre = TransitionCounts.empty()
         any_events = False
         if meter is not None:
@@ -237,17 +278,24 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
                     for chunk in apply_filters(chunks, shape.filters, report):
                         any_events = True
                         counter.add(chunk)
+                        if group is not None:
+                            codes = np.asarray(group(chunk))
+                            for k in np.unique(codes[codes >= 0]).tolist():
+                                if k not in grouped:
+                                    grouped[k] = shape.counter(sort=sort)
+                                grouped[k].add(_take(chunk, codes == k))
             if meter is not None:
                 meter.finished(i)
         counts = counter.finish(finish_session, cases=shape.cases) if any_events else TransitionCounts.empty()
         if pre.n_states:
             counts = counts + pre if counts.n_states else pre
-        return counts, report
+        groups = {k: c.finish() for k, c in sorted(grouped.items())} if group is not None else None
+        return counts, report, groups
 
     try:
-        counts, report = one_pass(sort=False)
+        counts, report, groups = one_pass(sort=False)
     except OutOfOrder as err:
-        counts, report = one_pass(sort=True)
+        counts, report, groups = one_pass(sort=True)
         report.notes.append(_out_of_order_note(err))
     if gap_note:
         report.notes.append(gap_note)
@@ -261,7 +309,7 @@ def _count_sources(paths, format, fields, shape, strict, extra, stdin, finish_se
             detail += "; events left out by " + ", ".join(f"{k}: {v}" for k, v in report.filtered.items())
         why = report.why_nothing()
         raise EmptyInputError(f"no usable events in {where}{detail}" + (f": {why}" if why else ""))
-    return counts, report
+    return counts, report, groups
 
 
 def _take(chunk: EventChunk, mask) -> EventChunk:

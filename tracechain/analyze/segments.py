@@ -2,7 +2,9 @@
 
 :func:`count_segments` reads the input once and counts every segment in that pass
 (:func:`tracechain.pipeline.count_grouped`, the routing ``compare --split-field`` uses, with
-one group per value). The filters (``--where``, ``--since``, ``--until``) apply first.
+one group per value); :func:`count_with_segments` counts the whole data as well in that same
+pass (what ``analyze`` and ``report`` use, so ``--segment-by`` adds no read). The filters
+(``--where``, ``--since``, ``--until``) apply first.
 
 Which segment a session belongs to. Segments are made per session key: a key's segment is
 the value of the field on its first event read (after the filters). A key whose first event
@@ -35,7 +37,7 @@ from ..events import ParseReport
 from .compare import TEST_NAME, benjamini_hochberg, homogeneity_rows, start_figures, union_index
 
 __all__ = ["NONE_LABEL", "OTHER_LABEL", "DEFAULT_TOP", "SegmentGroup", "SegmentTest", "Segments", "count_segments",
-           "segment_analysis"]
+           "count_with_segments", "segment_analysis"]
 
 #: the segment of session keys whose first event has no value of the field
 NONE_LABEL = "(none)"
@@ -116,23 +118,56 @@ def count_segments(paths, field_name: str, **kw) -> tuple[dict[str, TransitionCo
     notes)``: the counts and the number of session keys of each segment (by label), the parse
     report and the notes on how keys were assigned.
     """
-    import pyarrow.compute as pc
-
-    from .._arrowutil import to_numpy
     from ..pipeline import count_grouped
 
-    codes: dict[str, int] = {}  # segment label -> group number
-    key_group: dict[str, int] = {}
-    later_other: set = set()
-    later_value: set = set()
-    state = {"value": False, "source": None}
+    router = _SegmentRouter(field_name)
+    got, report = count_grouped(paths, router.group, keep_fields=(field_name,), **kw)
+    counts, keys, notes = router.result(got)
+    return counts, keys, report, notes
 
-    def code_of(value) -> int:
+
+def count_with_segments(paths, field_name: str, **kw) -> tuple[
+        TransitionCounts, ParseReport, dict[str, TransitionCounts], dict[str, int], list[str]]:
+    """The whole-data counts and the counts per segment of ``field_name``, all in one read.
+
+    ``kw`` as for :func:`tracechain.pipeline.count_sources_grouped` (so the whole-data counts are
+    those :func:`tracechain.pipeline.count_sources` gives, with its default gap, open cases,
+    progress and notes). A key's events all go to its segment, so the segments' counts add up to
+    the whole-data counts when no open-case policy applies. Returns ``(counts, report,
+    segment_counts, keys, notes)`` (the last three as :func:`count_segments` gives them).
+    """
+    from ..pipeline import count_sources_grouped
+
+    router = _SegmentRouter(field_name)
+    counts, report, got = count_sources_grouped(paths, router.group, keep_fields=(field_name,), **kw)
+    seg_counts, keys, notes = router.result(got)
+    return counts, report, seg_counts, keys, notes
+
+
+class _SegmentRouter:
+    """The segment of each event read (``group``, called per chunk) and, after the read, the
+    segments' labels, keys and notes (``result``); see the module text for the rule."""
+
+    def __init__(self, field_name: str) -> None:
+        self.field_name = field_name
+        self.codes: dict[str, int] = {}  # segment label -> group number
+        self.key_group: dict[str, int] = {}
+        self.later_other: set = set()
+        self.later_value: set = set()
+        self.any_value = False
+        self.source: str | None = None
+
+    def _code_of(self, value) -> int:
         label = NONE_LABEL if value is None or value == "" else value
-        return codes.setdefault(label, len(codes))
+        return self.codes.setdefault(label, len(self.codes))
 
-    def group(chunk):
-        state["source"] = chunk.source
+    def group(self, chunk) -> np.ndarray:
+        import pyarrow.compute as pc
+
+        from .._arrowutil import to_numpy
+
+        field_name = self.field_name
+        self.source = chunk.source
         arr = chunk.attrs.get(field_name)
         if arr is None:
             raise UsageError(f"{chunk.source}: --segment-by {field_name}: this reader gives no field {field_name!r} "
@@ -141,43 +176,45 @@ def count_segments(paths, field_name: str, **kw) -> tuple[dict[str, TransitionCo
         enc = pc.dictionary_encode(arr)
         values = enc.dictionary.to_pylist()
         if any(v not in (None, "") for v in values):
-            state["value"] = True
-        none = code_of(None) if arr.null_count or "" in values else -1
-        value_code = np.array([code_of(v) for v in values] + [none], dtype=np.int64)
+            self.any_value = True
+        none = self._code_of(None) if arr.null_count or "" in values else -1
+        value_code = np.array([self._code_of(v) for v in values] + [none], dtype=np.int64)
         event_code = value_code[to_numpy(pc.fill_null(enc.indices, len(values)))]
         keys = pc.dictionary_encode(chunk.session)
         kidx = to_numpy(keys.indices)
         _, first = np.unique(kidx, return_index=True)
         kcode = np.empty(len(first), dtype=np.int64)
+        key_group = self.key_group
         for j, key in enumerate(keys.dictionary.to_pylist()):
             kcode[j] = key_group.setdefault(key, int(event_code[first[j]]))
         seg = kcode[kidx]
-        nc = codes.get(NONE_LABEL, -1)
+        nc = self.codes.get(NONE_LABEL, -1)
         differ = (event_code != seg) & (event_code != nc)
         if differ.any():
             names = keys.dictionary.to_pylist()
             for j in np.unique(kidx[differ]).tolist():
-                (later_value if kcode[j] == nc else later_other).add(names[j])
+                (self.later_value if kcode[j] == nc else self.later_other).add(names[j])
         return seg
 
-    got, report = count_grouped(paths, group, keep_fields=(field_name,), **kw)
-    if state["source"] is not None and not state["value"]:
-        raise FieldError(f"the field {field_name!r} (from --segment-by) has no value in any event read; check its "
-                         "name", state["source"])
-    labels = {v: k for k, v in codes.items()}
-    per_key = np.bincount(np.fromiter(key_group.values(), dtype=np.int64, count=len(key_group)),
-                          minlength=len(codes))
-    counts = {labels[k]: c for k, c in got.items()}
-    keys_of = {labels[k]: int(per_key[k]) for k in got}
-    notes = [f"segments by the field {field_name}: a session key's segment is its value on the key's first event "
-             f"read; {NONE_LABEL} holds the keys whose first event has no value"]
-    if later_other:
-        notes.append(f"{len(later_other):,} session key(s) had another value of {field_name} on a later event; they "
-                     "stay in their first segment")
-    if later_value:
-        notes.append(f"{len(later_value):,} session key(s) first seen without a value of {field_name} had one later; "
-                     f"they stay in {NONE_LABEL}")
-    return counts, keys_of, report, notes
+    def result(self, got: dict[int, TransitionCounts]) -> tuple[dict[str, TransitionCounts], dict[str, int], list[str]]:
+        field_name = self.field_name
+        if self.source is not None and not self.any_value:
+            raise FieldError(f"the field {field_name!r} (from --segment-by) has no value in any event read; check "
+                             "its name", self.source)
+        labels = {v: k for k, v in self.codes.items()}
+        per_key = np.bincount(np.fromiter(self.key_group.values(), dtype=np.int64, count=len(self.key_group)),
+                              minlength=len(self.codes))
+        counts = {labels[k]: c for k, c in got.items()}
+        keys_of = {labels[k]: int(per_key[k]) for k in got}
+        notes = [f"segments by the field {field_name}: a session key's segment is its value on the key's first "
+                 f"event read; {NONE_LABEL} holds the keys whose first event has no value"]
+        if self.later_other:
+            notes.append(f"{len(self.later_other):,} session key(s) had another value of {field_name} on a later "
+                         "event; they stay in their first segment")
+        if self.later_value:
+            notes.append(f"{len(self.later_value):,} session key(s) first seen without a value of {field_name} had "
+                         f"one later; they stay in {NONE_LABEL}")
+        return counts, keys_of, notes
 
 
 def segment_analysis(

@@ -201,15 +201,11 @@ def _charts(result, args) -> list:
     return report_charts(result, top=args.top, level=args.level, seed=args.seed)
 
 
-def _segments_section(args, settings):
+def _segments_section(args, seg):
     """``--segment-by``: the segments' section of the report, with the small multiples when charts can be drawn."""
-    from ..options import segments_from_args
-    from ..cli import extra_from_args
-    from ..options import shape_from_args
     from .charts import available, missing_reason, segment_chart
     from .segments import segments_section
 
-    seg = segments_from_args(args, settings, *extra_from_args(args, shape_from_args(args)[0].mapping))
     chart = None
     if not args.no_charts:
         chart = segment_chart(seg) if available() else f"No chart of conversion by segment: {missing_reason()}."
@@ -296,7 +292,7 @@ def _render_diagram(diagram, fmt: str) -> bytes:
 
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
-    from ..cli import build_chain
+    from ..cli import build_chain_and_segments
     from ..options import EXIT_OK, with_case_figures
     from ..errors import UsageError
     from ..shape.mapping import load_mapping
@@ -323,12 +319,12 @@ def cmd_report(args: argparse.Namespace) -> int:
     if steps_wanted(args) is not None and (args.html or args.markdown):
         native_only(args, "report --steps")
         readable_twice(args, "report --steps")
-    chain, report, settings = build_chain(args)
+    chain, report, settings, seg = build_chain_and_segments(args)
     result = with_case_figures(analyze(chain, report, top=max(args.top, 10), settings=settings,
                                        min_visits=args.min_visits), args)
     seg_sections = None
     if args.segment_by is not None and (args.html or args.markdown):
-        seg_sections = [_segments_section(args, settings)]
+        seg_sections = [_segments_section(args, seg)]
     elif args.segment_by is not None:
         print("tracechain: warning: --segment-by adds a section to the HTML and Markdown report; neither was asked "
               "for", file=sys.stderr)

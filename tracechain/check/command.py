@@ -37,7 +37,7 @@ OUTPUT_FORMATS = CHECK_FORMATS.names()
 
 def register(subparsers: Any) -> None:
     """Add ``check`` and ``snapshot`` to the subparsers of ``tracechain.cli.build_parser()``."""
-    from ..cli import _add_input_options  # lazily: tracechain.cli imports this module
+    from ..options import _add_input_options
 
     c = subparsers.add_parser(
         "check", help="evaluate behaviour rules on the chain built from traces (a CI gate)",
@@ -127,14 +127,15 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
     ``before_reading(goals, terminal)`` is called once the goals and terminal states are known,
     before the traces are read. Returns ``(chain, report, settings, goals)``.
     """
-    from .. import cli  # lazily: tracechain.cli imports this module
+    from ..options import count_from_args, extra_from_args, shape_from_args
+
     ns = _merge(args, rules)
-    shape, fields, goals, terminal = cli.shape_from_args(ns)
+    shape, fields, goals, terminal = shape_from_args(ns)
     # the format-specific reading options, as 'analyze' reads them
-    fmt, extra = cli.extra_from_args(ns, shape.mapping)
+    fmt, extra = extra_from_args(ns, shape.mapping)
     if before_reading is not None:
         before_reading(tuple(goals), tuple(terminal))
-    counts, report = cli.count_from_args(ns, shape, fields, fmt, extra)
+    counts, report = count_from_args(ns, shape, fields, fmt, extra)
     mode = getattr(ns, "open_cases", None) or "stuck"
     if shape.cases is not None and mode == "stuck":
         from ..analyze.stuck_outcome import with_stuck_outcomes

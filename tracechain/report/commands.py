@@ -61,7 +61,7 @@ def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
     from ..options import (MAX_DRAWS, _seed, _share, add_case_figure_options, add_interval_options, add_level_option,
                            whole_number)
-    from ..cli import _add_input_options
+    from ..options import _add_input_options
 
     r = subparsers.add_parser(
         "report", help="write an HTML report and a Markdown summary of the analysis",
@@ -201,7 +201,7 @@ def _charts(result, args) -> list:
 def _segments_section(args, settings):
     """``--segment-by``: the segments' section of the report, with the small multiples when charts can be drawn."""
     from ..options import segments_from_args
-    from ..cli import extra_from_args
+    from ..options import extra_from_args
     from ..options import shape_from_args
     from .charts import available, missing_reason, segment_chart
     from .segments import segments_section
@@ -280,7 +280,7 @@ def _render_diagram(diagram, fmt: str) -> bytes:
 
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
-    from ..cli import build_chain
+    from ..options import build_chain
     from ..options import EXIT_OK, with_case_figures
     from ..errors import UsageError
     from ..shape.mapping import load_mapping

@@ -14,28 +14,16 @@ from __future__ import annotations
 
 import argparse
 import errno
-import math
 import os
 import sys
 import warnings
 from collections.abc import Sequence
 
+from ._limits import MAX_ORDER  # noqa: F401  (part of this module's namespace)
 from ._version import __version__
-from .analyze.summary import analyze
-from .chain import Chain
 from .durations import parse_duration, parse_time  # noqa: F401  (parse_duration: its old home)
 from .errors import TracechainError, UsageError
-from .ingest.fields import FieldSpec
-from .ingest.registry import available_parsers
-from .ingest.sources import cleanup_spooled
-from .pipeline import MAX_ORDER, ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
-from .report.dot import render_dot, render_image
-from .report.json_report import analysis_document, dumps
-from .report.text import render_text
 from .outputs import check_outputs
-from .report.writer import write_output
-from .shape.cases import CasePolicy
-from .shape.mapping import load_mapping
 
 __all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
 
@@ -47,6 +35,27 @@ from .options import (  # noqa: E402, F401
     _EXTRA_OPTIONS, _add_input_options, _line_bytes, _timestamp, add_filter_options, build_chain, extra_from_args,
 )
 EXIT_PIPE = 141  # 128 + SIGPIPE: standard output's reader went away (``| head``); no message
+
+#: names this module's namespace held when it imported the whole stack at the top -> their homes;
+#: imported on first use (PEP 562), so that ``tracechain --help`` and ``--version`` load only the parser
+_LAZY = {
+    "analyze": "tracechain.analyze.summary", "Chain": "tracechain.chain", "FieldSpec": "tracechain.ingest.fields",
+    "available_parsers": "tracechain.ingest.registry", "cleanup_spooled": "tracechain.ingest.sources",
+    "ShapeOptions": "tracechain.pipeline", "count_sources": "tracechain.pipeline",
+    "render_dot": "tracechain.report.dot", "render_image": "tracechain.report.dot",
+    "analysis_document": "tracechain.report.json_report", "dumps": "tracechain.report.json_report",
+    "render_text": "tracechain.report.text", "write_output": "tracechain.report.writer",
+    "CasePolicy": "tracechain.shape.cases", "load_mapping": "tracechain.shape.mapping",
+}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # argparse's own usage errors: exit 2 with usage
@@ -130,6 +139,12 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     from .options import segments_possible
 
     segments_possible(args)  # before any reading
+    from .analyze.summary import analyze
+    from .report.dot import render_dot, render_image
+    from .report.json_report import analysis_document, dumps
+    from .report.text import render_text
+    from .report.writer import write_output
+
     chain, report, settings = build_chain(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)
@@ -193,6 +208,7 @@ def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
     from .analyze.stuck import stuck_case_list
     from .privacy import announce_salt, pseudonymizer_from_args
     from .report.stuck_cases import render_stuck_cases
+    from .report.writer import write_output
 
     got = stuck_case_list(chain.counts) if chain.counts is not None else None
     if got is None:  # (terminal states were checked before reading)
@@ -208,6 +224,7 @@ def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
 
 def cmd_formats(args: argparse.Namespace) -> int:
     from .engines import installed_engines
+    from .ingest.registry import available_parsers
 
     if getattr(args, "fields", False):
         from .ingest.fields import EVENT_NAMES, SESSION_NAMES, TIME_NAMES
@@ -386,7 +403,9 @@ def _main(argv: Sequence[str] | None) -> int:
         print("tracechain: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
     finally:
-        cleanup_spooled()
+        sources = sys.modules.get("tracechain.ingest.sources")
+        if sources is not None:  # (not imported: nothing was read, nothing spooled)
+            sources.cleanup_spooled()
 
 
 if __name__ == "__main__":  # pragma: no cover

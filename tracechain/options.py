@@ -285,6 +285,24 @@ def segments_from_args(args: argparse.Namespace, settings: dict, fmt: str | None
 
 
 # -- the input options of every command that reads events (moved here from tracechain/cli.py) ----
+class _EnginesGroup(argparse._ArgumentGroup):
+    """The argument group of the engine options, whose description lists the installed engines.
+
+    Finding out whether DuckDB, psycopg and PySpark are installed imports them (and looks for
+    Java), which takes longer than everything else ``--help`` does; so the list is made when the
+    help is formatted, not when the parser is built for a command that never shows it."""
+
+    @property  # type: ignore[override]
+    def description(self) -> str:
+        from .engines import engines_line
+
+        return engines_line()
+
+    @description.setter
+    def description(self, _value) -> None:  # argparse's __init__ sets it; the property gives it
+        pass
+
+
 def _timestamp(text: str) -> float:
     try:
         return parse_time(text)
@@ -327,9 +345,10 @@ def _add_input_options(p: argparse.ArgumentParser) -> None:
                    help="a progress bar (bytes read) on standard error while reading; by default shown when "
                         "standard error is a terminal, reading takes over a second and --quiet is not given "
                         "(TRACECHAIN_PROGRESS=1 or 0 sets the default)")
-    from .engines import ENGINE_CHOICES, engines_line
+    from .engines import ENGINE_CHOICES
 
-    e = p.add_argument_group("engines: where the counting runs", engines_line())
+    e = _EnginesGroup(p, "engines: where the counting runs")
+    p._action_groups.append(e)  # (what add_argument_group does with the group it makes)
     e.add_argument("--engine", choices=ENGINE_CHOICES, default="auto",
                    help="native: tracechain's own reader; duckdb: read, sessionize, map and count inside DuckDB "
                         "(Parquet, CSV, JSON Lines); auto (default): native for files, the database itself for a "

@@ -63,7 +63,7 @@ def register(subparsers) -> None:
     """Add ``order``, ``simulate`` and ``whatif`` to the ``tracechain`` subparsers action."""
     from ..options import _add_input_options
     from ..options import MAX_DRAWS, MAX_SESSIONS, _seed, whole_number
-    from ..pipeline import MAX_ORDER
+    from .._limits import MAX_ORDER
 
     o = subparsers.add_parser(
         "order", help="which chain order the sessions support (likelihood-ratio tests, AIC, BIC)",

@@ -43,12 +43,14 @@ def write_log(path: str, events: int, seed: int) -> None:
                 n += 1
 
 
-def run(argv: list[str], repeat: int, env: dict) -> tuple[float, float]:
-    """(fastest wall s, largest peak MB) of ``repeat`` runs of ``argv`` in a new process."""
+def run(argv: list[str], repeat: int, env: dict, cwd: str) -> tuple[float, float]:
+    """(fastest wall s, largest peak MB) of ``repeat`` runs of ``argv`` in a new process, started in
+    ``cwd`` (``-m`` puts the working directory first on the path: a neutral one leaves the choice of
+    tracechain to the installation and PYTHONPATH)."""
     best, peak = float("inf"), 0.0
     for _ in range(repeat):
         t0 = time.perf_counter()
-        p = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+        p = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env, cwd=cwd)
         _, status, usage = os.wait4(p.pid, 0)
         wall = time.perf_counter() - t0
         if os.waitstatus_to_exitcode(status) != 0:
@@ -78,7 +80,7 @@ def main() -> None:
             (f"tracechain analyze ({a.events:,} events)", cli + ["analyze", log, "-q", "--json",
                                                                 os.path.join(tmp, "out.json")]),
         ]
-        rows = [(name, *run(argv, a.repeat, env)) for name, argv in cases]
+        rows = [(name, *run(argv, a.repeat, env, tmp)) for name, argv in cases]
     base, stack = rows[0][1], rows[1][1]
     print(f"{'case':38s} {'wall s':>7s} {'peak MB':>8s} {'x python':>9s} {'x stack':>8s}")
     for name, wall, peak in rows:

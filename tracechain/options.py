@@ -1,6 +1,12 @@
 """Options and helpers shared by the command modules (``tracechain/cli.py``, ``analyze/commands.py``,
 ``report/commands.py``, ``check/command.py``): exit statuses, option value types, and turning
-parsed options into shaping options, counts and a progress setting.
+parsed options into shaping options, counts and a progress setting; the input options of every
+command that reads events (``_add_input_options``), the parsers' settings they ask for
+(``extra_from_args``) and the chain they describe (``build_chain``).
+
+Building a parser needs only this module, argparse and small modules of bounds and names: the
+reading, shaping and analysis stack (numpy, scipy, pyarrow) is imported inside the functions that
+turn parsed options into work, so that ``--help`` and ``--version`` start quickly.
 
 Below the command modules and the command line, so that they import it and it imports none of
 them (``tracechain.cli`` imported the command modules, which imported it back). Moved here from
@@ -24,7 +30,8 @@ if TYPE_CHECKING:  # the reading and shaping stack is imported where options are
 
 __all__ = ["EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR", "EXIT_INTERRUPTED", "shape_from_args", "progress_from_args",
            "count_from_args", "native_only", "add_level_option", "add_interval_options", "interval_method",
-           "sessions_from_args", "add_segment_options", "segments_possible", "segments_from_args"]
+           "sessions_from_args", "add_segment_options", "segments_possible", "segments_from_args",
+           "add_filter_options", "extra_from_args", "build_chain"]
 
 EXIT_OK = 0
 EXIT_FINDINGS = 1

@@ -40,7 +40,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
     ("base", ("tracechain.errors", "tracechain.events", "tracechain.counts", "tracechain._arrowutil",
               "tracechain._bytewords", "tracechain._yamlsafe", "tracechain._version", "tracechain.privacy",
               "tracechain.display", "tracechain.files", "tracechain.durations",
-              "tracechain.renderers")),
+              "tracechain.renderers", "tracechain._limits")),
     ("ingest", ("tracechain.ingest", "tracechain.progress")),
     ("shape", ("tracechain.shape",)),
     # read + shape + count wired together (in Python, or inside a database engine)
@@ -60,11 +60,7 @@ LAYERS: list[tuple[str, tuple[str, ...]]] = [
 ]
 
 #: Known upward imports still to be fixed, as (importer, imported). Shrinks with each fix.
-ALLOWED_UPWARD: set[tuple[str, str]] = {
-    ("tracechain.analyze.commands", "tracechain.cli"),
-    ("tracechain.report.commands", "tracechain.cli"),
-    ("tracechain.check.command", "tracechain.cli"),
-}
+ALLOWED_UPWARD: set[tuple[str, str]] = set()
 
 #: Old names kept working where they moved up a layer: (module, new home), imported only in the
 #: module's ``__getattr__`` on first use of the old name. For the code other branches wrote before
@@ -72,6 +68,8 @@ ALLOWED_UPWARD: set[tuple[str, str]] = {
 COMPAT_FORWARDS: set[tuple[str, str]] = {
     # extended_lines: tracechain.analyze.extended -> tracechain.report.text
     ("tracechain.analyze.extended", "tracechain.report.text"),
+    # main, build_parser: tracechain.report.commands -> tracechain.cli (the command line registers report/compare)
+    ("tracechain.report.commands", "tracechain.cli"),
 }
 
 #: Known imports inside one layer that close a cycle, still to be fixed. Shrinks too.

@@ -12,20 +12,49 @@ The public API is the same objects the command line uses::
 from __future__ import annotations
 
 from ._version import __version__
-from .chain import Chain  # noqa: E402
-from .counts import TransitionCounts  # noqa: E402
-from .events import EventChunk, ParseReport  # noqa: E402
-from .ingest.fields import FieldSpec  # noqa: E402
-from .pipeline import ShapeOptions, count_chunks, count_sources, read_events  # noqa: E402
-from .engines.spark_engine import counts_from_spark  # noqa: E402
-from .shape.mapping import Mapping, load_mapping, parse_mapping  # noqa: E402
-# the analysis bundle is exported as ``analyze_chain``: binding the name ``analyze`` here
-# would hide the ``tracechain.analyze`` subpackage from ``import tracechain.analyze.x``
-from .analyze.summary import Analysis  # noqa: E402
-from .analyze.summary import analyze as analyze_chain  # noqa: E402
-from .analyze.absorbing import absorbing_analysis  # noqa: E402
-from .analyze.classes import communicating_classes  # noqa: E402
-from .analyze.dead_ends import dead_ends, exit_states, goal_unreachable  # noqa: E402
+
+#: public name -> (module, name there); imported on first use (PEP 562), so that ``import tracechain``
+#: (which every ``import tracechain.x`` runs first, the command line's ``--help`` too) loads no numpy,
+#: scipy or pyarrow until one of these is asked for
+_PUBLIC: dict[str, tuple[str, str]] = {
+    "Chain": (".chain", "Chain"),
+    "TransitionCounts": (".counts", "TransitionCounts"),
+    "EventChunk": (".events", "EventChunk"),
+    "ParseReport": (".events", "ParseReport"),
+    "FieldSpec": (".ingest.fields", "FieldSpec"),
+    "ShapeOptions": (".pipeline", "ShapeOptions"),
+    "count_chunks": (".pipeline", "count_chunks"),
+    "count_sources": (".pipeline", "count_sources"),
+    "read_events": (".pipeline", "read_events"),
+    "counts_from_spark": (".engines.spark_engine", "counts_from_spark"),
+    "Mapping": (".shape.mapping", "Mapping"),
+    "load_mapping": (".shape.mapping", "load_mapping"),
+    "parse_mapping": (".shape.mapping", "parse_mapping"),
+    # the analysis bundle is exported as ``analyze_chain``: binding the name ``analyze`` here
+    # would hide the ``tracechain.analyze`` subpackage from ``import tracechain.analyze.x``
+    "Analysis": (".analyze.summary", "Analysis"),
+    "analyze_chain": (".analyze.summary", "analyze"),
+    "absorbing_analysis": (".analyze.absorbing", "absorbing_analysis"),
+    "communicating_classes": (".analyze.classes", "communicating_classes"),
+    "dead_ends": (".analyze.dead_ends", "dead_ends"),
+    "exit_states": (".analyze.dead_ends", "exit_states"),
+    "goal_unreachable": (".analyze.dead_ends", "goal_unreachable"),
+}
+
+
+def __getattr__(name: str):
+    if name in _PUBLIC:
+        import importlib
+
+        module, attr = _PUBLIC[name]
+        value = getattr(importlib.import_module(module, __name__), attr)
+        globals()[name] = value  # once: later uses find it without this function
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_PUBLIC))
 
 
 # Notebooks: Chain and Analysis are drawn by the report layer (diagram and summary, names

@@ -14,28 +14,16 @@ from __future__ import annotations
 
 import argparse
 import errno
-import math
 import os
 import sys
 import warnings
 from collections.abc import Sequence
 
+from ._limits import MAX_ORDER  # noqa: F401  (part of this module's namespace)
 from ._version import __version__
-from .analyze.summary import analyze
-from .chain import Chain
 from .durations import parse_duration, parse_time  # noqa: F401  (parse_duration: its old home)
 from .errors import TracechainError, UsageError
-from .ingest.fields import FieldSpec
-from .ingest.registry import available_parsers
-from .ingest.sources import cleanup_spooled
-from .pipeline import MAX_ORDER, ShapeOptions, count_sources  # noqa: F401  (part of this module's namespace)
-from .report.dot import render_dot, render_image
-from .report.json_report import analysis_document, dumps
-from .report.text import render_text
 from .outputs import check_outputs
-from .report.writer import write_output
-from .shape.cases import CasePolicy
-from .shape.mapping import load_mapping
 
 __all__ = ["main", "EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR"]
 
@@ -44,131 +32,36 @@ from .options import (  # noqa: E402, F401
     _OUTPUT_OPTIONS, EXIT_ERROR, EXIT_FINDINGS, EXIT_INTERRUPTED, EXIT_OK, MAX_DRAWS, MAX_SESSIONS, _positive_int, _seed,
     _share, count_from_args, whole_number,
     native_only, progress_from_args, shape_from_args, add_case_figure_options, with_case_figures,
+    _EXTRA_OPTIONS, _add_input_options, _line_bytes, _timestamp, add_filter_options, build_chain, extra_from_args,
+    build_chain_and_segments,
 )
 EXIT_PIPE = 141  # 128 + SIGPIPE: standard output's reader went away (``| head``); no message
 
-def _timestamp(text: str) -> float:
-    try:
-        return parse_time(text)
-    except UsageError:
-        raise argparse.ArgumentTypeError(f"not an ISO 8601 time: {text!r}") from None
+#: names this module's namespace held when it imported the whole stack at the top -> their homes;
+#: imported on first use (PEP 562), so that ``tracechain --help`` and ``--version`` load only the parser
+_LAZY = {
+    "analyze": "tracechain.analyze.summary", "Chain": "tracechain.chain", "FieldSpec": "tracechain.ingest.fields",
+    "available_parsers": "tracechain.ingest.registry", "cleanup_spooled": "tracechain.ingest.sources",
+    "ShapeOptions": "tracechain.pipeline", "count_sources": "tracechain.pipeline",
+    "render_dot": "tracechain.report.dot", "render_image": "tracechain.report.dot",
+    "analysis_document": "tracechain.report.json_report", "dumps": "tracechain.report.json_report",
+    "render_text": "tracechain.report.text", "write_output": "tracechain.report.writer",
+    "CasePolicy": "tracechain.shape.cases", "load_mapping": "tracechain.shape.mapping",
+}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # argparse's own usage errors: exit 2 with usage
         self.print_usage(sys.stderr)
         self.exit(EXIT_ERROR, f"tracechain: error: {message}\n")
-
-
-def _line_bytes(text: str) -> int:
-    """``--max-line-bytes``: a whole number of bytes, at least 1, with an optional K/M/G suffix."""
-    t = text.strip().upper().removesuffix("B").removesuffix("I")
-    scale = 1
-    if t[-1:] in ("K", "M", "G"):
-        scale = 1 << {"K": 10, "M": 20, "G": 30}[t[-1]]
-        t = t[:-1]
-    try:
-        n = int(t) * scale
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a number of bytes: {text!r} (e.g. 65536, 64K, 16M)") from None
-    if n < 1 or n > (1 << 40):
-        raise argparse.ArgumentTypeError(f"out of range: {text!r} (1 byte to 1024G)")
-    return n
-
-
-def _add_input_options(p: argparse.ArgumentParser) -> None:
-    p.add_argument("paths", nargs="+", metavar="PATH",
-                   help="event logs: files, directories, globs; '-' for standard input; gzip/bz2/xz are read too")
-    g = p.add_argument_group("reading")
-    g.add_argument("--format", help="input format (default: detected from the first lines); see 'tracechain formats'")
-    g.add_argument("--session-field", metavar="NAME", help="field holding the session key (default: detected)")
-    g.add_argument("--time-field", metavar="NAME", help="field holding the time; '' for none (default: detected)")
-    g.add_argument("--event-field", metavar="NAME", help="field holding the event name (default: detected)")
-    g.add_argument("--time-unit", choices=("s", "ms", "us", "ns"),
-                   help="unit of numeric epoch times (default: from their magnitude)")
-    g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
-    g.add_argument("--max-line-bytes", type=_line_bytes, default=None, metavar="N",
-                   help="the longest line read, in bytes (suffixes K, M, G: powers of 1024; default 64M); a longer "
-                        "line is skipped and counted as 'line too long', its bytes discarded as they are read")
-    g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
-    g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
-                   help="a progress bar (bytes read) on standard error while reading; by default shown when "
-                        "standard error is a terminal, reading takes over a second and --quiet is not given "
-                        "(TRACECHAIN_PROGRESS=1 or 0 sets the default)")
-    from .engines import ENGINE_CHOICES, engines_line
-
-    e = p.add_argument_group("engines: where the counting runs", engines_line())
-    e.add_argument("--engine", choices=ENGINE_CHOICES, default="auto",
-                   help="native: tracechain's own reader; duckdb: read, sessionize, map and count inside DuckDB "
-                        "(Parquet, CSV, JSON Lines); auto (default): native for files, the database itself for a "
-                        "sqlite:/// or postgresql:// URL or a DuckDB database file; spark: the same counting as a "
-                        "Spark job (Parquet, CSV, JSON Lines; local paths or hdfs://, s3a:// URLs)")
-    e.add_argument("--spark-master", metavar="URL",
-                   help="with --engine spark: the cluster's master (spark://host:7077, yarn, local[4]); default "
-                        "local[*], or $TRACECHAIN_SPARK_MASTER")
-    e.add_argument("--table", metavar="NAME", help="the events table of a database (URL or DuckDB file)")
-    e.add_argument("--query", metavar="SQL", help="a query giving the events of a database (run as a subquery, "
-                                                  "read-only)")
-    e.add_argument("--order-by", metavar="COLUMN",
-                   help="tie-break for events of one session at one time in a table (files keep file order)")
-    w = p.add_argument_group("format-specific reading (web logs, traces, XES, CloudEvents, strace)")
-    w.add_argument("--status", metavar="LIST", help="web logs: keep these statuses, e.g. 2xx,3xx or 200,304")
-    w.add_argument("--method", metavar="LIST", help="web logs: keep these request methods, e.g. GET,POST")
-    w.add_argument("--exclude-agent", metavar="REGEX", help="web logs: leave out user agents matching this (bots)")
-    w.add_argument("--method-prefix", action="store_true", help="web logs: name events 'GET /path'")
-    w.add_argument("--include-assets", action="store_true",
-                   help="web logs: keep requests for static assets (images, scripts, styles, fonts, favicon, "
-                        "source maps), left out by default")
-    w.add_argument("--lifecycle", metavar="LIST", help="XES: keep only these lifecycle:transition values")
-    w.add_argument("--span-state-attribute", metavar="KEY", help="OTLP: take the state from this span attribute")
-    w.add_argument("--no-mark-errors", action="store_true", help="OTLP: do not suffix error spans with ' [error]'")
-    w.add_argument("--span-kinds", metavar="LIST", help="OTLP: keep only these span kinds, e.g. server,consumer")
-    w.add_argument("--session-extension", metavar="NAME",
-                   help="CloudEvents: session from this extension attribute instead of 'subject'")
-    w.add_argument("--with-errors", action="store_true", help="strace: states carry the error, e.g. open:ENOENT")
-    w.add_argument("--with-signals", action="store_true", help="strace: signals and exits become events")
-    w.add_argument("--trace-date", metavar="YYYY-MM-DD", help="strace: the date of '-tt' times (default 1970-01-01)")
-    s = p.add_argument_group("shaping sessions into states")
-    s.add_argument("--mapping", metavar="YAML", help="rules turning raw event names into states")
-    s.add_argument("--goal", action="append", default=[], metavar="STATE",
-                   help="a goal (conversion) state; repeat for several (default: the mapping file's goals)")
-    s.add_argument("--keep-after-goal", action="store_true",
-                   help="keep a session's events after its first goal (default: cut there)")
-    rep = s.add_mutually_exclusive_group()
-    rep.add_argument("--collapse-repeats", dest="collapse", action="store_true", default=None,
-                     help="merge immediate repeats of a state")
-    rep.add_argument("--no-collapse-repeats", dest="collapse", action="store_false")
-    s.add_argument("--gap", type=parse_duration, metavar="DURATION",
-                   help="start a new session after this much inactivity (e.g. 30m)")
-    s.add_argument("--order", type=int, default=1, metavar="K", help=f"chain order: states are the last K events (1 to {MAX_ORDER})")
-    c = p.add_argument_group("workflows with open cases")
-    c.add_argument("--terminal", action="append", default=[], metavar="STATE",
-                   help="a state in which a case is finished; repeat for several (also 'terminal:' in the mapping)")
-    c.add_argument("--stale-after", type=parse_duration, metavar="DURATION",
-                   help="an unfinished case is open (stuck) when its last event is older than this (default: "
-                        "every unfinished case); more recent ones are in flight")
-    c.add_argument("--as-of", type=_timestamp, metavar="TIME",
-                   help="the time ages are measured from, ISO 8601 (default: the latest time in the data)")
-    c.add_argument("--open-cases", choices=("stuck", "continue"), default=None,
-                   help="stuck (default): an open case is an outcome, 'stuck in' its last state, in every "
-                        "probability and what-if; continue: the assumption that open cases carry on like the "
-                        "finished ones (they are left out of the estimates). In-flight cases are right-censored "
-                        "either way")
-    s.add_argument("--smoothing", type=float, default=0.0, metavar="ALPHA",
-                   help="additive smoothing of transition probabilities (default 0)")
-    add_filter_options(p)
-
-
-def add_filter_options(p: argparse.ArgumentParser) -> None:
-    """--where, --since, --until (every command that reads events)."""
-    g = p.add_argument_group("filters: which events are read (before sessions are made; counted in the parse report)")
-    g.add_argument("--where", action="append", default=[], metavar="COND",
-                   help="keep events meeting COND: FIELD=VALUE, FIELD!=VALUE, FIELD~REGEX (a search, RE2 syntax) or "
-                        "'FIELD in A,B'; compared as text; repeat for several (all must hold); an event without "
-                        "the field meets only !=")
-    g.add_argument("--since", metavar="TIME", help="keep events at or after this ISO 8601 time or date (UTC unless "
-                                                   "an offset is given)")
-    g.add_argument("--until", metavar="TIME", help="keep events before this time; a date alone keeps that whole day")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -237,83 +130,6 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-_EXTRA_OPTIONS = {
-    # option attribute -> (extra key, conversion)
-    "status": ("status", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
-    "method": ("method", lambda v: [x.strip().upper() for x in v.split(",") if x.strip()]),
-    "exclude_agent": ("exclude_agent", str),
-    "method_prefix": ("method_prefix", bool),
-    "include_assets": ("include_assets", bool),
-    "lifecycle": ("lifecycle", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
-    "span_state_attribute": ("span_state_attribute", str),
-    "span_kinds": ("span_kinds", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
-    "session_extension": ("session_extension", str),
-    "with_errors": ("with_errors", bool),
-    "with_signals": ("with_signals", bool),
-    "trace_date": ("date", str),
-}
-
-
-def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict]:
-    """The input format and the parser-specific settings the options ask for."""
-    extra: dict = {}
-    for attr, (key, conv) in _EXTRA_OPTIONS.items():
-        value = getattr(args, attr, None)
-        if value:
-            extra[key] = conv(value)
-    if getattr(args, "max_line_bytes", None):
-        extra["max_line_bytes"] = args.max_line_bytes
-    if getattr(args, "no_mark_errors", False):
-        extra["mark_errors"] = False
-    fmt = args.format
-    if mapping is not None and mapping.parser:
-        if fmt not in (None, "regex"):
-            raise UsageError(f"the mapping file declares a line pattern ('parser:'), which needs --format regex, "
-                             f"not {fmt!r}")
-        fmt = "regex"
-        extra.update(mapping.parser)
-    return fmt, extra
-
-
-def build_chain(args: argparse.Namespace):
-    """The chain the command line asks for, its parse report and the settings it was made with."""
-    chain, report, settings, _ = build_chain_and_segments(args, segments=False)
-    return chain, report, settings
-
-
-def build_chain_and_segments(args: argparse.Namespace, segments: bool = True):
-    """:func:`build_chain` and, with ``--segment-by`` (when ``segments``), the segments, counted in
-    the same read of the input (None without it)."""
-    shape, fields, goals, terminal = shape_from_args(args)
-    fmt, extra = extra_from_args(args, shape.mapping)
-    seg_input = None
-    if segments and getattr(args, "segment_by", None) is not None:
-        from .options import count_with_segments_from_args
-
-        counts, report, seg_input = count_with_segments_from_args(args, shape, fields, fmt, extra)
-    else:
-        counts, report = count_from_args(args, shape, fields, fmt, extra)
-    mode = getattr(args, "open_cases", "stuck") or "stuck"
-    if shape.cases is not None and mode == "stuck":
-        from .analyze.stuck_outcome import with_stuck_outcomes
-
-        counts = with_stuck_outcomes(counts)
-    chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
-    settings = {
-        "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,
-        "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": counts.meta.get("inactivity_gap_s", shape.gap), "order": shape.order,
-        "smoothing": args.smoothing, "mapping": args.mapping,
-        "stale_after_seconds": shape.cases.stale_after if shape.cases else None,
-        "open_cases": mode if shape.cases else None,
-    }
-    seg = None
-    if seg_input is not None:
-        from .options import segments_from_counts
-
-        seg = segments_from_counts(args, goals, terminal, *seg_input)
-    return chain, report, settings, seg
-
-
 def cmd_analyze(args: argparse.Namespace) -> int:
     if args.top < 0:
         raise UsageError("--top must be at least 0 (0 lists every exit state)")
@@ -324,6 +140,13 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     from .options import segments_possible
 
     segments_possible(args)  # before any reading
+    from .analyze.summary import analyze
+    from .options import build_chain_and_segments
+    from .report.dot import render_dot, render_image
+    from .report.json_report import analysis_document, dumps
+    from .report.text import render_text
+    from .report.writer import write_output
+
     chain, report, settings, seg = build_chain_and_segments(args)
     result = analyze(chain, report, top=args.top, settings=settings, min_visits=args.min_visits)
     result = with_case_figures(result, args)
@@ -382,6 +205,7 @@ def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
     from .analyze.stuck import stuck_case_list
     from .privacy import announce_salt, pseudonymizer_from_args
     from .report.stuck_cases import render_stuck_cases
+    from .report.writer import write_output
 
     got = stuck_case_list(chain.counts) if chain.counts is not None else None
     if got is None:  # (terminal states were checked before reading)
@@ -397,6 +221,7 @@ def _write_stuck_cases(args: argparse.Namespace, chain) -> str:
 
 def cmd_formats(args: argparse.Namespace) -> int:
     from .engines import installed_engines
+    from .ingest.registry import available_parsers
 
     if getattr(args, "fields", False):
         from .ingest.fields import EVENT_NAMES, SESSION_NAMES, TIME_NAMES
@@ -575,7 +400,9 @@ def _main(argv: Sequence[str] | None) -> int:
         print("tracechain: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
     finally:
-        cleanup_spooled()
+        sources = sys.modules.get("tracechain.ingest.sources")
+        if sources is not None:  # (not imported: nothing was read, nothing spooled)
+            sources.cleanup_spooled()
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -1,6 +1,12 @@
 """Options and helpers shared by the command modules (``tracechain/cli.py``, ``analyze/commands.py``,
 ``report/commands.py``, ``check/command.py``): exit statuses, option value types, and turning
-parsed options into shaping options, counts and a progress setting.
+parsed options into shaping options, counts and a progress setting; the input options of every
+command that reads events (``_add_input_options``), the parsers' settings they ask for
+(``extra_from_args``) and the chain they describe (``build_chain``).
+
+Building a parser needs only this module, argparse and small modules of bounds and names: the
+reading, shaping and analysis stack (numpy, scipy, pyarrow) is imported inside the functions that
+turn parsed options into work, so that ``--help`` and ``--version`` start quickly.
 
 Below the command modules and the command line, so that they import it and it imports none of
 them (``tracechain.cli`` imported the command modules, which imported it back). Moved here from
@@ -11,17 +17,21 @@ from __future__ import annotations
 
 import argparse
 import math
+from typing import TYPE_CHECKING
 
+from ._limits import MAX_ORDER
+from .durations import parse_duration, parse_time
 from .errors import UsageError
-from .ingest.fields import FieldSpec
-from .pipeline import MAX_ORDER, ShapeOptions
-from .shape.cases import CasePolicy
-from .shape.mapping import load_mapping
+
+if TYPE_CHECKING:  # the reading and shaping stack is imported where options are turned into work,
+    # not where the parser is built: ``tracechain --help`` loads argparse and this module only
+    from .ingest.fields import FieldSpec
+    from .pipeline import ShapeOptions
 
 __all__ = ["EXIT_OK", "EXIT_FINDINGS", "EXIT_ERROR", "EXIT_INTERRUPTED", "shape_from_args", "progress_from_args",
            "count_from_args", "native_only", "add_level_option", "add_interval_options", "interval_method",
            "sessions_from_args", "add_segment_options", "segments_possible", "count_with_segments_from_args",
-           "segments_from_counts"]
+           "segments_from_counts", "add_filter_options", "extra_from_args", "build_chain", "build_chain_and_segments"]
 
 EXIT_OK = 0
 EXIT_FINDINGS = 1
@@ -74,6 +84,11 @@ def _share(text: str) -> float:
 
 
 def shape_from_args(args: argparse.Namespace) -> tuple[ShapeOptions, FieldSpec, list[str], list[str]]:
+    from .ingest.fields import FieldSpec
+    from .pipeline import ShapeOptions
+    from .shape.cases import CasePolicy
+    from .shape.mapping import load_mapping
+
     mapping = load_mapping(args.mapping) if args.mapping else None
     goals = list(args.goal) or (list(mapping.goals) if mapping else [])
     terminal = list(mapping.terminal) if mapping else []
@@ -266,7 +281,7 @@ def with_case_figures(result, args):
 
 def add_segment_options(p: argparse.ArgumentParser) -> None:
     """``--segment-by FIELD`` and ``--segments K`` (analyze, report)."""
-    from .analyze.segments import DEFAULT_TOP, NONE_LABEL, OTHER_LABEL
+    from .analyze.segment_labels import DEFAULT_TOP, NONE_LABEL, OTHER_LABEL
 
     g = p.add_argument_group("segments: one chain per value of a field, compared (native engine)")
     g.add_argument("--segment-by", metavar="FIELD",
@@ -328,3 +343,214 @@ def segments_from_counts(args: argparse.Namespace, goals, terminal, seg_counts, 
     return segment_analysis(seg_counts, goals, terminal, field_name=args.segment_by, keys=keys,
                             top=DEFAULT_TOP if args.segments is None else args.segments,
                             level=args.level, seed=args.seed, notes=notes)
+
+
+# -- the input options of every command that reads events (moved here from tracechain/cli.py) ----
+class _EnginesGroup(argparse._ArgumentGroup):
+    """The argument group of the engine options, whose description lists the installed engines.
+
+    Finding out whether DuckDB, psycopg and PySpark are installed imports them (and looks for
+    Java), which takes longer than everything else ``--help`` does; so the list is made when the
+    help is formatted, not when the parser is built for a command that never shows it."""
+
+    @property  # type: ignore[override]
+    def description(self) -> str:
+        from .engines import engines_line
+
+        return engines_line()
+
+    @description.setter
+    def description(self, _value) -> None:  # argparse's __init__ sets it; the property gives it
+        pass
+
+
+def _timestamp(text: str) -> float:
+    try:
+        return parse_time(text)
+    except UsageError:
+        raise argparse.ArgumentTypeError(f"not an ISO 8601 time: {text!r}") from None
+
+
+def _line_bytes(text: str) -> int:
+    """``--max-line-bytes``: a whole number of bytes, at least 1, with an optional K/M/G suffix."""
+    t = text.strip().upper().removesuffix("B").removesuffix("I")
+    scale = 1
+    if t[-1:] in ("K", "M", "G"):
+        scale = 1 << {"K": 10, "M": 20, "G": 30}[t[-1]]
+        t = t[:-1]
+    try:
+        n = int(t) * scale
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of bytes: {text!r} (e.g. 65536, 64K, 16M)") from None
+    if n < 1 or n > (1 << 40):
+        raise argparse.ArgumentTypeError(f"out of range: {text!r} (1 byte to 1024G)")
+    return n
+
+
+def _add_input_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("paths", nargs="+", metavar="PATH",
+                   help="event logs: files, directories, globs; '-' for standard input; gzip/bz2/xz are read too")
+    g = p.add_argument_group("reading")
+    g.add_argument("--format", help="input format (default: detected from the first lines); see 'tracechain formats'")
+    g.add_argument("--session-field", metavar="NAME", help="field holding the session key (default: detected)")
+    g.add_argument("--time-field", metavar="NAME", help="field holding the time; '' for none (default: detected)")
+    g.add_argument("--event-field", metavar="NAME", help="field holding the event name (default: detected)")
+    g.add_argument("--time-unit", choices=("s", "ms", "us", "ns"),
+                   help="unit of numeric epoch times (default: from their magnitude)")
+    g.add_argument("--time-format", metavar="STRPTIME", help="format of text times, e.g. '%%d/%%m/%%Y %%H:%%M:%%S'")
+    g.add_argument("--max-line-bytes", type=_line_bytes, default=None, metavar="N",
+                   help="the longest line read, in bytes (suffixes K, M, G: powers of 1024; default 64M); a longer "
+                        "line is skipped and counted as 'line too long', its bytes discarded as they are read")
+    g.add_argument("--strict", action="store_true", help="stop at the first malformed line (exit status 2)")
+    g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
+                   help="a progress bar (bytes read) on standard error while reading; by default shown when "
+                        "standard error is a terminal, reading takes over a second and --quiet is not given "
+                        "(TRACECHAIN_PROGRESS=1 or 0 sets the default)")
+    from .engines import ENGINE_CHOICES
+
+    e = _EnginesGroup(p, "engines: where the counting runs")
+    p._action_groups.append(e)  # (what add_argument_group does with the group it makes)
+    e.add_argument("--engine", choices=ENGINE_CHOICES, default="auto",
+                   help="native: tracechain's own reader; duckdb: read, sessionize, map and count inside DuckDB "
+                        "(Parquet, CSV, JSON Lines); auto (default): native for files, the database itself for a "
+                        "sqlite:/// or postgresql:// URL or a DuckDB database file; spark: the same counting as a "
+                        "Spark job (Parquet, CSV, JSON Lines; local paths or hdfs://, s3a:// URLs)")
+    e.add_argument("--spark-master", metavar="URL",
+                   help="with --engine spark: the cluster's master (spark://host:7077, yarn, local[4]); default "
+                        "local[*], or $TRACECHAIN_SPARK_MASTER")
+    e.add_argument("--table", metavar="NAME", help="the events table of a database (URL or DuckDB file)")
+    e.add_argument("--query", metavar="SQL", help="a query giving the events of a database (run as a subquery, "
+                                                  "read-only)")
+    e.add_argument("--order-by", metavar="COLUMN",
+                   help="tie-break for events of one session at one time in a table (files keep file order)")
+    w = p.add_argument_group("format-specific reading (web logs, traces, XES, CloudEvents, strace)")
+    w.add_argument("--status", metavar="LIST", help="web logs: keep these statuses, e.g. 2xx,3xx or 200,304")
+    w.add_argument("--method", metavar="LIST", help="web logs: keep these request methods, e.g. GET,POST")
+    w.add_argument("--exclude-agent", metavar="REGEX", help="web logs: leave out user agents matching this (bots)")
+    w.add_argument("--method-prefix", action="store_true", help="web logs: name events 'GET /path'")
+    w.add_argument("--include-assets", action="store_true",
+                   help="web logs: keep requests for static assets (images, scripts, styles, fonts, favicon, "
+                        "source maps), left out by default")
+    w.add_argument("--lifecycle", metavar="LIST", help="XES: keep only these lifecycle:transition values")
+    w.add_argument("--span-state-attribute", metavar="KEY", help="OTLP: take the state from this span attribute")
+    w.add_argument("--no-mark-errors", action="store_true", help="OTLP: do not suffix error spans with ' [error]'")
+    w.add_argument("--span-kinds", metavar="LIST", help="OTLP: keep only these span kinds, e.g. server,consumer")
+    w.add_argument("--session-extension", metavar="NAME",
+                   help="CloudEvents: session from this extension attribute instead of 'subject'")
+    w.add_argument("--with-errors", action="store_true", help="strace: states carry the error, e.g. open:ENOENT")
+    w.add_argument("--with-signals", action="store_true", help="strace: signals and exits become events")
+    w.add_argument("--trace-date", metavar="YYYY-MM-DD", help="strace: the date of '-tt' times (default 1970-01-01)")
+    s = p.add_argument_group("shaping sessions into states")
+    s.add_argument("--mapping", metavar="YAML", help="rules turning raw event names into states")
+    s.add_argument("--goal", action="append", default=[], metavar="STATE",
+                   help="a goal (conversion) state; repeat for several (default: the mapping file's goals)")
+    s.add_argument("--keep-after-goal", action="store_true",
+                   help="keep a session's events after its first goal (default: cut there)")
+    rep = s.add_mutually_exclusive_group()
+    rep.add_argument("--collapse-repeats", dest="collapse", action="store_true", default=None,
+                     help="merge immediate repeats of a state")
+    rep.add_argument("--no-collapse-repeats", dest="collapse", action="store_false")
+    s.add_argument("--gap", type=parse_duration, metavar="DURATION",
+                   help="start a new session after this much inactivity (e.g. 30m)")
+    s.add_argument("--order", type=int, default=1, metavar="K", help=f"chain order: states are the last K events (1 to {MAX_ORDER})")
+    c = p.add_argument_group("workflows with open cases")
+    c.add_argument("--terminal", action="append", default=[], metavar="STATE",
+                   help="a state in which a case is finished; repeat for several (also 'terminal:' in the mapping)")
+    c.add_argument("--stale-after", type=parse_duration, metavar="DURATION",
+                   help="an unfinished case is open (stuck) when its last event is older than this (default: "
+                        "every unfinished case); more recent ones are in flight")
+    c.add_argument("--as-of", type=_timestamp, metavar="TIME",
+                   help="the time ages are measured from, ISO 8601 (default: the latest time in the data)")
+    c.add_argument("--open-cases", choices=("stuck", "continue"), default=None,
+                   help="stuck (default): an open case is an outcome, 'stuck in' its last state, in every "
+                        "probability and what-if; continue: the assumption that open cases carry on like the "
+                        "finished ones (they are left out of the estimates). In-flight cases are right-censored "
+                        "either way")
+    s.add_argument("--smoothing", type=float, default=0.0, metavar="ALPHA",
+                   help="additive smoothing of transition probabilities (default 0)")
+    add_filter_options(p)
+
+
+def add_filter_options(p: argparse.ArgumentParser) -> None:
+    """--where, --since, --until (every command that reads events)."""
+    g = p.add_argument_group("filters: which events are read (before sessions are made; counted in the parse report)")
+    g.add_argument("--where", action="append", default=[], metavar="COND",
+                   help="keep events meeting COND: FIELD=VALUE, FIELD!=VALUE, FIELD~REGEX (a search, RE2 syntax) or "
+                        "'FIELD in A,B'; compared as text; repeat for several (all must hold); an event without "
+                        "the field meets only !=")
+    g.add_argument("--since", metavar="TIME", help="keep events at or after this ISO 8601 time or date (UTC unless "
+                                                   "an offset is given)")
+    g.add_argument("--until", metavar="TIME", help="keep events before this time; a date alone keeps that whole day")
+
+
+_EXTRA_OPTIONS = {
+    # option attribute -> (extra key, conversion)
+    "status": ("status", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
+    "method": ("method", lambda v: [x.strip().upper() for x in v.split(",") if x.strip()]),
+    "exclude_agent": ("exclude_agent", str),
+    "method_prefix": ("method_prefix", bool),
+    "include_assets": ("include_assets", bool),
+    "lifecycle": ("lifecycle", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
+    "span_state_attribute": ("span_state_attribute", str),
+    "span_kinds": ("span_kinds", lambda v: [x.strip() for x in v.split(",") if x.strip()]),
+    "session_extension": ("session_extension", str),
+    "with_errors": ("with_errors", bool),
+    "with_signals": ("with_signals", bool),
+    "trace_date": ("date", str),
+}
+
+
+def extra_from_args(args: argparse.Namespace, mapping) -> tuple[str | None, dict]:
+    """The input format and the parser-specific settings the options ask for."""
+    extra: dict = {}
+    for attr, (key, conv) in _EXTRA_OPTIONS.items():
+        value = getattr(args, attr, None)
+        if value:
+            extra[key] = conv(value)
+    if getattr(args, "max_line_bytes", None):
+        extra["max_line_bytes"] = args.max_line_bytes
+    if getattr(args, "no_mark_errors", False):
+        extra["mark_errors"] = False
+    fmt = args.format
+    if mapping is not None and mapping.parser:
+        if fmt not in (None, "regex"):
+            raise UsageError(f"the mapping file declares a line pattern ('parser:'), which needs --format regex, "
+                             f"not {fmt!r}")
+        fmt = "regex"
+        extra.update(mapping.parser)
+    return fmt, extra
+
+
+def build_chain(args: argparse.Namespace):
+    """The chain, parse report and settings that a command's input and shaping options ask for."""
+    chain, report, settings, _ = build_chain_and_segments(args, segments=False)
+    return chain, report, settings
+
+
+def build_chain_and_segments(args: argparse.Namespace, segments: bool = True):
+    """:func:`build_chain` and, with ``--segment-by`` (when ``segments``), the segments, counted in
+    the same read of the input (None without it)."""
+    from .chain import Chain
+
+    shape, fields, goals, terminal = shape_from_args(args)
+    fmt, extra = extra_from_args(args, shape.mapping)
+    seg_input = None
+    if segments and getattr(args, "segment_by", None) is not None:
+        counts, report, seg_input = count_with_segments_from_args(args, shape, fields, fmt, extra)
+    else:
+        counts, report = count_from_args(args, shape, fields, fmt, extra)
+    mode = getattr(args, "open_cases", "stuck") or "stuck"
+    if shape.cases is not None and mode == "stuck":
+        from .analyze.stuck_outcome import with_stuck_outcomes
+
+        counts = with_stuck_outcomes(counts)
+    chain = Chain.from_counts(counts, goals=goals, terminal=terminal, smoothing=args.smoothing)
+    settings = {
+        "goals": goals, "terminal": terminal, "truncate_at_goal": shape.truncate_at_goal,
+        "collapse_repeats": counts.meta.get("collapse_repeats"), "gap_seconds": counts.meta.get("inactivity_gap_s", shape.gap), "order": shape.order,
+        "smoothing": args.smoothing, "mapping": args.mapping,
+        "stale_after_seconds": shape.cases.stale_after if shape.cases else None,
+        "open_cases": mode if shape.cases else None,
+    }
+    seg = segments_from_counts(args, goals, terminal, *seg_input) if seg_input is not None else None
+    return chain, report, settings, seg

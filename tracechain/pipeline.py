@@ -34,9 +34,7 @@ from .shape.sessions import OutOfOrder, SessionCounter
 __all__ = ["ShapeOptions", "count_sources", "count_sources_grouped", "read_events", "count_chunks", "count_routed",
            "count_grouped", "MAX_ORDER", "apply_filters"]
 
-#: the highest chain order accepted (--order, --max-order, a rules file's 'order:'): counting keeps the
-#: last K-1 codes of every open session, so an order of millions would exhaust memory before reading
-MAX_ORDER = 100
+from ._limits import MAX_ORDER  # noqa: E402  (defined there, light enough for the option parser)
 
 
 @dataclass(frozen=True)

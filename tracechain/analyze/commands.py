@@ -2,8 +2,8 @@
 
 :func:`register` adds them to the ``tracechain`` parser's subparsers; each handler returns an
 exit status and raises :class:`~tracechain.errors.TracechainError` for user mistakes, which
-``tracechain.cli.main`` turns into one line on stderr. ``tracechain.cli`` is imported inside
-the functions (it imports the analyses, so a module-level import would be circular).
+``tracechain.cli.main`` turns into one line on stderr. The shared input options and
+``build_chain`` come from :mod:`tracechain.options`, below this module and the command line.
 """
 
 from __future__ import annotations
@@ -61,9 +61,9 @@ def _iso_time(text: str) -> float:
 
 def register(subparsers) -> None:
     """Add ``order``, ``simulate`` and ``whatif`` to the ``tracechain`` subparsers action."""
-    from ..cli import _add_input_options
+    from ..options import _add_input_options
     from ..options import MAX_DRAWS, MAX_SESSIONS, _seed, whole_number
-    from ..pipeline import MAX_ORDER
+    from .._limits import MAX_ORDER
 
     o = subparsers.add_parser(
         "order", help="which chain order the sessions support (likelihood-ratio tests, AIC, BIC)",
@@ -233,7 +233,7 @@ def _order_lines(table, K: int, safe_text) -> list[str]:
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
-    from ..cli import build_chain
+    from ..options import build_chain
     from .simulate import simulate, write_jsonl
 
     args.paths = list(args.from_paths) + list(args.paths or [])
@@ -284,7 +284,7 @@ def _parse_edit(kind: str, text: str):
 
 
 def cmd_whatif(args: argparse.Namespace) -> int:
-    from ..cli import build_chain
+    from ..options import build_chain
     from ..report.text import safe_text
     from .whatif import what_if
 

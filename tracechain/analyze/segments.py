@@ -39,12 +39,7 @@ from .compare import TEST_NAME, benjamini_hochberg, homogeneity_rows, start_figu
 __all__ = ["NONE_LABEL", "OTHER_LABEL", "DEFAULT_TOP", "SegmentGroup", "SegmentTest", "Segments", "count_segments",
            "count_with_segments", "segment_analysis"]
 
-#: the segment of session keys whose first event has no value of the field
-NONE_LABEL = "(none)"
-#: the group of the segments beyond the ``top`` largest
-OTHER_LABEL = "(other)"
-#: segments shown by default (the rest pooled)
-DEFAULT_TOP = 8
+from .segment_labels import DEFAULT_TOP, NONE_LABEL, OTHER_LABEL  # noqa: E402  (defined there, for the parser)
 
 
 @dataclass(frozen=True)

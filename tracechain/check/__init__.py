@@ -16,13 +16,31 @@ From Python::
 
 from __future__ import annotations
 
-from .config import InputOptions, RuleConfig, RulesFile, load_rules, parse_rules
-from .context import END_NAME, START_NAME, CheckContext
-from .engine import run_check
-from .findings import SEVERITIES, CheckResult, Finding, Issue, RuleOutcome
-from .params import Params
-from .rules import ENTRY_POINT_GROUP, Rule, available_rules, get_rule
-from .snapshot import Snapshot, load_snapshot, parse_snapshot, snapshot_document
+#: public name -> its module; imported on first use (PEP 562): ``tracechain check --help`` and the
+#: other commands import this package without needing the rules, the chain or numpy
+_PUBLIC: dict[str, str] = {
+    "InputOptions": ".config", "RuleConfig": ".config", "RulesFile": ".config", "load_rules": ".config",
+    "parse_rules": ".config", "END_NAME": ".context", "START_NAME": ".context", "CheckContext": ".context",
+    "run_check": ".engine", "SEVERITIES": ".severities", "CheckResult": ".findings", "Finding": ".findings",
+    "Issue": ".findings", "RuleOutcome": ".findings", "Params": ".params", "ENTRY_POINT_GROUP": ".rules",
+    "Rule": ".rules", "available_rules": ".rules", "get_rule": ".rules", "Snapshot": ".snapshot",
+    "load_snapshot": ".snapshot", "parse_snapshot": ".snapshot", "snapshot_document": ".snapshot",
+}
+
+
+def __getattr__(name: str):
+    if name in _PUBLIC:
+        import importlib
+
+        value = getattr(importlib.import_module(_PUBLIC[name], __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_PUBLIC))
+
 
 __all__ = [
     "InputOptions", "RuleConfig", "RulesFile", "load_rules", "parse_rules",

@@ -14,21 +14,14 @@ from __future__ import annotations
 
 import argparse
 import sys
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from ..chain import Chain
-from ..counts import state_label
 from ..errors import ConfigError, UsageError
-from ..report.writer import write_output
-from .config import RulesFile, load_rules
-from .context import CheckContext
-from .engine import run_check
-from .findings import FAIL_ON
 from .formats import CHECK_FORMATS
-from .junit import junit_xml
-from .report import check_document, dumps_json, render_check_text
-from .sarif import sarif_document
-from .snapshot import dumps_snapshot, load_snapshot, snapshot_document
+from .severities import FAIL_ON
+
+if TYPE_CHECKING:
+    from .config import RulesFile
 
 __all__ = ["register", "cmd_check", "cmd_snapshot", "build_checked_chain", "render", "OUTPUT_FORMATS"]
 
@@ -37,7 +30,7 @@ OUTPUT_FORMATS = CHECK_FORMATS.names()
 
 def register(subparsers: Any) -> None:
     """Add ``check`` and ``snapshot`` to the subparsers of ``tracechain.cli.build_parser()``."""
-    from ..cli import _add_input_options  # lazily: tracechain.cli imports this module
+    from ..options import _add_input_options
 
     c = subparsers.add_parser(
         "check", help="evaluate behaviour rules on the chain built from traces (a CI gate)",
@@ -127,14 +120,15 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
     ``before_reading(goals, terminal)`` is called once the goals and terminal states are known,
     before the traces are read. Returns ``(chain, report, settings, goals)``.
     """
-    from .. import cli  # lazily: tracechain.cli imports this module
+    from ..options import count_from_args, extra_from_args, shape_from_args
+
     ns = _merge(args, rules)
-    shape, fields, goals, terminal = cli.shape_from_args(ns)
+    shape, fields, goals, terminal = shape_from_args(ns)
     # the format-specific reading options, as 'analyze' reads them
-    fmt, extra = cli.extra_from_args(ns, shape.mapping)
+    fmt, extra = extra_from_args(ns, shape.mapping)
     if before_reading is not None:
         before_reading(tuple(goals), tuple(terminal))
-    counts, report = cli.count_from_args(ns, shape, fields, fmt, extra)
+    counts, report = count_from_args(ns, shape, fields, fmt, extra)
     mode = getattr(ns, "open_cases", None) or "stuck"
     if shape.cases is not None and mode == "stuck":
         from ..analyze.stuck_outcome import with_stuck_outcomes
@@ -144,6 +138,8 @@ def build_checked_chain(args: argparse.Namespace, rules: RulesFile | None = None
     last_names = {_last_name(s) for s in counts.states}
     present = [g for g in goals if g in known]
     term = [t for t in terminal if t in known or t in last_names]
+    from ..chain import Chain
+
     chain = Chain.from_counts(counts, goals=present, terminal=term, smoothing=ns.smoothing)
     settings = {
         "goals": list(goals), "terminal": list(terminal), "truncate_at_goal": shape.truncate_at_goal,
@@ -167,6 +163,14 @@ def render(result, fmt: str) -> str:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
+    from ..counts import state_label
+    from ..report.writer import write_output
+    from .config import load_rules
+    from .context import CheckContext
+    from .engine import run_check
+    from .report import render_check_text
+    from .snapshot import load_snapshot
+
     rules = load_rules(args.rules)
     baseline_path = args.baseline or rules.baseline
     chain, report, settings, goals = build_checked_chain(
@@ -219,6 +223,10 @@ def key_note(keys, raw_option: str = "--raw-keys", salt_option: str = "--salt",
 
 
 def cmd_snapshot(args: argparse.Namespace) -> int:
+    from ..report.writer import write_output
+    from .config import load_rules
+    from .snapshot import dumps_snapshot, snapshot_document
+
     rules = load_rules(args.rules) if args.rules else None
     chain, _report, settings, _goals = build_checked_chain(args, rules)
     written = write_output(args.output, dumps_snapshot(snapshot_document(chain, settings)))

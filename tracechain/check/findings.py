@@ -22,10 +22,7 @@ __all__ = [
     "SEVERITIES", "FAIL_ON", "severity_rank", "Issue", "Finding", "RuleOutcome", "CheckResult", "fingerprint",
 ]
 
-#: Severities, weakest first (the SARIF 2.1.0 result levels without "none").
-SEVERITIES = ("note", "warning", "error")
-#: Values of ``--fail-on``: a severity, or ``never`` (report only).
-FAIL_ON = ("error", "warning", "note", "never")
+from .severities import FAIL_ON, SEVERITIES  # noqa: E402  (defined there, for the option parser)
 
 
 def severity_rank(severity: str) -> int:

@@ -7,15 +7,38 @@
 from __future__ import annotations
 
 from ..renderers import Registry, Renderer
-from .junit import junit_xml
-from .report import check_document, dumps_json, render_check_text
-from .sarif import sarif_document
 
 __all__ = ["CHECK_FORMATS"]
 
+
+# each renderer imports its module on first use: the option parser needs the names only
+def _text(result) -> str:
+    from .report import render_check_text
+
+    return render_check_text(result)
+
+
+def _json(result) -> str:
+    from .report import check_document, dumps_json
+
+    return dumps_json(check_document(result))
+
+
+def _sarif(result) -> str:
+    from .report import dumps_json
+    from .sarif import sarif_document
+
+    return dumps_json(sarif_document(result))
+
+
+def _junit(result) -> str:
+    from .junit import junit_xml
+
+    return junit_xml(result)
+
+
 CHECK_FORMATS = Registry("report")
-CHECK_FORMATS.register(Renderer("text", (), render_check_text, "the summary as text"))
-CHECK_FORMATS.register(Renderer("json", (".json",), lambda r: dumps_json(check_document(r)), "the check document"))
-CHECK_FORMATS.register(Renderer("sarif", (".sarif", ".sarif.json"), lambda r: dumps_json(sarif_document(r)),
-                                "SARIF 2.1.0, for code-scanning views"))
-CHECK_FORMATS.register(Renderer("junit", (".xml",), junit_xml, "JUnit XML, for CI test views"))
+CHECK_FORMATS.register(Renderer("text", (), _text, "the summary as text"))
+CHECK_FORMATS.register(Renderer("json", (".json",), _json, "the check document"))
+CHECK_FORMATS.register(Renderer("sarif", (".sarif", ".sarif.json"), _sarif, "SARIF 2.1.0, for code-scanning views"))
+CHECK_FORMATS.register(Renderer("junit", (".xml",), _junit, "JUnit XML, for CI test views"))

@@ -28,18 +28,28 @@ __all__ = ["ENGINE_CHOICES", "installed_engines", "engines_line", "count_data"]
 ENGINE_CHOICES = ("auto", "native", "duckdb", "spark")
 
 
-def installed_engines() -> dict[str, bool]:
-    """Engine name -> whether it can run in this installation."""
-    from .databases import psycopg_available
-    from .duckdb_engine import available as duckdb_available
-    from .spark_engine import available as spark_available, java_found
+def installed_engines(load: bool = True) -> dict[str, bool]:
+    """Engine name -> whether it can run in this installation: its package imports (``load``), or
+    is found on the path without being imported (``load=False``, for the help: see
+    :mod:`tracechain.engines.probe`); Spark needs Java too."""
+    from .probe import java_found, package_found
 
-    return {"native": True, "duckdb": duckdb_available(), "sqlite": True, "postgresql": psycopg_available(),
-            "spark": spark_available() and java_found() is not None}
+    if load:
+        from .databases import psycopg_available
+        from .duckdb_engine import available as duckdb_available
+        from .spark_engine import available as spark_available
+
+        have = {"duckdb": duckdb_available(), "postgresql": psycopg_available(), "spark": spark_available()}
+    else:
+        have = {"duckdb": package_found("duckdb"), "postgresql": package_found("psycopg"),
+                "spark": package_found("pyspark")}
+    return {"native": True, "duckdb": have["duckdb"], "sqlite": True, "postgresql": have["postgresql"],
+            "spark": have["spark"] and java_found() is not None}
 
 
 def engines_line() -> str:
-    inst = installed_engines()
+    """The help's line of installed engines (found, not imported: the help stays quick)."""
+    inst = installed_engines(load=False)
     have = [n for n, ok in inst.items() if ok]
     missing = [n for n, ok in inst.items() if not ok]
     text = "installed engines: " + ", ".join(have)

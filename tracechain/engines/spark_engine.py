@@ -17,7 +17,6 @@ to Spark as they are, without a file-order tie-break.
 from __future__ import annotations
 
 import os
-import shutil
 import sys
 import uuid
 from dataclasses import dataclass
@@ -27,6 +26,7 @@ from ..errors import IngestError, UsageError
 from ..ingest.fields import FieldSpec
 from . import sql as S
 from .base import Relation, SqlRunner, count_relation
+from .probe import java_found  # noqa: F401  (defined there; imported from here too)
 
 __all__ = ["available", "count_files", "count_dataframe", "counts_from_spark", "spark_session"]
 
@@ -56,15 +56,6 @@ def _pyspark():
         raise UsageError("the spark engine needs PySpark: pip install 'tracechain[spark]' (scripts/setup installs "
                          "it) and Java 17 or later") from None
     return pyspark
-
-
-def java_found() -> str | None:
-    """The java program Spark would start, or None."""
-    home = os.environ.get("JAVA_HOME")
-    if home:
-        cand = os.path.join(home, "bin", "java")
-        return cand if os.access(cand, os.X_OK) else None
-    return shutil.which("java")
 
 
 def spark_session(master: str | None = None):

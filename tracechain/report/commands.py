@@ -62,7 +62,7 @@ def register(subparsers) -> None:
     """Add the ``report`` and ``compare`` commands to ``subparsers`` (an argparse sub-parsers action)."""
     from ..options import (MAX_DRAWS, _seed, _share, add_case_figure_options, add_interval_options, add_level_option,
                            add_steps_options, whole_number)
-    from ..cli import _add_input_options
+    from ..options import _add_input_options
 
     r = subparsers.add_parser(
         "report", help="write an HTML report and a Markdown summary of the analysis",
@@ -292,7 +292,7 @@ def _render_diagram(diagram, fmt: str) -> bytes:
 
 def cmd_report(args: argparse.Namespace) -> int:
     from ..analyze.summary import analyze
-    from ..cli import build_chain_and_segments
+    from ..options import build_chain_and_segments
     from ..options import EXIT_OK, with_case_figures
     from ..errors import UsageError
     from ..shape.mapping import load_mapping

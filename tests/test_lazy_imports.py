@@ -128,3 +128,16 @@ def test_pytest_plugin_load_does_not_import_the_numeric_stack(tmp_path):
                         str(tmp_path / "test_probe.py")], capture_output=True, text=True, env=env, cwd=tmp_path)
     assert r.returncode == 0, r.stdout + r.stderr
     assert "1 passed" in r.stdout
+
+
+def test_python_dash_m_tracechain_is_the_command_line(tmp_path):
+    # `python -m tracechain` runs the same command line as the console script
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in sys.path if p))
+    proc = subprocess.run([sys.executable, "-m", "tracechain", "--version"], capture_output=True, text=True,
+                          cwd=tmp_path, env=env, timeout=120)
+    from tracechain import __version__
+
+    assert proc.returncode == 0 and __version__ in proc.stdout + proc.stderr
+    bad = subprocess.run([sys.executable, "-m", "tracechain", "analyze", str(tmp_path / "missing.jsonl")],
+                         capture_output=True, text=True, cwd=tmp_path, env=env, timeout=120)
+    assert bad.returncode == 2 and "missing.jsonl" in bad.stderr and "Traceback" not in bad.stderr

@@ -132,7 +132,8 @@ def test_states_on_every_converting_path_are_found_and_shown_together():
     # every path from the start to the goal dominates the goal (Lengauer & Tarjan 1979, from memory).
     import networkx as nx
 
-    from tracechain.analyze.extended import extended_analysis, extended_document, extended_lines
+    from tracechain.analyze.extended import extended_analysis, extended_document
+    from tracechain.report.text import extended_lines
 
     names = ["Home", "List", "Cart", "Pay", "Help"]
     labels = ["[start]", *names, "Buy", "[end]"]

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 from tracechain.report.html import _CSS, _csp
 
 from conftest import write_jsonl

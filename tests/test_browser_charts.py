@@ -16,7 +16,7 @@ import pytest
 
 pytest.importorskip("matplotlib")
 
-from tracechain.report.commands import main as commands_main  # noqa: E402
+from tracechain.cli import main as commands_main  # noqa: E402
 
 from test_browser import CHROMIUM, chromium, decode_png  # noqa: E402
 from test_charts import _compare_logs, _shop_rows  # noqa: E402

@@ -23,7 +23,7 @@ from pathlib import Path
 
 import pytest
 
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 from tracechain.report.dot import FIT_PRESETS
 
 from test_browser import CHROMIUM, chromium

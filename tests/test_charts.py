@@ -22,7 +22,7 @@ import pytest
 
 pytest.importorskip("matplotlib")
 
-from tracechain.report.commands import main as commands_main  # noqa: E402
+from tracechain.cli import main as commands_main  # noqa: E402
 
 from conftest import write_jsonl  # noqa: E402
 from test_browser import decode_png  # noqa: E402

@@ -28,7 +28,7 @@ from scipy import stats
 from tracechain.analyze.compare import benjamini_hochberg, compare_counts, homogeneity_test, parse_time
 from tracechain.counts import END, START, TransitionCounts
 from tracechain.errors import UsageError
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 
 from conftest import write_jsonl
 

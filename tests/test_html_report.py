@@ -27,7 +27,7 @@ from tracechain.analyze.summary import analyze
 from tracechain.chain import Chain
 from tracechain.counts import END, START, TransitionCounts
 from tracechain.privacy import Pseudonymizer
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 from tracechain.report.dot import build_diagram
 from tracechain.report.html import build_report, render_html
 

@@ -65,12 +65,7 @@ ALLOWED_UPWARD: set[tuple[str, str]] = set()
 #: Old names kept working where they moved up a layer: (module, new home), imported only in the
 #: module's ``__getattr__`` on first use of the old name. For the code other branches wrote before
 #: the move; to be removed once nothing uses the old names (follow-up).
-COMPAT_FORWARDS: set[tuple[str, str]] = {
-    # extended_lines: tracechain.analyze.extended -> tracechain.report.text
-    ("tracechain.analyze.extended", "tracechain.report.text"),
-    # main, build_parser: tracechain.report.commands -> tracechain.cli (the command line registers report/compare)
-    ("tracechain.report.commands", "tracechain.cli"),
-}
+COMPAT_FORWARDS: set[tuple[str, str]] = set()
 
 #: Known imports inside one layer that close a cycle, still to be fixed. Shrinks too.
 ALLOWED_CYCLE: set[tuple[str, str]] = set()

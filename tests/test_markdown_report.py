@@ -14,7 +14,7 @@ import re
 
 import pytest
 
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 from tracechain.report.markdown import md_escape
 
 from conftest import write_jsonl

@@ -10,7 +10,7 @@ import re
 import pytest
 
 from tracechain.privacy import DATA_PROTECTION_CAUTION, PSEUDONYM_DIGITS, Pseudonymizer
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 
 from conftest import write_jsonl
 

@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from tracechain.analyze.extended import EXTENDED_SCHEMA, extended_analysis, extended_document, extended_lines
+from tracechain.analyze.extended import EXTENDED_SCHEMA, extended_analysis, extended_document
+from tracechain.report.text import extended_lines
 from tracechain.analyze.order import session_sequences
 from tracechain.analyze.attribution import removal_effects
 from tracechain.analyze.uncertainty import DirichletSampler, bootstrap_intervals, dirichlet_intervals

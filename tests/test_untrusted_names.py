@@ -21,7 +21,7 @@ import json
 import pytest
 import yaml
 
-from tracechain.report.commands import main as commands_main
+from tracechain.cli import main as commands_main
 from tracechain.report.html import safe_name
 
 from conftest import write_jsonl

@@ -40,7 +40,7 @@ from .surprise import surprise
 from .timing import state_gaps, timing_analysis
 from .uncertainty import METHOD_NAMES, Interval, bootstrap_intervals, dirichlet_intervals
 
-__all__ = ["ExtendedAnalysis", "extended_analysis", "extended_document", "extended_lines", "EXTENDED_SCHEMA"]
+__all__ = ["ExtendedAnalysis", "extended_analysis", "extended_document", "EXTENDED_SCHEMA"]
 
 
 def _num(x) -> float | None:
@@ -479,14 +479,3 @@ EXTENDED_SCHEMA: dict = {
         "notes": {"type": "array", "items": {"type": "string"}},
     },
 }
-
-
-# -- terminal -----------------------------------------------------------------------------
-def __getattr__(name: str):
-    # extended_lines moved to the report layer (tracechain.report.text); the old name
-    # keeps working for code written before the move
-    if name == "extended_lines":
-        from ..report.text import extended_lines
-
-        return extended_lines
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

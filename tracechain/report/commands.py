@@ -1,8 +1,8 @@
 """The ``report`` and ``compare`` commands.
 
 :func:`register` adds both to the command line's sub-parsers (``tracechain.cli`` calls it);
-the handlers take the shared options from :mod:`tracechain.options`. The old ``main`` and
-``build_parser`` of this module are now ``tracechain.cli``'s (it registers these commands).
+the handlers take the shared options from :mod:`tracechain.options`. The command line itself
+(``main``, ``build_parser``) is ``tracechain.cli``'s.
 
 ``tracechain report PATH... --html FILE --markdown FILE [--csv FILE] [--svg FILE] [--steps LIST]``
     the analysis as a self-contained HTML report, a Markdown summary, per-state CSV; with
@@ -553,14 +553,3 @@ def cmd_compare(args: argparse.Namespace) -> int:
         if w != "-":
             print(f"wrote {w}", file=sys.stderr)
     return EXIT_OK
-
-
-# -- old entry points -----------------------------------------------------------------------
-def __getattr__(name: str):
-    # ``main`` and ``build_parser`` ran a command line with these commands registered before
-    # tracechain.cli wired them in; it does now, so the old names are tracechain.cli's own
-    if name in ("main", "build_parser"):
-        from .. import cli
-
-        return getattr(cli, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
